@@ -1,0 +1,133 @@
+"""Figures (matplotlib, imported only when a figure is asked for).
+
+Figures are built on :class:`matplotlib.figure.Figure` directly, so no
+pyplot state or interactive backend is involved; notebooks display the
+returned figure, the command line saves it by suffix (PNG, SVG or PDF).
+"""
+
+from __future__ import annotations
+
+import numpy as np
+
+
+__all__ = ["pattern_figure", "save_figure", "draw_disk_lines", "hkl_label"]
+
+_DISK_FILL = "#f4f1ea"
+_DISK_EDGE = "#5b5b5b"
+_LINE = "#1f2d4a"
+_CROSSING = "#c0532f"
+_RING = "#7a4f9a"
+_ZOLZ_FILL = "#dbe6ea"
+
+
+def hkl_label(hkl):
+    """Miller indices in mathtext with bars over negative indices."""
+    values = [int(v) for v in hkl]
+    parts = [rf"\bar{{{-v}}}" if v < 0 else str(v) for v in values]
+    sep = r"\," if any(abs(v) >= 10 for v in values) else ""
+    return "$" + sep.join(parts) + "$"
+
+
+def _new_figure(width, height):
+    from matplotlib.figure import Figure
+
+    return Figure(figsize=(width, height), layout="constrained")
+
+
+def save_figure(fig, path):
+    """Save a figure; the format follows the file suffix."""
+    fig.savefig(path, dpi=150)
+
+
+def _halo():
+    from matplotlib import patheffects
+
+    return [patheffects.withStroke(linewidth=2.2, foreground="white")]
+
+
+def draw_disk_lines(ax, pattern, *, n_labels=10, show_crossings=True, to_plot=None):
+    """Draw the central disk with the exact loci on ``ax``.
+
+    Parameters
+    ----------
+    to_plot : callable, optional
+        Maps (m, 2) mrad points to plot coordinates (for example pixels);
+        identity by default.
+    """
+    from matplotlib.patches import Polygon
+
+    convert = to_plot or (lambda xy: xy)
+    angle = np.linspace(0, 2 * np.pi, 361)
+    rim = pattern.disk_mrad * np.stack([np.cos(angle), np.sin(angle)], axis=1)
+    ax.add_patch(Polygon(convert(rim), closed=True, facecolor=_DISK_FILL,
+                         edgecolor=_DISK_EDGE, linewidth=1.0, zorder=0))
+    order = np.argsort(pattern.strength)  # weak first, strong drawn on top
+    for i in order:
+        s = float(min(pattern.strength[i], 1.0))
+        xy = convert(pattern.points_mrad[i])
+        ax.plot(xy[:, 0], xy[:, 1], color=_LINE, linewidth=0.4 + 1.8 * s,
+                alpha=0.25 + 0.75 * s, solid_capstyle="butt", zorder=2)
+    halo = _halo()
+    for i in np.argsort(-pattern.strength, kind="stable")[:n_labels]:
+        xy = convert(pattern.points_mrad[i])
+        end = xy[-6]
+        ax.text(end[0], end[1], hkl_label(pattern.hkl[i]), fontsize=7, color=_LINE,
+                ha="center", va="center", path_effects=halo, zorder=4)
+    if show_crossings and pattern.n_crossings:
+        xy = convert(pattern.crossing_mrad)
+        ax.plot(xy[:, 0], xy[:, 1], linestyle="none", marker="o", markersize=2.6,
+                markerfacecolor="none", markeredgecolor=_CROSSING, markeredgewidth=0.7,
+                zorder=3)
+
+
+def pattern_figure(pattern, *, n_labels=10, show_crossings=False):
+    """Two panels: the central disk with labelled loci, and the whole-pattern overview.
+
+    Parameters
+    ----------
+    pattern : laueline.lines.Pattern
+    n_labels : int
+        Number of strongest lines labelled with their indices.
+    show_crossings : bool
+        Mark the crossings.
+
+    Returns
+    -------
+    matplotlib.figure.Figure
+    """
+    from matplotlib.patches import Circle
+
+    fig = _new_figure(10.5, 5.2)
+    ax_disk, ax_all = fig.subplots(1, 2, width_ratios=[1.15, 1])
+    draw_disk_lines(ax_disk, pattern, n_labels=n_labels, show_crossings=show_crossings)
+    r = pattern.disk_mrad * 1.06
+    ax_disk.set_xlim(-r, r)
+    ax_disk.set_ylim(-r, r)
+    ax_disk.set_aspect("equal")
+    ax_disk.set_xlabel(f"t$_x$ (mrad), along ({hkl_label(pattern.x_axis)})")
+    ax_disk.set_ylabel("t$_y$ (mrad)")
+    cr = pattern.crystal
+    ax_disk.set_title(f"{cr.name} [{hkl_label(pattern.zone)}], {pattern.beam.kv:g} kV: "
+                      f"{pattern.n_lines} lines, {pattern.n_crossings} crossings",
+                      fontsize=10)
+
+    extent = max([pattern.disk_mrad * 4] + list(pattern.ring_radius_mrad * 1.08))
+    ax_all.add_patch(Circle((0, 0), pattern.disk_mrad, facecolor=_DISK_FILL,
+                            edgecolor=_DISK_EDGE, linewidth=1.0, zorder=2))
+    for centre in pattern.zero_layer_mrad:
+        if np.hypot(*centre) < extent:
+            ax_all.add_patch(Circle(tuple(centre), pattern.disk_mrad, facecolor=_ZOLZ_FILL,
+                                    edgecolor="#8aa1ab", linewidth=0.5, zorder=1))
+    halo = _halo()
+    for n, radius in zip(pattern.ring_layers, pattern.ring_radius_mrad):
+        ax_all.add_patch(Circle((0, 0), radius, fill=False, edgecolor=_RING,
+                                linestyle=(0, (4, 3)), linewidth=1.0, zorder=3))
+        ax_all.text(radius * 0.707, radius * 0.707, f"n={n}", color=_RING, fontsize=7,
+                    path_effects=halo, zorder=4)
+    ax_all.set_xlim(-extent, extent)
+    ax_all.set_ylim(-extent, extent)
+    ax_all.set_aspect("equal")
+    ax_all.set_xlabel("mrad")
+    ax_all.set_title(f"zero-layer disks (radius {pattern.disk_mrad:g} mrad) and HOLZ rings",
+                     fontsize=10)
+    return fig

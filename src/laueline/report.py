@@ -1,0 +1,224 @@
+"""Output: JSON documents with schema versions, CSV tables, readable text.
+
+Every JSON document carries ``"schema"``, naming its kind and version
+(``laueline.pattern/1`` ...); keys and meanings are fixed by the README.
+Files are never overwritten unless the caller passes ``force=True``.
+"""
+
+from __future__ import annotations
+
+import csv
+import json
+import math
+import os
+from pathlib import Path
+
+import numpy as np
+
+from .errors import InputError
+
+__all__ = [
+    "PATTERN_SCHEMA",
+    "FIGURE_SUFFIXES",
+    "check_outputs",
+    "write_json",
+    "write_csv",
+    "read_json",
+    "pattern_document",
+    "pattern_tables",
+    "pattern_text",
+    "format_hkl",
+]
+
+PATTERN_SCHEMA = "laueline.pattern/1"
+FIGURE_SUFFIXES = (".png", ".svg", ".pdf")
+
+F_UNIT = ("angstrom; kinematic electron structure factor sum_j occ_j f_j exp(-B_j s^2) "
+          "exp(2 pi i h.x_j) with neutral-atom factors of International Tables C 4.3.2.2, "
+          "non-relativistic (multiply by gamma for the fast electron)")
+
+
+def format_hkl(hkl):
+    """Compact Miller-index label: (2, -3, 10) -> '2 -3 10', (1, 1, 1) -> '111'."""
+    values = [int(v) for v in hkl]
+    if all(-9 <= v <= 9 for v in values) and all(v >= 0 for v in values):
+        return "".join(str(v) for v in values)
+    return " ".join(str(v) for v in values)
+
+
+def check_outputs(paths, force=False, figure=None):
+    """Refuse, before any work, to overwrite files or write into missing folders."""
+    for path in [p for p in paths if p is not None] + ([figure] if figure else []):
+        path = Path(path)
+        if path.exists() and not force:
+            raise InputError(f"{path} exists; pass --force to overwrite it")
+        if not path.parent.exists() and str(path.parent) not in ("", "."):
+            raise InputError(f"cannot write {path}: folder {path.parent} does not exist")
+    if figure is not None and Path(figure).suffix.lower() not in FIGURE_SUFFIXES:
+        raise InputError(f"figure {figure}: the suffix must be one of "
+                         f"{', '.join(FIGURE_SUFFIXES)}")
+
+
+def _clean(value):
+    if isinstance(value, dict):
+        return {k: _clean(v) for k, v in value.items()}
+    if isinstance(value, (list, tuple)):
+        return [_clean(v) for v in value]
+    if isinstance(value, np.ndarray):
+        return _clean(value.tolist())
+    if isinstance(value, (np.integer,)):
+        return int(value)
+    if isinstance(value, (np.floating, float)):
+        value = float(value)
+        return value if math.isfinite(value) else None
+    if isinstance(value, np.bool_):
+        return bool(value)
+    return value
+
+
+def write_json(document, path, force=False):
+    """Write a JSON document (numpy values converted, non-finite -> null)."""
+    path = Path(path)
+    check_outputs([path], force)
+    text = json.dumps(_clean(document), indent=1)
+    tmp = path.with_name(path.name + ".part")
+    tmp.write_text(text + "\n", encoding="utf-8")
+    os.replace(tmp, path)
+
+
+def write_csv(path, header, rows, force=False):
+    """Write a CSV table with a header row."""
+    path = Path(path)
+    check_outputs([path], force)
+    with open(path, "w", newline="", encoding="utf-8") as fh:
+        writer = csv.writer(fh)
+        writer.writerow(header)
+        for row in rows:
+            writer.writerow([_csv_cell(v) for v in row])
+
+
+def _csv_cell(v):
+    if isinstance(v, (float, np.floating)):
+        return f"{float(v):.10g}"
+    return v
+
+
+def read_json(path, schema_prefix):
+    """Read a laueline JSON document and check its schema kind."""
+    path = Path(path)
+    try:
+        doc = json.loads(path.read_text(encoding="utf-8"))
+    except OSError as exc:
+        raise InputError(f"cannot read {path}: {exc.strerror}") from None
+    except json.JSONDecodeError as exc:
+        raise InputError(f"{path} is not JSON ({exc.msg}, line {exc.lineno})") from None
+    schema = doc.get("schema") if isinstance(doc, dict) else None
+    if not isinstance(schema, str) or not schema.startswith(schema_prefix + "/"):
+        raise InputError(f"{path} has schema {schema!r}; expected {schema_prefix}/<version>")
+    return doc
+
+
+# ---------------------------------------------------------------------------
+# pattern
+# ---------------------------------------------------------------------------
+
+def pattern_document(pattern):
+    """The ``laueline.pattern/1`` document of a :class:`~laueline.lines.Pattern`."""
+    lines = []
+    for i in range(pattern.n_lines):
+        lines.append({
+            "hkl": pattern.hkl[i], "laue_zone": pattern.laue_zone[i],
+            "g_inv_A": pattern.g_inv_A[i], "f_abs": pattern.f_abs[i],
+            "strength": pattern.strength[i], "normal": pattern.normal[i],
+            "offset_mrad": pattern.offset_mrad[i], "points_mrad": pattern.points_mrad[i],
+        })
+    crossings = [{"lines": pattern.crossing_lines[k], "xy_mrad": pattern.crossing_mrad[k],
+                  "angle_deg": pattern.crossing_angle_deg[k]}
+                 for k in range(pattern.n_crossings)]
+    frame = pattern.frame
+    return _clean({
+        "schema": PATTERN_SCHEMA,
+        "structure": pattern.crystal.summary(),
+        "beam": {"kv": pattern.beam.kv, "wavelength_A": pattern.beam.wavelength_A,
+                 "disk_mrad": pattern.disk_mrad,
+                 "inner_potential_V": pattern.beam.inner_potential_V,
+                 "wave_number_inv_A": pattern.beam.wave_number},
+        "zone": list(frame.zone),
+        "x_axis": list(frame.x_axis),
+        "x_axis_chosen": frame.x_axis_chosen,
+        "frame_cartesian": {"x": frame.rotation[0], "y": frame.rotation[1],
+                            "beam_direction": frame.rotation[2]},
+        "strain": pattern.strain,
+        "gmax_inv_A": pattern.gmax,
+        "f_unit": F_UNIT,
+        "lines": lines,
+        "crossings": crossings,
+        "rings": [{"laue_zone": int(n), "radius_mrad": r}
+                  for n, r in zip(pattern.ring_layers, pattern.ring_radius_mrad)],
+        "max_convergence_mrad": pattern.max_convergence_mrad,
+        "overlap_hkl": list(pattern.overlap_hkl),
+        "warnings": list(pattern.warnings),
+    })
+
+
+def pattern_tables(pattern):
+    """Line table and crossing table as (header, rows) pairs for CSV."""
+    line_header = ["index", "h", "k", "l", "laue_zone", "g_inv_A", "f_abs_A", "strength",
+                   "normal_x", "normal_y", "offset_mrad"]
+    line_rows = [[i, *pattern.hkl[i], pattern.laue_zone[i], pattern.g_inv_A[i],
+                  pattern.f_abs[i], pattern.strength[i], *pattern.normal[i],
+                  pattern.offset_mrad[i]] for i in range(pattern.n_lines)]
+    cross_header = ["line_a", "line_b", "h1", "k1", "l1", "h2", "k2", "l2",
+                    "x_mrad", "y_mrad", "angle_deg"]
+    cross_rows = []
+    for k in range(pattern.n_crossings):
+        a, b = pattern.crossing_lines[k]
+        cross_rows.append([a, b, *pattern.hkl[a], *pattern.hkl[b],
+                           *pattern.crossing_mrad[k], pattern.crossing_angle_deg[k]])
+    return (line_header, line_rows), (cross_header, cross_rows)
+
+
+def pattern_text(pattern, n_strongest=12):
+    """Short readable summary of a predicted pattern."""
+    cr = pattern.crystal
+    cell = cr.cell
+    beam = pattern.beam
+    frame = pattern.frame
+    out = []
+    out.append(f"structure  {cr.name} ({cr.formula}), {cr.space_group_symbol} "
+               f"(No. {cr.space_group_number}), a b c = {cell[0]:.5f} {cell[1]:.5f} "
+               f"{cell[2]:.5f} A, angles {cell[3]:.3f} {cell[4]:.3f} {cell[5]:.3f} deg")
+    if pattern.strain is not None:
+        e = pattern.strain
+        out.append("strain     exx eyy ezz eyz exz exy = " + " ".join(
+            f"{v:.3e}" for v in (e[0, 0], e[1, 1], e[2, 2], e[1, 2], e[0, 2], e[0, 1])))
+    line = (f"beam       {beam.kv:g} kV, wavelength {beam.wavelength_A:.6f} A, "
+            f"K = {beam.wave_number:.4f} 1/A")
+    if beam.inner_potential_V is not None:
+        line += f" (inside the crystal, mean inner potential {beam.inner_potential_V:.2f} V)"
+    out.append(line)
+    how = "chosen: shortest visible zero-layer reflection" if frame.x_axis_chosen else "given"
+    out.append(f"zone       [{format_hkl(frame.zone)}], x along ({format_hkl(frame.x_axis)}) "
+               f"({how}), y = B cross x")
+    out.append(f"disk       {pattern.disk_mrad:g} mrad semi-angle; zero-layer disks "
+               f"overlap above {pattern.max_convergence_mrad:.2f} mrad "
+               f"({format_hkl(pattern.overlap_hkl)})")
+    if len(pattern.ring_layers):
+        out.append("rings      " + ", ".join(
+            f"n={n}: {r:.2f} mrad" for n, r in zip(pattern.ring_layers, pattern.ring_radius_mrad)))
+    n_holz = int(np.sum(pattern.laue_zone >= 1))
+    out.append(f"lines      {pattern.n_lines} ({n_holz} HOLZ, {pattern.n_lines - n_holz} "
+               f"zero-layer) within gmax {pattern.gmax:g} 1/A; "
+               f"{pattern.n_crossings} crossings")
+    if pattern.n_lines:
+        out.append("")
+        out.append("  strongest lines   n    |g| 1/A    |F| A   strength  offset mrad")
+        order = np.argsort(-pattern.strength, kind="stable")[:n_strongest]
+        for i in order:
+            out.append(f"  {format_hkl(pattern.hkl[i]):>14} {pattern.laue_zone[i]:4d} "
+                       f"{pattern.g_inv_A[i]:10.4f} {pattern.f_abs[i]:8.4f} "
+                       f"{pattern.strength[i]:9.3f} {pattern.offset_mrad[i]:11.4f}")
+    if pattern.warnings:
+        out.append("")
+        out.extend(f"note: {w}" for w in pattern.warnings)
+    return "\n".join(out)
