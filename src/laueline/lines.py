@@ -258,8 +258,28 @@ def ring_radius_mrad(layer, layer_spacing, wave_number):
 # enumeration and the Pattern
 # ---------------------------------------------------------------------------
 
-def enumerate_reflections(basis, zone, gmax):
+def enumerate_reflections(basis, zone, gmax, *, near_disk=None):
     """All (h k l) with 0 < |g| <= gmax and hu + kv + lw >= 0.
+
+    Parameters
+    ----------
+    basis : ndarray, shape (3, 3)
+        Direct basis matrix, angstrom.
+    zone : sequence of 3 int
+    gmax : float
+        1/angstrom.
+    near_disk : (wave_number, radius_rad), optional
+        Keep only the zero layer and the reflections whose deficit line can
+        reach a disk of this radius.  A line entering the disk satisfies
+        |gz - |g|^2 / 2K| <= |g| (alpha + alpha^2) (from the locus equation
+        at its point nearest the centre), which is tested on the index grid
+        before any vector is formed.
+
+    Returns
+    -------
+    hkl : ndarray of int, shape (n, 3)
+    g : ndarray, shape (n, 3)
+        Cartesian reciprocal vectors, 1/angstrom.
 
     Raises
     ------
@@ -269,21 +289,32 @@ def enumerate_reflections(basis, zone, gmax):
     gmax = float(gmax)
     if not math.isfinite(gmax) or gmax <= 0:
         raise InputError(f"gmax must be positive, got {gmax:g} 1/A")
-    lengths = np.linalg.norm(np.asarray(basis, dtype=float), axis=0)
-    reach = np.floor(gmax * lengths).astype(int)
-    count = int(np.prod(2 * reach.astype(np.int64) + 1))
+    basis = np.asarray(basis, dtype=float)
+    lengths = np.linalg.norm(basis, axis=0)
+    reach = np.floor(gmax * lengths).astype(np.int64)
+    count = int(np.prod(2 * reach + 1))
     if count > MAX_REFLECTIONS:
         raise InputError(
             f"gmax {gmax:g} 1/A would enumerate {count:.3g} index triples, above the "
             f"limit of {MAX_REFLECTIONS:.0e}; use a smaller --gmax")
-    axes = [np.arange(-r, r + 1, dtype=np.int64) for r in reach]
-    h, k, l = np.meshgrid(*axes, indexing="ij", copy=False)
-    hkl = np.stack([h.ravel(), k.ravel(), l.ravel()], axis=1)
-    hkl = hkl[hkl @ np.asarray(zone, dtype=np.int64) >= 0]
-    g = hkl @ np.linalg.inv(np.asarray(basis, dtype=float))  # rows: A*.T h
-    g2 = np.einsum("ij,ij->i", g, g)
-    keep = (g2 <= gmax * gmax) & (g2 > 0)
-    return hkl[keep], g[keep]
+    h = np.arange(-reach[0], reach[0] + 1)[:, None, None]
+    k = np.arange(-reach[1], reach[1] + 1)[None, :, None]
+    l = np.arange(-reach[2], reach[2] + 1)[None, None, :]
+    recip = np.linalg.inv(basis).T
+    m = recip.T @ recip  # reciprocal metric tensor
+    g2 = (m[0, 0] * h * h + m[1, 1] * k * k + m[2, 2] * l * l
+          + 2 * (m[0, 1] * h * k + m[0, 2] * h * l + m[1, 2] * k * l))
+    u, v, w = (int(x) for x in zone)
+    layer = u * h + v * k + w * l
+    mask = (g2 <= gmax * gmax) & (g2 > 0) & (layer >= 0)
+    if near_disk is not None:
+        wave_number, radius = near_disk
+        spacing = 1.0 / np.linalg.norm(basis @ np.array([u, v, w], dtype=float))
+        gap = np.abs(layer * spacing - g2 / (2.0 * wave_number))
+        mask &= (layer == 0) | (gap <= gmax * (radius + radius ** 2) * (1 + 1e-6))
+    ih, ik, il = np.nonzero(mask)
+    hkl = np.stack([ih - reach[0], ik - reach[1], il - reach[2]], axis=1)
+    return hkl, hkl @ recip.T
 
 
 @dataclass
@@ -405,7 +436,8 @@ def predict(crystal, zone, kv=200.0, disk_mrad=6.0, *, x_axis=None, gmax=4.0,
     frame = zone_frame(crystal.basis, zone_reduced, x_axis, chosen=chosen)
     radius = disk_mrad * 1e-3
 
-    hkl_all, g_all = enumerate_reflections(crystal.basis, zone_reduced, gmax)
+    hkl_all, g_all = enumerate_reflections(crystal.basis, zone_reduced, gmax,
+                                           near_disk=(K, radius))
     layer_all = hkl_all @ np.asarray(zone_reduced, dtype=np.int64)
 
     params = line_parameters(g_all, frame, K)
@@ -426,7 +458,9 @@ def predict(crystal, zone, kv=200.0, disk_mrad=6.0, *, x_axis=None, gmax=4.0,
                         "strongest zero-layer line")
     strength = f_abs / divisor
     keep = strength >= min_strength
-    order = np.lexsort((-strength[keep], layers[keep]))
+    h_kept = hkl_all[candidates[keep]]
+    rounded = np.round(strength[keep], 9)  # ties of symmetry mates sort by hkl
+    order = np.lexsort((h_kept[:, 2], h_kept[:, 1], h_kept[:, 0], -rounded, layers[keep]))
     idx = candidates[keep][order]
     hkl = hkl_all[idx]
     lp = LineParameters(params.g_perp[idx], params.g_perp_norm[idx], params.gz[idx], params.c[idx])
@@ -436,7 +470,7 @@ def predict(crystal, zone, kv=200.0, disk_mrad=6.0, *, x_axis=None, gmax=4.0,
 
     pairs, xy, angles = _all_crossings(lp, radius, min_angle_deg)
 
-    ring_layers, ring_radii = _rings(hkl_all, layer_all, crystal, frame, K, gmax)
+    ring_layers, ring_radii = _rings(crystal, frame, K, gmax)
     zolz_hkl, zolz_mrad = _zero_layer_disks(hkl_all, g_all, layer_all, crystal, frame, K)
     max_conv, overlap_hkl = _max_convergence(zolz_hkl, crystal, beam)
     if disk_mrad > max_conv:
@@ -488,27 +522,26 @@ def _all_crossings(lp, radius, min_angle_deg):
     return (np.stack([i[inside], j[inside]], axis=1).astype(int), t[inside], angles[inside])
 
 
-def _rings(hkl_all, layer_all, crystal, frame, K, gmax):
-    """Layers n >= 1 holding allowed reflections whose ring lies within gmax.
+def _rings(crystal, frame, K, gmax):
+    """HOLZ layers n >= 1 whose ring lies within gmax, skipping empty layers.
 
     Only lattice centring can empty a whole layer (glides and screws remove
-    planes and rows of reflections), so the centring test alone decides.
+    planes and rows of reflections).  The centring-allowed reflections form
+    a lattice whose layer indices are the multiples of one step; the step is
+    found from the allowed reflections of a small index box, which contains
+    a basis of that lattice for every centring type.
     """
-    top = int(layer_all.max()) if len(layer_all) else 0
-    layers = np.arange(1, top + 1)
-    if not len(layers):
-        return layers, np.zeros(0)
-    nh = layers * frame.layer_spacing
-    within = 2 * K * nh <= gmax * gmax
-    present = np.zeros(len(layers), dtype=bool)
-    upper = layer_all >= 1
+    r = np.arange(-2, 3)
+    box = np.stack(np.meshgrid(r, r, r, indexing="ij"), axis=-1).reshape(-1, 3)
     centring = crystal._absence_tables[0]
-    allowed_layers = layer_all[upper]
     if len(centring):
-        phase = hkl_all[upper] @ centring.T
-        allowed_layers = allowed_layers[np.all(np.abs(phase - np.round(phase)) < 1e-6, axis=1)]
-    present[np.unique(allowed_layers) - 1] = True
-    layers = layers[within & present]
+        phase = box @ centring.T
+        box = box[np.all(np.abs(phase - np.round(phase)) < 1e-6, axis=1)]
+    step = math.gcd(*(int(abs(n)) for n in box @ np.asarray(frame.zone)))
+    if step == 0:
+        return np.zeros(0, dtype=int), np.zeros(0)
+    top = int(gmax * gmax / (2 * K * frame.layer_spacing))
+    layers = np.arange(step, top + 1, step)
     return layers, ring_radius_mrad(layers, frame.layer_spacing, K)
 
 
