@@ -156,6 +156,11 @@ def main(argv=None):
     except FitError as exc:
         sys.stderr.write(f"laueline: fit did not converge: {exc}\n")
         return EXIT_NOT_CONVERGED
+    except BrokenPipeError:  # output piped into head or less and closed early
+        import os
+
+        os.dup2(os.open(os.devnull, os.O_WRONLY), sys.stdout.fileno())
+        return 0
 
 
 if __name__ == "__main__":  # pragma: no cover

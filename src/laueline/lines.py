@@ -476,7 +476,7 @@ def predict(crystal, zone, kv=200.0, disk_mrad=6.0, *, x_axis=None, gmax=4.0,
     if disk_mrad > max_conv:
         warnings.append(f"a {disk_mrad:g} mrad disk overlaps the zero-layer disks "
                         f"(largest semi-angle {max_conv:.2f} mrad, set by "
-                        f"{''.join(_fmt_index(v) for v in overlap_hkl)})")
+                        f"{' '.join(str(v) for v in overlap_hkl)})")
     if len(hkl) == 0:
         warnings.append("no deficit line above the strength threshold enters the disk")
 
@@ -489,10 +489,6 @@ def predict(crystal, zone, kv=200.0, disk_mrad=6.0, *, x_axis=None, gmax=4.0,
         crossing_angle_deg=angles, ring_layers=ring_layers, ring_radius_mrad=ring_radii,
         max_convergence_mrad=max_conv, overlap_hkl=overlap_hkl,
         zero_layer_hkl=zolz_hkl, zero_layer_mrad=zolz_mrad, warnings=warnings)
-
-
-def _fmt_index(v):
-    return f"-{-v}" if v < 0 else str(v)
 
 
 def _all_crossings(lp, radius, min_angle_deg):

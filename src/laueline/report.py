@@ -210,14 +210,20 @@ def pattern_text(pattern, n_strongest=12):
     out.append(f"lines      {pattern.n_lines} ({n_holz} HOLZ, {pattern.n_lines - n_holz} "
                f"zero-layer) within gmax {pattern.gmax:g} 1/A; "
                f"{pattern.n_crossings} crossings")
-    if pattern.n_lines:
+    holz = np.flatnonzero(pattern.laue_zone >= 1)
+    if len(holz):
         out.append("")
-        out.append("  strongest lines   n    |g| 1/A    |F| A   strength  offset mrad")
-        order = np.argsort(-pattern.strength, kind="stable")[:n_strongest]
-        for i in order:
-            out.append(f"  {format_hkl(pattern.hkl[i]):>14} {pattern.laue_zone[i]:4d} "
+        out.append("  strongest HOLZ lines   n    |g| 1/A    |F| A   strength  offset mrad")
+        for i in holz[np.argsort(-pattern.strength[holz], kind="stable")[:n_strongest]]:
+            out.append(f"  {format_hkl(pattern.hkl[i]):>19} {pattern.laue_zone[i]:4d} "
                        f"{pattern.g_inv_A[i]:10.4f} {pattern.f_abs[i]:8.4f} "
                        f"{pattern.strength[i]:9.3f} {pattern.offset_mrad[i]:11.4f}")
+    zolz = np.flatnonzero(pattern.laue_zone == 0)
+    if len(zolz):
+        out.append("")
+        out.append(f"  zero-layer lines (strength up to {pattern.strength[zolz].max():.3g} on "
+                   "the HOLZ scale): " + ", ".join(format_hkl(h) for h in pattern.hkl[zolz][:12])
+                   + (" ..." if len(zolz) > 12 else ""))
     if pattern.warnings:
         out.append("")
         out.extend(f"note: {w}" for w in pattern.warnings)
