@@ -97,6 +97,64 @@ def _cmd_predict(args):
     return 0
 
 
+def _stiffness_and_axes(args, crystal):
+    from .strain import cubic_stiffness, read_stiffness, sample_axes
+
+    stiffness = None
+    if args.cubic_elastic_gpa is not None:
+        stiffness = cubic_stiffness(*args.cubic_elastic_gpa)
+    elif args.stiffness_gpa is not None:
+        stiffness = read_stiffness(args.stiffness_gpa)
+    axes = None
+    if (args.sample_x is None) != (args.sample_z is None):
+        raise InputError("a sample frame needs both --sample-x and --sample-z")
+    if args.sample_x is not None:
+        axes = sample_axes(crystal.basis, args.sample_x, args.sample_z)
+    return stiffness, axes
+
+
+def _cmd_refine(args):
+    from . import report
+    from .points import read_points
+    from .refine import calibration_from_document, refine
+
+    report.check_outputs([args.json], args.force, args.figure)
+    crystal = _load_crystal(args)
+    points = read_points(args.points, y_up=args.y_up)
+    calibration = None
+    if args.calibration:
+        calibration = calibration_from_document(
+            report.read_json(args.calibration, "laueline.fit"))
+    stiffness, axes = _stiffness_and_axes(args, crystal)
+    flip = -1.0 if args.y_up else 1.0
+    center = None if args.center_px is None else (args.center_px[0], flip * args.center_px[1])
+    result = refine(
+        crystal, args.zone, points, kv=args.kv, model=args.model, x_axis=args.x_axis,
+        free=args.free or (), hold=args.hold or (), unique_axis=args.unique_axis,
+        center_px=center, scale_px_per_mrad=args.scale_px_per_mrad,
+        rotation_deg=args.rotation_deg, mirror=args.mirror, calibration=calibration,
+        robust=args.robust, disk_mrad=args.disk_mrad, min_strength=args.min_strength,
+        min_angle_deg=args.min_angle_deg, match_mrad=args.match_mrad,
+        inner_potential=args.inner_potential, stiffness=stiffness, sample_axes=axes)
+    print(report.fit_text(result, y_up=args.y_up))
+    if args.json:
+        report.write_json(report.fit_document(result, y_up=args.y_up,
+                                              calibration_source=args.calibration,
+                                              points_source=args.points),
+                          args.json, args.force)
+    if args.figure:
+        from .plot import fit_figure, save_figure
+
+        save_figure(fit_figure(result, crystal), args.figure)
+    written = [p for p in (args.json, args.figure) if p]
+    if written:
+        print("\nwrote " + ", ".join(str(p) for p in written))
+    if not result.converged:
+        sys.stderr.write("laueline: the fit did not converge; see the warnings\n")
+        return EXIT_NOT_CONVERGED
+    return 0
+
+
 def _cmd_structures(args):
     from .crystal import bundled_structures, read_crystal
 
@@ -138,6 +196,60 @@ def build_parser():
     _add_output_options(p, csv=True)
     p.add_argument("--mark-crossings", action="store_true", help="mark crossings in the figure")
     p.set_defaults(run=_cmd_predict)
+
+    p = sub.add_parser("refine", help="fit cell or strain (and detector, voltage) to crossings",
+                       description="Fit measured HOLZ line crossings: cell or strain, detector "
+                                   "and optionally the voltage, with uncertainties.")
+    _add_crystal_options(p)
+    p.add_argument("--points", required=True, metavar="CSV",
+                   help="crossings in pixels: columns x, y (X, Y), optional h1 k1 l1 h2 k2 l2 "
+                        "and sigma_px")
+    p.add_argument("--y-up", action="store_true",
+                   help="the points' y grows upward (default: down, as image rows)")
+    from .refine import MODELS
+
+    p.add_argument("--model", choices=MODELS, default="strain",
+                   help="what of the crystal is refined (strain)")
+    p.add_argument("--unique-axis", choices=["a", "b", "c"],
+                   help="unique axis of a tetragonal (c) or monoclinic (b) cell")
+    p.add_argument("--free", nargs="+", action="extend", metavar="NAME",
+                   help="free further parameters: kv, scale, center, rotation, strain "
+                        "components or cell parameters")
+    p.add_argument("--hold", nargs="+", action="extend", metavar="NAME",
+                   help="hold parameters at their start values")
+    p.add_argument("--center-px", nargs=2, type=float, metavar=("X", "Y"),
+                   help="start value of the pattern centre (zone-axis direction) in px")
+    p.add_argument("--scale-px-per-mrad", type=float, help="start value of the camera scale")
+    p.add_argument("--rotation-deg", type=float, help="start value of the detector rotation")
+    p.add_argument("--mirror", dest="mirror", action="store_const", const=True, default=None,
+                   help="the detector shows the disk frame mirrored")
+    p.add_argument("--no-mirror", dest="mirror", action="store_const", const=False,
+                   help="the detector does not mirror (default: decided from the data)")
+    p.add_argument("--calibration", metavar="FIT.json",
+                   help="a reference fit: hold its voltage and scale, start from its "
+                        "centre, rotation and mirror")
+    p.add_argument("--robust", action="store_true",
+                   help="down-weight outliers and list those rejected")
+    p.add_argument("--disk-mrad", type=float, default=6.0,
+                   help="disk radius in mrad for predicting and checking crossings (6)")
+    p.add_argument("--min-strength", type=float, default=0.1,
+                   help="strength threshold of candidate lines for unlabelled points (0.1)")
+    p.add_argument("--min-angle-deg", type=float, default=5.0,
+                   help="smallest crossing angle of candidates in degrees (5)")
+    p.add_argument("--match-mrad", type=float, default=0.25,
+                   help="initial distance gate for assigning unlabelled points, mrad (0.25)")
+    elastic = p.add_mutually_exclusive_group()
+    elastic.add_argument("--cubic-elastic-GPa", dest="cubic_elastic_gpa", nargs=3, type=float,
+                         metavar=("C11", "C12", "C44"),
+                         help="cubic elastic constants in GPa, for the stress")
+    elastic.add_argument("--stiffness-GPa", dest="stiffness_gpa", metavar="FILE",
+                         help="6x6 Voigt stiffness in GPa (reference Cartesian frame)")
+    p.add_argument("--sample-x", nargs=3, type=float, metavar=("U", "V", "W"),
+                   help="crystal direction of the sample x axis (e.g. a channel direction)")
+    p.add_argument("--sample-z", nargs=3, type=float, metavar=("U", "V", "W"),
+                   help="crystal direction of the sample z axis (e.g. the growth direction)")
+    _add_output_options(p)
+    p.set_defaults(run=_cmd_refine)
 
     p = sub.add_parser("structures", help="list the bundled structures")
     p.set_defaults(run=_cmd_structures)

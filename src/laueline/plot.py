@@ -10,7 +10,7 @@ from __future__ import annotations
 import numpy as np
 
 
-__all__ = ["pattern_figure", "save_figure", "draw_disk_lines", "hkl_label"]
+__all__ = ["pattern_figure", "fit_figure", "save_figure", "draw_disk_lines", "hkl_label"]
 
 _DISK_FILL = "#f4f1ea"
 _DISK_EDGE = "#5b5b5b"
@@ -130,4 +130,72 @@ def pattern_figure(pattern, *, n_labels=10, show_crossings=False):
     ax_all.set_xlabel("mrad")
     ax_all.set_title(f"zero-layer disks (radius {pattern.disk_mrad:g} mrad) and HOLZ rings",
                      fontsize=10)
+    return fig
+
+
+def _nice_factor(raw):
+    """Largest of 1, 2, 5 x 10^k not above ``raw`` (at least 1)."""
+    if not np.isfinite(raw) or raw <= 1:
+        return 1.0
+    k = np.floor(np.log10(raw))
+    for m in (5, 2, 1):
+        if m * 10 ** k <= raw:
+            return float(m * 10 ** k)
+    return float(10 ** k)
+
+
+def fit_figure(result, crystal, *, image=None, magnify=None):
+    """Measured points over the fitted loci, with magnified residual vectors.
+
+    Parameters
+    ----------
+    result : laueline.refine.FitResult
+    crystal : Crystal
+        The reference crystal the fit was made with.
+    image : ndarray, optional
+        The pattern, drawn underneath in pixel coordinates (row = y down).
+    magnify : float, optional
+        Residual magnification; by default a 1-2-5 value drawing the rms
+        residual at about 8 % of the disk radius.
+    """
+    from .refine import fitted_pattern
+
+    pattern = fitted_pattern(result, crystal)
+    det = result.detector
+    fig = _new_figure(7.2, 7.0)
+    ax = fig.subplots()
+    if image is not None:
+        ax.imshow(image, cmap="gray", origin="upper", interpolation="nearest")
+    draw_disk_lines(ax, pattern, n_labels=8, show_crossings=False, to_plot=det.to_pixels)
+    xy = np.array([[p["x_px"], p["y_px"]] for p in result.points])
+    res = np.array([p["residual_px"] for p in result.points], dtype=float)
+    used = np.array([p["used"] for p in result.points])
+    radius_px = result.disk_mrad * det.scale_px_per_mrad
+    if magnify is None:
+        rms = result.rms_px if np.isfinite(result.rms_px) and result.rms_px > 0 else 1.0
+        magnify = _nice_factor(0.08 * radius_px / rms)
+    ok = used & np.all(np.isfinite(res), axis=1)
+    fitted = xy - res
+    ax.quiver(fitted[ok, 0], fitted[ok, 1], magnify * res[ok, 0], magnify * res[ok, 1],
+              angles="xy", scale_units="xy", scale=1, color=_CROSSING, width=0.004,
+              zorder=5)
+    ax.plot(xy[used, 0], xy[used, 1], linestyle="none", marker="o", markersize=3.5,
+            markerfacecolor="#2a9d8f", markeredgecolor="white", markeredgewidth=0.4,
+            zorder=6, label="measured, used")
+    if np.any(~used):
+        ax.plot(xy[~used, 0], xy[~used, 1], linestyle="none", marker="x", markersize=5,
+                color="#6c6c6c", zorder=6, label="left out")
+    c = np.asarray(det.center_px)
+    pad = 1.08 * radius_px
+    ax.set_xlim(c[0] - pad, c[0] + pad)
+    ax.set_ylim(c[1] + pad, c[1] - pad)  # rows grow downward
+    ax.set_aspect("equal")
+    ax.set_xlabel("x (px)")
+    ax.set_ylabel("y (px, down)")
+    zone = "".join(str(v) for v in result.zone) if all(0 <= v < 10 for v in result.zone) \
+        else " ".join(str(v) for v in result.zone)
+    ax.set_title(f"{result.structure['name']} [{zone}], model {result.model}: "
+                 f"{result.n_used} points, rms {result.rms_px:.3g} px\n"
+                 f"residuals drawn {magnify:g} x", fontsize=10)
+    ax.legend(loc="lower right", fontsize=8, framealpha=0.9)
     return fig

@@ -19,6 +19,9 @@ from .errors import InputError
 
 __all__ = [
     "PATTERN_SCHEMA",
+    "FIT_SCHEMA",
+    "fit_document",
+    "fit_text",
     "FIGURE_SUFFIXES",
     "check_outputs",
     "write_json",
@@ -227,4 +230,180 @@ def pattern_text(pattern, n_strongest=12):
     if pattern.warnings:
         out.append("")
         out.extend(f"note: {w}" for w in pattern.warnings)
+    return "\n".join(out)
+
+
+# ---------------------------------------------------------------------------
+# fit
+# ---------------------------------------------------------------------------
+
+FIT_SCHEMA = "laueline.fit/1"
+
+_UNIT_OF = {"exx": "", "eyy": "", "ezz": "", "eyz": "", "exz": "", "exy": "",
+            "a": "A", "b": "A", "c": "A", "alpha": "deg", "beta": "deg", "gamma": "deg",
+            "kv": "kV", "center_x": "px", "center_y": "px", "scale": "px/mrad",
+            "rotation": "deg"}
+
+
+def fit_document(result, *, y_up=False, calibration_source=None, points_source=None):
+    """The ``laueline.fit/1`` document of a :class:`~laueline.refine.FitResult`.
+
+    With ``y_up`` the point coordinates and residuals are given back in the
+    caller's y-up convention, as read.
+    """
+    from .refine import CAUTIONS
+
+    flip = np.array([1.0, -1.0 if y_up else 1.0])
+    st = result.strain
+    det = result.detector
+    centre = np.asarray(det.center_px) * flip
+    points = []
+    for row in result.points:
+        points.append({"x_px": row["x_px"], "y_px": row["y_px"] * flip[1],
+                       "hkl_a": row["hkl_a"], "hkl_b": row["hkl_b"],
+                       "residual_px": list(np.asarray(row["residual_px"]) * flip),
+                       "used": row["used"], "note": row["note"]})
+    doc = {
+        "schema": FIT_SCHEMA,
+        "model": result.model,
+        "unique_axis": result.unique_axis,
+        "structure": result.structure,
+        "zone": list(result.zone), "x_axis": list(result.x_axis),
+        "reference_cell": result.reference_cell, "cell": result.cell,
+        "cell_sigma": result.cell_sigma,
+        "kv": result.kv, "kv_sigma": result.kv_sigma,
+        "inner_potential": result.inner_potential,
+        "wave_number_inv_A": result.wave_number,
+        "disk_mrad": result.disk_mrad,
+        "detector": {"center_px": centre, "scale_px_per_mrad": det.scale_px_per_mrad,
+                     "rotation_deg": det.rotation_deg, "mirror": det.mirror,
+                     "y_up": bool(y_up), "sigma": result.detector_sigma},
+        "strain": {"frame": "reference-cartesian",
+                   "green_lagrange": st.green_lagrange,
+                   "green_lagrange_sigma": st.green_lagrange_sigma,
+                   "small": st.small, "small_sigma": st.small_sigma,
+                   "principal": st.principal, "principal_sigma": st.principal_sigma,
+                   "principal_directions": st.principal_directions.T,
+                   "volumetric": st.volumetric, "volumetric_sigma": st.volumetric_sigma,
+                   "covariance_voigt": st.covariance_voigt},
+        "stress_GPa": st.stress_GPa, "stress_sigma_GPa": st.stress_sigma_GPa,
+        "parameters": result.parameters,
+        "values": result.values, "sigmas": result.sigmas,
+        "units": [_UNIT_OF[n] for n in result.parameters],
+        "correlation": result.correlation,
+        "condition_number": result.condition_number,
+        "points": points,
+        "rms_px": result.rms_px, "n_points": result.n_points, "n_used": result.n_used,
+        "chi2": result.chi2, "dof": result.dof, "converged": result.converged,
+        "calibration": calibration_source, "points_file": points_source,
+        "warnings": result.warnings,
+        "cautions": list(CAUTIONS),
+    }
+    if st.sample_axes is not None:
+        doc["strain_sample"] = {
+            "axes_cartesian": st.sample_axes,
+            "green_lagrange": st.sample_green_lagrange,
+            "green_lagrange_sigma": st.sample_green_lagrange_sigma,
+            "stress_GPa": st.sample_stress_GPa, "stress_sigma_GPa": st.sample_stress_sigma_GPa,
+        }
+    return _clean(doc)
+
+
+def _value_sigma(value, sigma, fmt):
+    if sigma is None:
+        return f"{value:{fmt}} (held)"
+    return f"{value:{fmt}} +- {sigma:.2g}"
+
+
+_COMPONENTS = [("xx", 0, 0), ("yy", 1, 1), ("zz", 2, 2), ("yz", 1, 2), ("xz", 0, 2), ("xy", 0, 1)]
+
+
+def _tensor_rows(label, tensor, sigma, scale=1.0, unit=""):
+    out = []
+    sig_values = [sigma[i, j] for _, i, j in _COMPONENTS]
+    positive = [s for s in sig_values if s > 0]
+    floor = min(positive) if positive else 0.0
+    for (name, i, j), s in zip(_COMPONENTS, sig_values):
+        note = ""
+        if floor > 0 and s > 10 * floor:
+            note = "  poorly determined from this zone axis"
+        out.append(f"  {label}{name} {tensor[i, j] * scale:+12.3e} +- {s * scale:9.2e} "
+                   f"{unit}{note}")
+    return out
+
+
+def fit_text(result, *, y_up=False):
+    """Readable report of a fit: parameters, cell, strain, stress, warnings, cautions."""
+    out = []
+    zone = " ".join(str(v) for v in result.zone)
+    status = "" if result.converged else "   NOT CONVERGED"
+    out.append(f"fit        {result.structure['name']} [{zone}], model {result.model}"
+               + (f" (unique axis {result.unique_axis})" if result.unique_axis else "")
+               + f": {result.n_used} of {result.n_points} points used, "
+               f"rms {result.rms_px:.3g} px, {result.dof} degrees of freedom{status}")
+    out.append("")
+    out.append(f"  {'parameter':10} {'value':>16} {'sigma':>11}  unit")
+    for name, value, sigma in zip(result.parameters, result.values, result.sigmas):
+        if name == "center_y" and y_up:
+            value = -value
+        fmt = ".4e" if name.startswith("e") else ".5f"
+        out.append(f"  {name:10} {value:16{fmt}} {sigma:11.2e}  {_UNIT_OF[name]}")
+    det = result.detector
+    held = [n for n, present in (("kv", "kv" in result.parameters),
+                                 ("scale", "scale" in result.parameters),
+                                 ("rotation", "rotation" in result.parameters)) if not present]
+    if held:
+        values = {"kv": f"{result.kv:.4f} kV", "scale": f"{det.scale_px_per_mrad:.5f} px/mrad",
+                  "rotation": f"{det.rotation_deg:.4f} deg"}
+        out.append("  held: " + ", ".join(f"{n} {values[n]}" for n in held))
+    out.append(f"  mirror: {'yes' if det.mirror else 'no'}; "
+               f"condition number {result.condition_number:.3g}")
+    out.append("")
+    names = ["a", "b", "c", "alpha", "beta", "gamma"]
+    out.append("  cell       " + "  ".join(
+        f"{n} {v:.6f}" + (f" +- {s:.1e}" if s > 0 else "")
+        for n, v, s in zip(names, result.cell, result.cell_sigma)))
+    out.append("  reference  " + "  ".join(f"{n} {v:.6f}"
+                                           for n, v in zip(names, result.reference_cell)))
+    st = result.strain
+    out.append("")
+    if result.model == "fixed":
+        out.append("  strain     held at zero (model fixed: the reference cell)")
+        return _fit_tail(out, result, y_up)
+    out.append("  strain (Green-Lagrange, reference Cartesian frame)")
+    out += _tensor_rows("e", st.green_lagrange, st.green_lagrange_sigma)
+    out.append("  principal  " + "  ".join(f"{v:+.3e} +- {s:.1e}"
+                                           for v, s in zip(st.principal, st.principal_sigma)))
+    out.append(f"  volume change {st.volumetric:+.3e} +- {st.volumetric_sigma:.1e}")
+    if st.sample_axes is not None:
+        out.append("")
+        out.append("  strain in the sample frame (x', y', z')")
+        out += _tensor_rows("e", st.sample_green_lagrange, st.sample_green_lagrange_sigma)
+    if st.stress_GPa is not None:
+        out.append("")
+        out.append("  stress (Hooke's law, reference Cartesian frame)")
+        out += _tensor_rows("s", st.stress_GPa, st.stress_sigma_GPa, 1.0, "GPa")
+        if st.sample_stress_GPa is not None:
+            out.append("  stress in the sample frame")
+            out += _tensor_rows("s", st.sample_stress_GPa, st.sample_stress_sigma_GPa, 1.0,
+                                "GPa")
+    return _fit_tail(out, result, y_up)
+
+
+def _fit_tail(out, result, y_up):
+    from .refine import CAUTIONS
+
+    left = [i for i, row in enumerate(result.points) if not row["used"]]
+    if left:
+        out.append("")
+        out.append("  points left out")
+        for i in left:
+            row = result.points[i]
+            y = -row["y_px"] if y_up else row["y_px"]
+            out.append(f"    #{i + 1} ({row['x_px']:.1f}, {y:.1f}) px: {row['note']}")
+    if result.warnings:
+        out.append("")
+        out.extend(f"warning: {w}" for w in result.warnings)
+    out.append("")
+    out.extend(f"caution: {c}" for c in CAUTIONS)
     return "\n".join(out)
