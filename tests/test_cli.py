@@ -104,3 +104,116 @@ def test_bad_input_one_line_exit_2_nothing_written(tmp_path, capsys, args):
     lines = [ln for ln in err.splitlines() if ln.strip()]
     assert len(lines) == 1 and lines[0].startswith("laueline: error:"), err
     assert not out_json.exists()
+
+
+# -- refine -----------------------------------------------------------------
+
+@pytest.fixture()
+def crossing_files(tmp_path):
+    """Reference (197.3 kV) and strained point files, labelled and not."""
+    import numpy as np
+    from conftest import DETECTOR, synthetic_points
+
+    from laueline import read_crystal
+    from laueline.points import write_points
+
+    si = read_crystal("Si")
+    rng = np.random.default_rng(2)
+    out = {}
+    for name, kv, strain in [("ref", 197.3, None), ("strained", 197.3,
+                                                     [1e-3, -5e-4, 2e-3, 0, 0, 1e-4])]:
+        pts = synthetic_points(si, (2, 3, 0), kv=kv, strain=strain, noise_px=0.1, rng=rng)
+        out[name] = tmp_path / f"{name}.csv"
+        write_points(out[name], pts.xy_px, pts.hkl_a, pts.hkl_b)
+        out[name + "-bare"] = tmp_path / f"{name}-bare.csv"
+        write_points(out[name + "-bare"], pts.xy_px)
+    return out
+
+
+def test_calibration_workflow(tmp_path, capsys, crossing_files):
+    cal, fit, fig = tmp_path / "cal.json", tmp_path / "fit.json", tmp_path / "fit.png"
+    code, out, err = run(capsys, "refine", "Si", "--zone", 2, 3, 0, "--kv", 200, "--points",
+                         crossing_files["ref"], "--model", "fixed", "--free", "kv",
+                         "--x-axis", 0, 0, 4, "--json", cal)
+    assert code == 0, err
+    doc = json.loads(cal.read_text())
+    assert doc["schema"] == "laueline.fit/1"
+    assert doc["kv"] == pytest.approx(197.3, abs=0.02)  # 0.1 px noise, sigma ~ 0.001 kV
+    code, out, err = run(capsys, "refine", "Si", "--zone", 2, 3, 0, "--points",
+                         crossing_files["strained-bare"], "--calibration", cal,
+                         "--x-axis", 0, 0, 4, "--cubic-elastic-GPa", 165.7, 63.9, 79.6,
+                         "--json", fit, "--figure", fig)
+    assert code == 0, err
+    assert "caution" in out and "relaxes" in out and "dynamical" in out
+    doc = json.loads(fit.read_text())
+    for key in ["model", "zone", "x_axis", "reference_cell", "cell", "cell_sigma", "kv",
+                "kv_sigma", "detector", "strain", "stress_GPa", "stress_sigma_GPa",
+                "parameters", "correlation", "points", "rms_px", "n_points", "n_used",
+                "warnings"]:
+        assert key in doc
+    assert doc["kv"] == pytest.approx(json.loads(cal.read_text())["kv"])  # held
+    assert doc["kv_sigma"] is None and "scale" not in doc["parameters"]
+    assert doc["strain"]["frame"] == "reference-cartesian"
+    assert set(doc["detector"]["sigma"]) == {"center_px", "scale_px_per_mrad", "rotation_deg"}
+    point = doc["points"][0]
+    assert set(point) >= {"x_px", "y_px", "hkl_a", "hkl_b", "residual_px", "used"}
+    assert fig.stat().st_size > 10_000
+
+
+def _write(tmp_path, text):
+    p = tmp_path / "pts.csv"
+    p.write_text(text)
+    return p
+
+
+@pytest.mark.parametrize("text", [
+    "u,v\n1,2\n3,4\n",                                    # missing x, y
+    "x,y,area\n1,2,3\n4,5,6\n",                           # extra column
+    "x,y\n1,abc\n",                                       # non-numeric
+    "x,y\n1,nan\n2,3\n",                                  # NaN
+    "x,y,h1,k1,l1\n1,2,1,1,1\n",                          # incomplete labels
+    "x,y\n",                                              # header only
+    "",                                                   # empty
+])
+def test_refine_bad_points_file(tmp_path, capsys, text):
+    code, out, err = run(capsys, "refine", "Si", "--zone", 2, 3, 0, "--points",
+                         _write(tmp_path, text), "--scale-px-per-mrad", 40)
+    assert code == 2
+    assert len(err.strip().splitlines()) == 1 and err.startswith("laueline: error:")
+
+
+def test_refine_bad_requests(tmp_path, capsys, crossing_files):
+    base = ["refine", "Si", "--zone", 2, 3, 0, "--x-axis", 0, 0, 4, "--points"]
+    wrong = tmp_path / "wrong.json"
+    wrong.write_text('{"schema": "laueline.pattern/1"}')
+    few = tmp_path / "few.csv"
+    few.write_text("\n".join(crossing_files["ref"].read_text().splitlines()[:4]) + "\n")
+    cases = [
+        (base + [crossing_files["ref"], "--free", "kv"], "same way"),
+        (base + [crossing_files["ref"], "--calibration", wrong], "schema"),
+        (base + [few], "observations"),
+        (base + [crossing_files["ref-bare"]], "scale"),
+        (base + [crossing_files["ref"], "--center-px", 5000, 5000, "--scale-px-per-mrad", 40],
+         "outside"),
+        (base + [crossing_files["ref"], "--hold", "foo"], "cannot hold"),
+    ]
+    for argv, message in cases:
+        code, out, err = run(capsys, *argv)
+        assert code == 2, (argv, err)
+        assert len(err.strip().splitlines()) == 1 and message in err, err
+
+
+def test_refine_not_converged_exits_3(tmp_path, capsys, crossing_files, monkeypatch):
+    import scipy.optimize
+
+    real = scipy.optimize.least_squares
+
+    def stalled(*args, **kwargs):
+        res = real(*args, **{**kwargs, "max_nfev": 1})
+        res.status = 0
+        return res
+
+    monkeypatch.setattr(scipy.optimize, "least_squares", stalled)
+    code, out, err = run(capsys, "refine", "Si", "--zone", 2, 3, 0, "--x-axis", 0, 0, 4,
+                         "--points", crossing_files["strained"])
+    assert code == 3 and "did not converge" in err

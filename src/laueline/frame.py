@@ -32,7 +32,7 @@ import numpy as np
 
 from .errors import InputError
 
-__all__ = ["ZoneFrame", "zone_frame", "default_x_axis", "reduce_indices",
+__all__ = ["ZoneFrame", "zone_frame", "frame_rotations", "default_x_axis", "reduce_indices",
            "incident_wavevectors"]
 
 
@@ -118,14 +118,23 @@ def zone_frame(basis, zone, x_axis, *, chosen=False):
             f"[{' '.join(map(str, zone))}]: hu+kv+lw = {dot}, it must be 0")
     basis = np.asarray(basis, dtype=float)
     direct = basis @ np.asarray(zone, dtype=float)
-    beam = direct / np.linalg.norm(direct)
-    g = np.linalg.inv(basis).T @ hkl
-    x = g - (g @ beam) * beam  # exact zero projection up to rounding
-    x /= np.linalg.norm(x)
-    y = np.cross(beam, x)
-    return ZoneFrame(zone=zone, x_axis=hkl_int, rotation=np.array([x, y, beam]),
+    return ZoneFrame(zone=zone, x_axis=hkl_int, rotation=frame_rotations(basis, zone, hkl_int),
                      layer_spacing=1.0 / float(np.linalg.norm(direct)),
                      x_axis_chosen=chosen)
+
+
+def frame_rotations(bases, zone, x_axis):
+    """Rows (x, y, B) of the disk frame for one basis (3, 3) or a stack (..., 3, 3).
+
+    No validation: :func:`zone_frame` checks the indices.
+    """
+    bases = np.asarray(bases, dtype=float)
+    direct = bases @ np.asarray(zone, dtype=float)
+    beam = direct / np.linalg.norm(direct, axis=-1, keepdims=True)
+    g = np.swapaxes(np.linalg.inv(bases), -1, -2) @ np.asarray(x_axis, dtype=float)
+    x = g - np.sum(g * beam, axis=-1, keepdims=True) * beam  # zero up to rounding
+    x /= np.linalg.norm(x, axis=-1, keepdims=True)
+    return np.stack([x, np.cross(beam, x), beam], axis=-2)
 
 
 def default_x_axis(crystal, zone):

@@ -41,7 +41,7 @@ import numpy as np
 
 from .crystal import MAX_REFLECTIONS, Crystal
 from .errors import InputError
-from .frame import ZoneFrame, default_x_axis, reduce_indices, zone_frame
+from .frame import ZoneFrame, default_x_axis, frame_rotations, reduce_indices, zone_frame
 from .optics import Beam, make_beam
 
 __all__ = [
@@ -79,12 +79,23 @@ class LineParameters:
 
     @property
     def normal(self):
-        return self.g_perp / self.g_perp_norm[:, None]
+        return self.g_perp / self.g_perp_norm[..., None]
 
     @property
     def straight_offset(self):
         """Offset of the straight-line approximation, radians."""
         return (self.gz - self.c) / self.g_perp_norm
+
+
+def _parameters_from_components(g, wave_number):
+    """LineParameters from frame components g (..., 3) and K (scalar or (...,))."""
+    g_perp = g[..., :2]
+    norm = np.hypot(g_perp[..., 0], g_perp[..., 1])
+    k = np.asarray(wave_number, dtype=float)
+    if k.ndim:
+        k = k.reshape(k.shape + (1,) * (g.ndim - 1 - k.ndim))
+    c = np.sum(g * g, axis=-1) / (2.0 * k)
+    return LineParameters(g_perp, norm, g[..., 2], c)
 
 
 def line_parameters(g_cartesian, frame, wave_number):
@@ -99,10 +110,7 @@ def line_parameters(g_cartesian, frame, wave_number):
         K in 1/angstrom.
     """
     g = frame.components(np.asarray(g_cartesian, dtype=float))
-    g_perp = g[:, :2]
-    norm = np.hypot(g_perp[:, 0], g_perp[:, 1])
-    c = np.sum(g * g, axis=1) / (2.0 * wave_number)
-    return LineParameters(g_perp, norm, g[:, 2], c)
+    return _parameters_from_components(g, wave_number)
 
 
 def locus_offset(params, q=0.0):
@@ -163,38 +171,60 @@ def _locus_points(params, radius, n_points):
     return p[..., None] * normal[:, None, :] + q[..., None] * along[:, None, :]
 
 
-def _solve_crossings(pa, pb, guess=None):
-    """Newton's method on two exact loci per pair; returns points in radians."""
+def _straight_intersections(pa, pb):
     na, nb = pa.normal, pb.normal
-    if guess is None:
-        da, db = pa.straight_offset, pb.straight_offset
-        det = na[:, 0] * nb[:, 1] - na[:, 1] * nb[:, 0]
-        with np.errstate(divide="ignore", invalid="ignore"):
-            tx = (da * nb[:, 1] - db * na[:, 1]) / det
-            ty = (na[:, 0] * db - nb[:, 0] * da) / det
-        t = np.stack([tx, ty], axis=1)
-    else:
-        t = np.array(guess, dtype=float)
+    da, db = pa.straight_offset, pb.straight_offset
+    det = na[..., 0] * nb[..., 1] - na[..., 1] * nb[..., 0]
+    with np.errstate(divide="ignore", invalid="ignore"):
+        return np.stack([(da * nb[..., 1] - db * na[..., 1]) / det,
+                         (na[..., 0] * db - nb[..., 0] * da) / det], axis=-1)
+
+
+def _solve_crossings(pa, pb, guess=None):
+    """Newton's method on two exact loci per pair; returns points in radians.
+
+    Arrays of ``pa`` and ``pb`` may carry leading batch dimensions.
+    """
+    t = _straight_intersections(pa, pb) if guess is None else np.array(guess, dtype=float)
+    ga, gb = pa.g_perp / pa.g_perp_norm[..., None], pb.g_perp / pb.g_perp_norm[..., None]
+    za, zb = pa.gz / pa.g_perp_norm, pb.gz / pb.g_perp_norm
+    ca, cb = pa.c / pa.g_perp_norm, pb.c / pb.g_perp_norm
     for _ in range(_NEWTON_STEPS):
-        axial = np.sqrt(1.0 - np.sum(t * t, axis=1))
-        fa = (np.sum(t * pa.g_perp, axis=1) - axial * pa.gz + pa.c) / pa.g_perp_norm
-        fb = (np.sum(t * pb.g_perp, axis=1) - axial * pb.gz + pb.c) / pb.g_perp_norm
-        ja = (pa.g_perp + (pa.gz / axial)[:, None] * t) / pa.g_perp_norm[:, None]
-        jb = (pb.g_perp + (pb.gz / axial)[:, None] * t) / pb.g_perp_norm[:, None]
-        det = ja[:, 0] * jb[:, 1] - ja[:, 1] * jb[:, 0]
-        step_x = (fa * jb[:, 1] - fb * ja[:, 1]) / det
-        step_y = (ja[:, 0] * fb - jb[:, 0] * fa) / det
-        t = t - np.stack([step_x, step_y], axis=1)
+        tx, ty = t[..., 0], t[..., 1]
+        axial = np.sqrt(1.0 - tx * tx - ty * ty)
+        fa = tx * ga[..., 0] + ty * ga[..., 1] - axial * za + ca
+        fb = tx * gb[..., 0] + ty * gb[..., 1] - axial * zb + cb
+        sa, sb = za / axial, zb / axial
+        ja0, ja1 = ga[..., 0] + sa * tx, ga[..., 1] + sa * ty
+        jb0, jb1 = gb[..., 0] + sb * tx, gb[..., 1] + sb * ty
+        det = ja0 * jb1 - ja1 * jb0
+        t = np.stack([tx - (fa * jb1 - fb * ja1) / det,
+                      ty - (ja0 * fb - jb0 * fa) / det], axis=-1)
     return t
 
 
 def _gradient_angles_deg(pa, pb, t):
-    axial = np.sqrt(1.0 - np.sum(t * t, axis=1))
-    ja = pa.g_perp + (pa.gz / axial)[:, None] * t
-    jb = pb.g_perp + (pb.gz / axial)[:, None] * t
-    cross = np.abs(ja[:, 0] * jb[:, 1] - ja[:, 1] * jb[:, 0])
-    dot = np.abs(np.sum(ja * jb, axis=1))
+    axial = np.sqrt(1.0 - np.sum(t * t, axis=-1))
+    ja = pa.g_perp + (pa.gz / axial)[..., None] * t
+    jb = pb.g_perp + (pb.gz / axial)[..., None] * t
+    cross = np.abs(ja[..., 0] * jb[..., 1] - ja[..., 1] * jb[..., 0])
+    dot = np.abs(np.sum(ja * jb, axis=-1))
     return np.degrees(np.arctan2(cross, dot))
+
+
+def _pair_parameters(bases, zone, x_axis, wave_number, hkl_a, hkl_b):
+    """Line parameters of both lines of each pair, for one basis or a stack."""
+    zone, _ = reduce_indices(zone)
+    x_axis = tuple(int(v) for v in np.ravel(x_axis))
+    if int(np.dot(x_axis, zone)) != 0:
+        raise InputError(f"the x axis {x_axis} is not normal to the zone {list(zone)}")
+    bases = np.asarray(bases, dtype=float)
+    recip = np.swapaxes(np.linalg.inv(bases), -1, -2)  # A* = A^-T
+    to_frame = frame_rotations(bases, zone, x_axis) @ recip  # frame components of A* h
+    ga = np.asarray(hkl_a, dtype=float) @ np.swapaxes(to_frame, -1, -2)
+    gb = np.asarray(hkl_b, dtype=float) @ np.swapaxes(to_frame, -1, -2)
+    return (_parameters_from_components(ga, wave_number),
+            _parameters_from_components(gb, wave_number))
 
 
 def crossing_positions(basis, zone, x_axis, wave_number, hkl_a, hkl_b, guess_mrad=None):
@@ -202,15 +232,17 @@ def crossing_positions(basis, zone, x_axis, wave_number, hkl_a, hkl_b, guess_mra
 
     This is the entry point refinement and survey use: the frame is rebuilt
     from ``basis`` each call, so a strained or rotated basis is handled
-    consistently with :func:`predict`.
+    consistently with :func:`predict`.  A stack of bases (with one wave
+    number each) is evaluated in one vectorised pass, which is how
+    refinement forms its Jacobian.
 
     Parameters
     ----------
-    basis : ndarray, shape (3, 3)
-        Direct basis matrix A, angstrom.
+    basis : ndarray, shape (3, 3) or (m, 3, 3)
+        Direct basis matrix A, angstrom, or a stack of them.
     zone, x_axis : sequence of 3 int
         Zone axis and x-axis reflection (see :mod:`laueline.frame`).
-    wave_number : float
+    wave_number : float or ndarray, shape (m,)
         K in 1/angstrom.
     hkl_a, hkl_b : array_like, shape (p, 3)
         The two reflections of each crossing.
@@ -219,14 +251,10 @@ def crossing_positions(basis, zone, x_axis, wave_number, hkl_a, hkl_b, guess_mra
 
     Returns
     -------
-    ndarray, shape (p, 2)
+    ndarray, shape (p, 2) or (m, p, 2)
         Crossing positions (tx, ty) in mrad; NaN where the lines are parallel.
     """
-    basis = np.asarray(basis, dtype=float)
-    frame = zone_frame(basis, zone, x_axis)
-    recip = np.linalg.inv(basis).T
-    pa = line_parameters(np.asarray(hkl_a, dtype=float) @ recip.T, frame, wave_number)
-    pb = line_parameters(np.asarray(hkl_b, dtype=float) @ recip.T, frame, wave_number)
+    pa, pb = _pair_parameters(basis, zone, x_axis, wave_number, hkl_a, hkl_b)
     guess = None if guess_mrad is None else np.asarray(guess_mrad, dtype=float) * 1e-3
     with np.errstate(divide="ignore", invalid="ignore"):
         return _solve_crossings(pa, pb, guess) * 1e3
@@ -234,11 +262,7 @@ def crossing_positions(basis, zone, x_axis, wave_number, hkl_a, hkl_b, guess_mra
 
 def crossing_angles_deg(basis, zone, x_axis, wave_number, hkl_a, hkl_b, t_mrad):
     """Angle (0-90 deg) between the two exact loci at each crossing point."""
-    basis = np.asarray(basis, dtype=float)
-    frame = zone_frame(basis, zone, x_axis)
-    recip = np.linalg.inv(basis).T
-    pa = line_parameters(np.asarray(hkl_a, dtype=float) @ recip.T, frame, wave_number)
-    pb = line_parameters(np.asarray(hkl_b, dtype=float) @ recip.T, frame, wave_number)
+    pa, pb = _pair_parameters(basis, zone, x_axis, wave_number, hkl_a, hkl_b)
     return _gradient_angles_deg(pa, pb, np.asarray(t_mrad, dtype=float) * 1e-3)
 
 
@@ -502,13 +526,7 @@ def _all_crossings(lp, radius, min_angle_deg):
     def sub(idx):
         return LineParameters(lp.g_perp[idx], lp.g_perp_norm[idx], lp.gz[idx], lp.c[idx])
 
-    pa, pb = sub(i), sub(j)
-    with np.errstate(divide="ignore", invalid="ignore"):
-        da, db = pa.straight_offset, pb.straight_offset
-        na, nb = pa.normal, pb.normal
-        det = na[:, 0] * nb[:, 1] - na[:, 1] * nb[:, 0]
-        guess = np.stack([(da * nb[:, 1] - db * na[:, 1]) / det,
-                          (na[:, 0] * db - nb[:, 0] * da) / det], axis=1)
+    guess = _straight_intersections(sub(i), sub(j))
     near = np.sum(guess ** 2, axis=1) < (1.2 * radius) ** 2
     i, j, guess = i[near], j[near], guess[near]
     pa, pb = sub(i), sub(j)

@@ -174,6 +174,16 @@ class _Setup:
     def crossings_px(self, v, hkl_a, hkl_b):
         return self.detector(v).to_pixels(self.crossings_mrad(v, hkl_a, hkl_b))
 
+    def crossings_px_many(self, value_sets, hkl_a, hkl_b):
+        """Crossing pixels for several parameter sets in one vectorised pass, (m, p, 2)."""
+        bases = np.stack([self.basis(v) for v in value_sets])
+        k = np.array([self.wave_number(v["kv"]) for v in value_sets])
+        t = crossing_positions(bases, self.zone, self.x_axis, k, hkl_a, hkl_b)
+        dets = [self.detector(v) for v in value_sets]
+        matrices = np.stack([d.matrix for d in dets])
+        centres = np.array([d.center_px for d in dets], dtype=float)
+        return t @ np.swapaxes(matrices, -1, -2) + centres[:, None, :]
+
 
 @dataclass
 class FitResult:
@@ -360,6 +370,8 @@ def refine(crystal, zone, points, *, kv=200.0, model="strain", x_axis=None, free
 
     xy = np.asarray(points.xy_px, dtype=float)
     _check_spread(xy)
+    if center_px is not None and scale_px_per_mrad is not None:
+        _check_inside_disk(xy, center_px, scale_px_per_mrad, disk_mrad)
     weights = np.ones(n) if points.sigma_px is None else 1.0 / points.sigma_px
 
     # -- labels ----------------------------------------------------------------
@@ -373,6 +385,9 @@ def refine(crystal, zone, points, *, kv=200.0, model="strain", x_axis=None, free
         if robust:
             used, reasons, x, converged = _reject_outliers(setup, xy, hkl_a, hkl_b, weights, x)
         warnings += fit_warnings
+        fitted = setup.values(x)
+        _check_inside_disk(xy, (fitted["center_x"], fitted["center_y"]), fitted["scale"],
+                           disk_mrad)
     else:
         if scale_px_per_mrad is None:
             raise InputError("unlabelled points need a starting detector scale: give "
@@ -429,14 +444,19 @@ def _check_labels(crystal, setup, points, disk_mrad):
         i = int(np.flatnonzero(bad)[0])
         raise InputError(f"row {i + 1}: lines ({' '.join(map(str, hkl_a[i]))}) and "
                          f"({' '.join(map(str, hkl_b[i]))}) are parallel or nearly so")
-    far = np.linalg.norm(t, axis=1) > 1.5 * disk_mrad
+    return hkl_a, hkl_b
+
+
+def _check_inside_disk(xy, center, scale, disk_mrad):
+    """Refuse points far outside the disk of a known detector geometry."""
+    t = (np.asarray(xy) - np.asarray(center)) / scale
+    r = np.linalg.norm(t, axis=1)
+    far = r > 1.5 * disk_mrad
     if np.any(far):
         i = int(np.flatnonzero(far)[0])
-        raise InputError(f"row {i + 1}: lines ({' '.join(map(str, hkl_a[i]))}) and "
-                         f"({' '.join(map(str, hkl_b[i]))}) cross "
-                         f"{np.linalg.norm(t[i]):.1f} mrad from the centre, outside a "
-                         f"{disk_mrad:g} mrad disk (see --disk-mrad)")
-    return hkl_a, hkl_b
+        raise InputError(f"point {i + 1} lies {r[i]:.1f} mrad from the centre, far outside "
+                         f"a {disk_mrad:g} mrad disk (check the centre, the scale and "
+                         "--disk-mrad)")
 
 
 def _similarity(src, dst, mirror):
@@ -466,13 +486,12 @@ def _start_detector_from_labels(setup, xy, hkl_a, hkl_b, center, scale, rotation
     setup.start["rotation"] = angle if rotation is None else float(rotation)
 
 
-def _jacobian(fun, x, f0):
-    jac = np.empty((f0.size, x.size))
-    for j in range(x.size):
-        dx = np.zeros_like(x)
-        dx[j] = _JAC_STEP
-        jac[:, j] = (fun(x + dx) - f0) / _JAC_STEP
-    return jac
+def _residuals_and_jacobian(setup, x, hkl_a, hkl_b, meas, w):
+    """Weighted residuals at x and their forward-difference Jacobian, one batched call."""
+    trial = [x] + [x + _JAC_STEP * np.eye(x.size)[j] for j in range(x.size)]
+    px = setup.crossings_px_many([setup.values(xx) for xx in trial], hkl_a, hkl_b)
+    r = ((px - meas) * w[:, None]).reshape(len(trial), -1)
+    return r[0], ((r[1:] - r[0]) / _JAC_STEP).T
 
 
 def _fit(setup, xy, hkl_a, hkl_b, used, weights, robust, f_scale=None):
@@ -491,7 +510,7 @@ def _fit(setup, xy, hkl_a, hkl_b, used, weights, robust, f_scale=None):
         return ((pred - meas) * w[:, None]).ravel()
 
     def jac(x):
-        return _jacobian(fun, x, fun(x))
+        return _residuals_and_jacobian(setup, x, ha, hb, meas, w)[1]
 
     x0 = np.zeros(p)
     if p == 0:
@@ -615,14 +634,6 @@ def _match(xy_px, cand_px, gate_px):
 def _assign_and_fit(setup, xy, weights, center, scale, rotation, mirror, disk_mrad,
                     min_strength, min_angle_deg, match_mrad, robust):
     warnings = []
-    if center is not None:
-        t = (xy - np.asarray(center)) / scale
-        far = np.linalg.norm(t, axis=1) > 1.5 * disk_mrad
-        if np.any(far):
-            i = int(np.flatnonzero(far)[0])
-            raise InputError(f"point {i + 1} lies {np.linalg.norm(t[i]):.1f} mrad from the "
-                             f"centre, far outside a {disk_mrad:g} mrad disk (check "
-                             "--center-px, --scale-px-per-mrad and --disk-mrad)")
     v0 = dict(setup.start)
     ha, hb, t_cand = _candidate_crossings(setup, v0, disk_mrad, min_strength, min_angle_deg)
     if len(t_cand) < 2:
@@ -708,16 +719,11 @@ def _result(setup, crystal, xy, hkl_a, hkl_b, used, reasons, weights, x, converg
     p = len(setup.free)
     v = setup.values(x)
 
-    def fun(xx):
-        pred = setup.crossings_px(setup.values(xx), hkl_a[sel], hkl_b[sel])
-        return ((pred - xy[sel]) * weights[sel, None]).ravel()
-
-    f0 = fun(x)
+    f0, jac = _residuals_and_jacobian(setup, x, hkl_a[sel], hkl_b[sel], xy[sel], weights[sel])
     m = f0.size
     dof = m - p
     chi2 = float(np.sum(f0 ** 2))
     if p:
-        jac = _jacobian(fun, x, f0)
         scale = np.linalg.norm(jac, axis=0)
         if np.any(scale == 0):
             dead = [setup.free[j] for j in np.flatnonzero(scale == 0)]
