@@ -155,6 +155,52 @@ def _cmd_refine(args):
     return 0
 
 
+def _cmd_thickness(args):
+    from . import report
+    from .thickness import detect_profile, read_profile, thickness_from_fringes
+
+    report.check_outputs([args.json], args.force, args.figure)
+    crystal = None
+    if args.d_spacing_A is None:
+        if args.structure is None or args.hkl is None:
+            raise InputError("give a structure with --hkl H K L, or --d-spacing-A")
+        crystal = _load_crystal(args)
+    elif args.hkl is not None and args.structure is not None:
+        crystal = _load_crystal(args)
+    detection = None
+    if args.profile:
+        if args.fringes_px or args.separation_px:
+            raise InputError("give either --profile or --separation-px with --fringes-px")
+        detection = detect_profile(*read_profile(args.profile))
+        fringes, separation = detection.fringes, detection.separation
+        fringes_sigma, separation_sigma = detection.fringes_sigma, detection.separation_sigma
+    else:
+        if args.fringes_px is None or args.separation_px is None:
+            raise InputError("give --separation-px and --fringes-px (or --profile)")
+        fringes, separation = args.fringes_px, args.separation_px
+        fringes_sigma = separation_sigma = args.position_sigma_px
+    result = thickness_from_fringes(
+        fringes, separation, kv=args.kv,
+        d_spacing_A=args.d_spacing_A if crystal is None else None,
+        crystal=crystal, hkl=args.hkl, fringes_sigma=fringes_sigma,
+        separation_sigma=separation_sigma, first_fringe_index=args.first_index)
+    if detection is not None:
+        result.profile = detection
+        result.warnings = detection.warnings + result.warnings
+    print(report.thickness_text(result))
+    if args.json:
+        report.write_json(report.thickness_document(
+            result, crystal.summary() if crystal is not None else None), args.json, args.force)
+    if args.figure:
+        from .plot import save_figure, thickness_figure
+
+        save_figure(thickness_figure(result), args.figure)
+    written = [p for p in (args.json, args.figure) if p]
+    if written:
+        print("\nwrote " + ", ".join(str(p) for p in written))
+    return 0
+
+
 def _cmd_structures(args):
     from .crystal import bundled_structures, read_crystal
 
@@ -250,6 +296,33 @@ def build_parser():
                    help="crystal direction of the sample z axis (e.g. the growth direction)")
     _add_output_options(p)
     p.set_defaults(run=_cmd_refine)
+
+    p = sub.add_parser("thickness", help="foil thickness from two-beam CBED fringes",
+                       description="Foil thickness and extinction distance from the dark "
+                                   "fringes of a two-beam CBED disk (Kelly et al. 1975; "
+                                   "Allen 1981).")
+    p.add_argument("structure", nargs="?",
+                   help="CIF file or bundled structure (with --hkl)")
+    p.add_argument("--hkl", nargs=3, type=int, metavar=("H", "K", "L"),
+                   help="the reflection excited in two-beam condition")
+    p.add_argument("--d-spacing-A", dest="d_spacing_A", type=float, metavar="D",
+                   help="its d-spacing in A, instead of a structure")
+    p.add_argument("--kv", type=float, default=200.0, help="accelerating voltage in kV (200)")
+    p.add_argument("--b-iso", type=float, metavar="B",
+                   help="one isotropic B in A^2 for all atoms")
+    p.add_argument("--separation-px", type=float, metavar="D",
+                   help="distance between the direct and diffracted disk centres")
+    p.add_argument("--fringes-px", nargs="+", type=float, metavar="X",
+                   help="distances from the diffracted disk's centre line to successive "
+                        "dark fringes (same unit)")
+    p.add_argument("--position-sigma-px", type=float, metavar="S",
+                   help="standard uncertainty of every measured distance")
+    p.add_argument("--profile", metavar="CSV",
+                   help="intensity profile along +g through both disks: position, intensity")
+    p.add_argument("--first-index", type=int, metavar="N",
+                   help="force the index of the first fringe instead of searching")
+    _add_output_options(p)
+    p.set_defaults(run=_cmd_thickness)
 
     p = sub.add_parser("structures", help="list the bundled structures")
     p.set_defaults(run=_cmd_structures)

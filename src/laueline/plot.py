@@ -10,7 +10,8 @@ from __future__ import annotations
 import numpy as np
 
 
-__all__ = ["pattern_figure", "fit_figure", "save_figure", "draw_disk_lines", "hkl_label"]
+__all__ = ["pattern_figure", "fit_figure", "thickness_figure", "save_figure", "draw_disk_lines",
+           "hkl_label"]
 
 _DISK_FILL = "#f4f1ea"
 _DISK_EDGE = "#5b5b5b"
@@ -198,4 +199,43 @@ def fit_figure(result, crystal, *, image=None, magnify=None):
                  f"{result.n_used} points, rms {result.rms_px:.3g} px\n"
                  f"residuals drawn {magnify:g} x", fontsize=10)
     ax.legend(loc="lower right", fontsize=8, framealpha=0.9)
+    return fig
+
+
+def thickness_figure(result):
+    """The (s/n)^2 against 1/n^2 line with its points and, for a profile, the profile."""
+    det = result.profile
+    fig = _new_figure(10.5 if det is not None else 5.6, 4.6)
+    axes = fig.subplots(1, 2 if det is not None else 1)
+    ax = axes[0] if det is not None else axes
+    xs = np.linspace(0, max(result.line_x) * 1.1, 50)
+    ax.plot(xs, result.intercept + result.slope * xs, color=_LINE, linewidth=1.2,
+            label=f"t = {result.thickness_nm:.1f} nm, xi = {result.extinction_distance_nm:.1f} nm")
+    if result.deviations_sigma_inv_nm is not None:
+        n = result.fringe_indices
+        yerr = 2 * result.deviations_inv_nm * result.deviations_sigma_inv_nm / n ** 2
+        ax.errorbar(result.line_x, result.line_y, yerr=yerr, fmt="o", color=_CROSSING,
+                    markersize=4, capsize=2)
+    else:
+        ax.plot(result.line_x, result.line_y, "o", color=_CROSSING, markersize=4)
+    for xv, yv, n in zip(result.line_x, result.line_y, result.fringe_indices):
+        ax.annotate(f"n={n}", (xv, yv), textcoords="offset points", xytext=(4, 4), fontsize=7)
+    ax.set_xlabel("1 / n$^2$")
+    ax.set_ylabel("(s / n)$^2$  (nm$^{-2}$)")
+    ax.set_xlim(left=0)
+    ax.set_title(f"first fringe index {result.first_fringe_index}", fontsize=10)
+    ax.legend(fontsize=8)
+    if det is not None:
+        ap = axes[1]
+        ap.plot(det.position, det.intensity, color="#555555", linewidth=0.7)
+        for (lo, hi), c in zip(det.disk_edges, det.disk_centres):
+            ap.axvspan(lo, hi, color=_ZOLZ_FILL, alpha=0.6, zorder=0)
+            ap.axvline(c, color=_RING, linestyle=(0, (4, 3)), linewidth=0.8)
+        ap.axvline(det.bragg_position, color=_LINE, linewidth=1.0)
+        mins = det.minima
+        ap.plot(mins, np.interp(mins, det.position, det.intensity), "v", color=_CROSSING,
+                markersize=5)
+        ap.set_xlabel("position along g")
+        ap.set_ylabel("intensity")
+        ap.set_title("profile: disks, Bragg line and dark fringes", fontsize=10)
     return fig

@@ -22,6 +22,9 @@ __all__ = [
     "FIT_SCHEMA",
     "fit_document",
     "fit_text",
+    "THICKNESS_SCHEMA",
+    "thickness_document",
+    "thickness_text",
     "FIGURE_SUFFIXES",
     "check_outputs",
     "write_json",
@@ -406,4 +409,80 @@ def _fit_tail(out, result, y_up):
         out.extend(f"warning: {w}" for w in result.warnings)
     out.append("")
     out.extend(f"caution: {c}" for c in CAUTIONS)
+    return "\n".join(out)
+
+
+# ---------------------------------------------------------------------------
+# thickness
+# ---------------------------------------------------------------------------
+
+THICKNESS_SCHEMA = "laueline.thickness/1"
+
+
+def thickness_document(result, structure=None):
+    """The ``laueline.thickness/1`` document of a :class:`~laueline.thickness.ThicknessResult`."""
+    doc = {
+        "schema": THICKNESS_SCHEMA,
+        "structure": structure,
+        "hkl": list(result.hkl) if result.hkl else None,
+        "d_spacing_A": result.d_spacing_A,
+        "kv": result.kv, "wavelength_A": result.wavelength_A,
+        "bragg_angle_mrad": result.bragg_angle_mrad,
+        "thickness_nm": result.thickness_nm, "thickness_sigma_nm": result.thickness_sigma_nm,
+        "extinction_distance_nm": result.extinction_distance_nm,
+        "extinction_distance_sigma_nm": result.extinction_distance_sigma_nm,
+        "first_fringe_index": result.first_fringe_index,
+        "kinematic_extinction_distance_nm": result.kinematic_extinction_distance_nm,
+        "candidates": [{"first_fringe_index": c.first_fringe_index, "residual": c.residual,
+                        "thickness_nm": c.thickness_nm,
+                        "extinction_distance_nm": c.extinction_distance_nm,
+                        "physical": c.physical} for c in result.candidates],
+        "separation": result.separation,
+        "fringes": result.fringes,
+        "fringe_indices": result.fringe_indices,
+        "deviations_inv_nm": result.deviations_inv_nm,
+        "deviations_sigma_inv_nm": result.deviations_sigma_inv_nm,
+        "line": {"x_inv_n2": result.line_x, "y_s_over_n_squared_inv_nm2": result.line_y,
+                 "intercept_inv_nm2": result.intercept, "slope_inv_nm2": result.slope},
+        "profile": None,
+        "warnings": result.warnings,
+    }
+    det = result.profile
+    if det is not None:
+        doc["profile"] = {"disk_edges": det.disk_edges, "disk_centres": det.disk_centres,
+                          "disk_centre_sigma": det.disk_centre_sigma,
+                          "bragg_position": det.bragg_position,
+                          "minima": det.minima, "minima_sigma": det.minima_sigma,
+                          "fringes_sigma": det.fringes_sigma,
+                          "separation_sigma": det.separation_sigma}
+    return _clean(doc)
+
+
+def thickness_text(result):
+    """Readable summary of a thickness measurement."""
+    out = []
+    refl = f"({format_hkl(result.hkl)}), " if result.hkl else ""
+    out.append(f"reflection {refl}d = {result.d_spacing_A:.5f} A; {result.kv:g} kV, "
+               f"wavelength {result.wavelength_A:.6f} A, Bragg angle "
+               f"{result.bragg_angle_mrad:.3f} mrad")
+    out.append(f"fringes    {len(result.fringes)}, separation {result.separation:.4g}; "
+               f"first fringe index {result.first_fringe_index}")
+    out.append("")
+    out.append(f"  thickness            {result.thickness_nm:9.2f} +- "
+               f"{result.thickness_sigma_nm:.2g} nm")
+    out.append(f"  extinction distance  {result.extinction_distance_nm:9.2f} +- "
+               f"{result.extinction_distance_sigma_nm:.2g} nm")
+    if result.kinematic_extinction_distance_nm is not None:
+        out.append(f"  kinematic two-beam extinction distance "
+                   f"{result.kinematic_extinction_distance_nm:.2f} nm")
+    out.append("")
+    out.append("  first index   1 - R^2     thickness nm   extinction nm   physical")
+    for c in result.candidates:
+        mark = "  <- chosen" if c.first_fringe_index == result.first_fringe_index else ""
+        out.append(f"  {c.first_fringe_index:11d}   {c.residual:9.2e}   {c.thickness_nm:12.2f}"
+                   f"   {c.extinction_distance_nm:13.2f}   {'yes' if c.physical else 'no':>8}"
+                   f"{mark}")
+    if result.warnings:
+        out.append("")
+        out.extend(f"warning: {w}" for w in result.warnings)
     return "\n".join(out)
