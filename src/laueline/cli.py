@@ -201,6 +201,40 @@ def _cmd_thickness(args):
     return 0
 
 
+def _cmd_survey(args):
+    from . import report
+    from .strain import sample_axes
+    from .survey import survey
+
+    report.check_outputs([args.json], args.force, args.figure)
+    crystal = _load_crystal(args)
+    if (args.near is None) != (args.max_tilt_deg is None):
+        raise InputError("--near and --max-tilt-deg go together")
+    if (args.sample_x is None) != (args.sample_z is None):
+        raise InputError("a sample frame needs both --sample-x and --sample-z")
+    axes, frame = None, "reference-cartesian"
+    if args.sample_x is not None:
+        axes = sample_axes(crystal.basis, args.sample_x, args.sample_z)
+        frame = (f"sample: x along [{' '.join(f'{v:g}' for v in args.sample_x)}], "
+                 f"z along [{' '.join(f'{v:g}' for v in args.sample_z)}]")
+    result = survey(crystal, kv=args.kv, disk_mrad=args.disk_mrad, max_index=args.max_index,
+                    near=args.near, max_tilt_deg=args.max_tilt_deg, gmax=args.gmax,
+                    min_strength=args.min_strength, min_angle_deg=args.min_angle_deg,
+                    sigma_mrad=args.sigma_mrad, component=args.component, axes=axes,
+                    frame_description=frame, progress=True)
+    print(report.survey_text(result, top=args.top))
+    if args.json:
+        report.write_json(report.survey_document(result), args.json, args.force)
+    if args.figure:
+        from .plot import save_figure, survey_figure
+
+        save_figure(survey_figure(result, crystal), args.figure)
+    written = [p for p in (args.json, args.figure) if p]
+    if written:
+        print("\nwrote " + ", ".join(str(p) for p in written))
+    return 0
+
+
 def _cmd_structures(args):
     from .crystal import bundled_structures, read_crystal
 
@@ -323,6 +357,40 @@ def build_parser():
                    help="force the index of the first fringe instead of searching")
     _add_output_options(p)
     p.set_defaults(run=_cmd_thickness)
+
+    p = sub.add_parser("survey", help="rank zone axes by the strain precision they deliver",
+                       description="Rank zone axes by the predicted precision of the strain "
+                                   "after a reference calibration (centre and rotation free, "
+                                   "voltage and scale held).")
+    p.add_argument("structure", help="CIF file or bundled structure name")
+    p.add_argument("--kv", type=float, default=200.0, help="accelerating voltage in kV (200)")
+    p.add_argument("--disk-mrad", type=float, default=6.0,
+                   help="convergence semi-angle in mrad (6)")
+    p.add_argument("--max-index", type=int, default=7,
+                   help="candidates [u v w] with max |index| up to this (7)")
+    p.add_argument("--near", nargs=3, type=float, metavar=("U", "V", "W"),
+                   help="keep every axis within --max-tilt-deg of this orientation")
+    p.add_argument("--max-tilt-deg", type=float, metavar="T", help="holder tilt range")
+    p.add_argument("--gmax", type=float, default=4.0, help="largest |g| in 1/A (4)")
+    p.add_argument("--min-strength", type=float, default=0.05,
+                   help="lines weaker than this are not counted (0.05)")
+    p.add_argument("--min-angle-deg", type=float, default=5.0,
+                   help="smallest usable crossing angle in degrees (5)")
+    p.add_argument("--sigma-mrad", type=float, default=0.005,
+                   help="noise of a measured crossing coordinate in mrad (0.005)")
+    from .survey import COMPONENTS
+
+    p.add_argument("--component", choices=COMPONENTS,
+                   help="rank by this strain component (default: the worst of the six)")
+    p.add_argument("--top", type=int, default=15, help="rows printed (15)")
+    p.add_argument("--b-iso", type=float, metavar="B",
+                   help="one isotropic B in A^2 for all atoms")
+    p.add_argument("--sample-x", nargs=3, type=float, metavar=("U", "V", "W"),
+                   help="crystal direction of the sample x axis")
+    p.add_argument("--sample-z", nargs=3, type=float, metavar=("U", "V", "W"),
+                   help="crystal direction of the sample z axis")
+    _add_output_options(p)
+    p.set_defaults(run=_cmd_survey)
 
     p = sub.add_parser("structures", help="list the bundled structures")
     p.set_defaults(run=_cmd_structures)

@@ -10,8 +10,8 @@ from __future__ import annotations
 import numpy as np
 
 
-__all__ = ["pattern_figure", "fit_figure", "thickness_figure", "save_figure", "draw_disk_lines",
-           "hkl_label"]
+__all__ = ["pattern_figure", "fit_figure", "thickness_figure", "survey_figure", "save_figure",
+           "draw_disk_lines", "hkl_label"]
 
 _DISK_FILL = "#f4f1ea"
 _DISK_EDGE = "#5b5b5b"
@@ -238,4 +238,84 @@ def thickness_figure(result):
         ap.set_xlabel("position along g")
         ap.set_ylabel("intensity")
         ap.set_title("profile: disks, Bragg line and dark fringes", fontsize=10)
+    return fig
+
+
+def _stereo(v):
+    v = np.asarray(v, dtype=float)
+    v = v / np.linalg.norm(v, axis=-1, keepdims=True)
+    return v[..., :2] / (1.0 + v[..., 2:3])
+
+
+def survey_figure(result, crystal, n_labels=8):
+    """Stereographic map of the candidate axes coloured by predicted precision.
+
+    Cubic crystals without a tilt cone are shown in the standard triangle
+    [001]-[101]-[111]; other crystals on the upper hemisphere (z along c*);
+    a survey around ``near`` in tilt angles about that axis.
+    """
+    from matplotlib import colormaps
+    from matplotlib.colors import LogNorm
+
+    fig = _new_figure(6.6, 5.6)
+    ax = fig.subplots()
+    axes = [a for a in result.axes if np.isfinite(a.score)]
+    zones = np.array([a.zone for a in axes], dtype=float)
+    scores = np.array([a.score for a in axes])
+    if result.near is not None:
+        ref = crystal.basis @ np.asarray(result.near)
+        e3 = ref / np.linalg.norm(ref)
+        e1 = np.cross(e3, [0, 0, 1.0]) if abs(e3[2]) < 0.9 else np.cross(e3, [1.0, 0, 0])
+        e1 /= np.linalg.norm(e1)
+        e2 = np.cross(e3, e1)
+        d = zones @ crystal.basis.T
+        xy = np.degrees(np.stack([np.arctan2(d @ e1, d @ e3), np.arctan2(d @ e2, d @ e3)], 1))
+        t = np.linspace(0, 2 * np.pi, 200)
+        ax.plot(result.max_tilt_deg * np.cos(t), result.max_tilt_deg * np.sin(t),
+                color=_DISK_EDGE, linewidth=0.8)
+        ax.set_xlabel("tilt x (deg)")
+        ax.set_ylabel("tilt y (deg)")
+        title = f"axes within {result.max_tilt_deg:g} deg of [{' '.join(f'{v:g}' for v in result.near)}]"
+    elif result.cubic:
+        s = -np.sort(-np.abs(zones), axis=1)
+        xy = _stereo(np.stack([s[:, 1], s[:, 2], s[:, 0]], axis=1))
+        u = np.linspace(0, 1, 100)
+        edge = np.concatenate([_stereo(np.stack([u, 0 * u, 1 + 0 * u], 1)),
+                               _stereo(np.stack([1 + 0 * u, u, 1 + 0 * u], 1)),
+                               _stereo(np.stack([1 - u, 1 - u, 1 + 0 * u], 1))])
+        ax.plot(edge[:, 0], edge[:, 1], color=_DISK_EDGE, linewidth=0.8)
+        for label, v in [("001", (0, 0, 1)), ("101", (1, 0, 1)), ("111", (1, 1, 1))]:
+            p = _stereo(np.array(v, float))
+            ax.annotate(f"[{label}]", p, textcoords="offset points", xytext=(-8, -12),
+                        fontsize=8, color=_DISK_EDGE)
+        ax.set_axis_off()
+        title = "standard triangle"
+    else:
+        d = zones @ crystal.basis.T
+        d[d[:, 2] < 0] *= -1  # Friedel: the opposite axis is equivalent
+        xy = _stereo(d)
+        t = np.linspace(0, 2 * np.pi, 200)
+        ax.plot(np.cos(t), np.sin(t), color=_DISK_EDGE, linewidth=0.8)
+        ax.set_axis_off()
+        title = "upper hemisphere, z along c*"
+    cmap = colormaps["plasma"]
+    norm = LogNorm(vmin=scores.min(), vmax=max(scores.max(), scores.min() * 1.01))
+    sc = ax.scatter(xy[:, 0], xy[:, 1], c=scores, cmap=cmap, norm=norm, s=30,
+                    edgecolors="none", zorder=3)
+    overlap = np.array([a.overlap for a in axes])
+    if np.any(overlap):
+        ax.scatter(xy[overlap, 0], xy[overlap, 1], s=80, facecolors="none",
+                   edgecolors=_DISK_EDGE, linewidths=0.6, zorder=2,
+                   label="zero-layer disks overlap")
+        ax.legend(loc="upper left", fontsize=7, frameon=False)
+    halo = _halo()
+    for a, p in list(zip(axes, xy))[:n_labels]:
+        ax.annotate("[" + " ".join(str(v) for v in a.zone) + "]", p,
+                    textcoords="offset points", xytext=(5, 4), fontsize=7, color=_LINE,
+                    path_effects=halo, zorder=4)
+    ax.set_aspect("equal")
+    cb = fig.colorbar(sc, ax=ax, shrink=0.8)
+    cb.set_label(f"predicted 1-sigma of {result.ranked_by}")
+    ax.set_title(f"{result.structure['name']}, {result.kv:g} kV, {result.disk_mrad:g} mrad: "
+                 f"{title}", fontsize=10)
     return fig

@@ -23,6 +23,9 @@ __all__ = [
     "fit_document",
     "fit_text",
     "THICKNESS_SCHEMA",
+    "SURVEY_SCHEMA",
+    "survey_document",
+    "survey_text",
     "thickness_document",
     "thickness_text",
     "FIGURE_SUFFIXES",
@@ -482,6 +485,67 @@ def thickness_text(result):
         out.append(f"  {c.first_fringe_index:11d}   {c.residual:9.2e}   {c.thickness_nm:12.2f}"
                    f"   {c.extinction_distance_nm:13.2f}   {'yes' if c.physical else 'no':>8}"
                    f"{mark}")
+    if result.warnings:
+        out.append("")
+        out.extend(f"warning: {w}" for w in result.warnings)
+    return "\n".join(out)
+
+
+# ---------------------------------------------------------------------------
+# survey
+# ---------------------------------------------------------------------------
+
+SURVEY_SCHEMA = "laueline.survey/1"
+
+
+def survey_document(result):
+    """The ``laueline.survey/1`` document of a :class:`~laueline.survey.SurveyResult`."""
+    return _clean({
+        "schema": SURVEY_SCHEMA,
+        "structure": result.structure,
+        "kv": result.kv, "disk_mrad": result.disk_mrad, "sigma_mrad": result.sigma_mrad,
+        "frame": result.frame,
+        "ranked_by": result.ranked_by,
+        "point_group": result.point_group,
+        "near": list(result.near) if result.near else None,
+        "max_tilt_deg": result.max_tilt_deg,
+        "axes": [{"zone": list(a.zone), "x_axis": list(a.x_axis), "tilt_deg": a.tilt_deg,
+                  "n_lines": a.n_lines, "n_crossings": a.n_crossings,
+                  "ring_radius_mrad": a.ring_radius_mrad,
+                  "max_convergence_mrad": a.max_convergence_mrad, "overlap": a.overlap,
+                  "sigma_strain": a.sigma_strain, "score": a.score} for a in result.axes],
+        "warnings": result.warnings,
+    })
+
+
+def survey_text(result, top=15):
+    """The best ``top`` axes as a table."""
+    out = [f"survey     {result.structure['name']}, {result.kv:g} kV, disk "
+           f"{result.disk_mrad:g} mrad, crossing noise {result.sigma_mrad:g} mrad, "
+           f"{len(result.axes)} candidate axes"
+           + (f" within {result.max_tilt_deg:g} deg of [{' '.join(f'{v:g}' for v in result.near)}]"
+              if result.near else f" (one per orbit of the Laue group {result.point_group})"),
+           f"ranked by  predicted 1-sigma of {result.ranked_by} ({result.frame} frame); "
+           "centre and rotation free, voltage and scale held", ""]
+    tilt = result.near is not None
+    head = f"  {'rank':>4} {'zone':>10} " + (f"{'tilt':>6} " if tilt else "") + \
+        f"{'lines':>5} {'cross':>6} {'ring':>6} {'max conv':>8}  " + \
+        "  ".join(f"{c:>8}" for c in ("exx", "eyy", "ezz", "eyz", "exz", "exy"))
+    out.append(head)
+    out.append(f"  {'':4} {'':10} " + (f"{'deg':>6} " if tilt else "") +
+               f"{'':5} {'':6} {'mrad':>6} {'mrad':>8}  " + "  ".join(f"{'':>8}" for _ in range(6)))
+    for k, a in enumerate(result.axes[:top], 1):
+        zone = " ".join(str(v) for v in a.zone)
+        flag = "*" if a.overlap else " "
+        row = f"  {k:4d} {zone:>10} " + (f"{a.tilt_deg:6.2f} " if tilt else "") + \
+            f"{a.n_lines:5d} {a.n_crossings:6d} {a.ring_radius_mrad:6.1f} " \
+            f"{a.max_convergence_mrad:7.2f}{flag}  " + \
+            "  ".join(f"{s:8.1e}" for s in a.sigma_strain)
+        out.append(row)
+    if any(a.overlap for a in result.axes[:top]):
+        out.append("")
+        out.append("  * zero-layer disks overlap at this disk size (reduce the convergence "
+                   "angle below 'max conv')")
     if result.warnings:
         out.append("")
         out.extend(f"warning: {w}" for w in result.warnings)
