@@ -50,6 +50,8 @@ __all__ = [
     "line_parameters",
     "locus_offset",
     "locus_residual",
+    "locus_distances",
+    "line_parameters_batch",
     "crossing_positions",
     "crossing_angles_deg",
     "enumerate_reflections",
@@ -152,6 +154,30 @@ def locus_residual(t_rad, params):
     return (along - axial * params.gz[extra] + params.c[extra]) / params.g_perp_norm[extra]
 
 
+def locus_distances(t_rad, params):
+    """Signed distances (radians, first order) of points from the exact loci.
+
+    The Bragg-condition residual divided by the length of its gradient: the
+    distance from the locus up to terms of the order of distance^2 times
+    the locus curvature (~ gz / G), far below a pixel for points near a line.
+
+    Parameters
+    ----------
+    t_rad : ndarray, shape (..., k, 2)
+        Points; the leading dimensions match those of ``params``.
+    params : LineParameters
+        Arrays of shape (...,).
+    """
+    t = np.asarray(t_rad, dtype=float)
+    g_perp = params.g_perp[..., None, :]
+    gz = params.gz[..., None]
+    c = params.c[..., None]
+    axial = np.sqrt(1.0 - np.sum(t * t, axis=-1))
+    value = np.sum(t * g_perp, axis=-1) - axial * gz + c
+    grad = g_perp + (gz / axial)[..., None] * t
+    return value / np.linalg.norm(grad, axis=-1)
+
+
 def _chord_half_length(params, radius):
     """Half-length (radians) of each locus inside a disk of the given radius."""
     p0 = locus_offset(params)
@@ -225,6 +251,11 @@ def _pair_parameters(bases, zone, x_axis, wave_number, hkl_a, hkl_b):
     gb = np.asarray(hkl_b, dtype=float) @ np.swapaxes(to_frame, -1, -2)
     return (_parameters_from_components(ga, wave_number),
             _parameters_from_components(gb, wave_number))
+
+
+def line_parameters_batch(bases, zone, x_axis, wave_number, hkl):
+    """Line parameters of reflections ``hkl`` (n, 3) for one basis or a stack (m, 3, 3)."""
+    return _pair_parameters(bases, zone, x_axis, wave_number, hkl, hkl[:0])[0]
 
 
 def crossing_positions(basis, zone, x_axis, wave_number, hkl_a, hkl_b, guess_mrad=None):
