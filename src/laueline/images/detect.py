@@ -141,9 +141,7 @@ def find_disk(image, valid=None):
     outside_level = np.median(smooth[~region]) if np.any(~region) else 0.0
     half = 0.5 * (inside_level + outside_level)
     angles = np.linspace(0, 2 * np.pi, 720, endpoint=False)
-    edges = []
     for _ in range(2):  # the first circle fit moves the centre; cast the rays again
-        edges = []
         radii = np.linspace(0.6 * radius, 1.4 * radius, int(1.6 * radius))
         px = centre[0] + np.outer(np.cos(angles), radii)
         py = centre[1] + np.outer(np.sin(angles), radii)
@@ -151,21 +149,18 @@ def find_disk(image, valid=None):
         values = ndimage.map_coordinates(smooth, [py, px], order=1, mode="nearest")
         ok_valid = np.ones_like(values, dtype=bool) if valid is None else \
             ndimage.map_coordinates(valid.astype(float), [py, px], order=0) > 0.5
-        for k in range(len(angles)):
-            v = values[k]
-            below = np.flatnonzero((v[:-1] >= half) & (v[1:] < half))
-            if not len(below):
-                continue
-            j = below[-1]
-            if not (inside_frame[k, j] and inside_frame[k, j + 1] and ok_valid[k, j]
-                    and ok_valid[k, j + 1]):
-                continue
-            f = (v[j] - half) / (v[j] - v[j + 1])
-            rr = radii[j] + f * (radii[j + 1] - radii[j])
-            edges.append(centre + rr * np.array([np.cos(angles[k]), np.sin(angles[k])]))
-        if len(edges) < 20:
+        # the outermost downward crossing of the half level on each ray
+        down = (values[:, :-1] >= half) & (values[:, 1:] < half)
+        last = down.shape[1] - 1 - np.argmax(down[:, ::-1], axis=1)
+        k = np.arange(len(angles))
+        usable = (down.any(axis=1) & inside_frame[k, last] & inside_frame[k, last + 1]
+                  & ok_valid[k, last] & ok_valid[k, last + 1])
+        k, j = k[usable], last[usable]
+        if len(k) < 20:
             raise InputError("no disk found: too little of a disk edge is visible")
-        edges = np.array(edges)
+        f = (values[k, j] - half) / (values[k, j] - values[k, j + 1])
+        rr = radii[j] + f * (radii[j + 1] - radii[j])
+        edges = centre + rr[:, None] * np.stack([np.cos(angles[k]), np.sin(angles[k])], 1)
         model, inliers = ransac(edges, CircleModel, min_samples=3, residual_threshold=1.5,
                                 max_trials=200, rng=0)
         if model is None or inliers is None or inliers.sum() < 10:
@@ -240,26 +235,13 @@ def _fit_line(flat, valid, start, others, disk, noise):
 
     rho, ang, kappa, sigma = start
     cx, cy = disk.center_px
-    rows, cols = flat.shape
     half_band = max(4.0 * sigma, 3.0)
-    # pixels of the band: walk along the straight line, take a rectangle
-    ca, sa = math.cos(ang), math.sin(ang)
-    foot = np.array([cx + rho * ca, cy + rho * sa])
-    span = math.sqrt(max(disk.radius_px ** 2 - rho ** 2, 0.0))
-    if span < 10:
+    band = _band_pixels(valid, disk, rho, ang, half_band)
+    if band is None:
         return None
-    s = np.arange(-span, span + 1.0)
-    w = np.arange(-math.ceil(half_band), math.ceil(half_band) + 1.0)
-    px = foot[0] + s[:, None] * (-sa) + w[None, :] * ca
-    py = foot[1] + s[:, None] * ca + w[None, :] * sa
-    ix, iy = np.round(px).astype(int).ravel(), np.round(py).astype(int).ravel()
-    ok = (ix >= 0) & (ix < cols) & (iy >= 0) & (iy < rows)
-    ix, iy = ix[ok], iy[ok]
-    key = np.unique(iy * cols + ix)
-    iy, ix = key // cols, key % cols
-    keep = valid[iy, ix]
-    ix, iy = ix[keep], iy[keep]
+    ix, iy = band
     fx, fy = ix.astype(float), iy.astype(float)
+    span = math.sqrt(max(disk.radius_px ** 2 - rho ** 2, 0.0))
     d0 = _distance(rho, ang, kappa, fx, fy, cx, cy)
     near = np.abs(d0) <= half_band
     for o_rho, o_ang, o_kappa, o_sigma in others:
@@ -302,6 +284,62 @@ def _fit_line(flat, valid, start, others, disk, noise):
     except np.linalg.LinAlgError:
         return None
     return p, cov, len(data)
+
+
+def _band_pixels(valid, disk, rho, ang, half_band):
+    """Usable pixels (ix, iy) within ``half_band`` of a straight chord, or None."""
+    rows, cols = valid.shape
+    cx, cy = disk.center_px
+    ca, sa = math.cos(ang), math.sin(ang)
+    span = math.sqrt(max(disk.radius_px ** 2 - rho ** 2, 0.0))
+    if span < 10:
+        return None
+    s = np.arange(-span, span + 1.0)
+    w = np.arange(-math.ceil(half_band), math.ceil(half_band) + 1.0)
+    px = cx + rho * ca + s[:, None] * (-sa) + w[None, :] * ca
+    py = cy + rho * sa + s[:, None] * ca + w[None, :] * sa
+    ix, iy = np.round(px).astype(int).ravel(), np.round(py).astype(int).ravel()
+    ok = (ix >= 0) & (ix < cols) & (iy >= 0) & (iy < rows)
+    key = np.unique(iy[ok] * cols + ix[ok])
+    iy, ix = key // cols, key % cols
+    keep = valid[iy, ix]
+    return ix[keep], iy[keep]
+
+
+def _quick_fit(flat, valid, start, disk, noise):
+    """Fast first look at a candidate: line through the dip centroids along it.
+
+    Returns (rho, angle, significance) or None; significance is the mean
+    depth at the line over its standard error.
+    """
+    rho, ang = start[0], start[1]
+    cx, cy = disk.center_px
+    band = _band_pixels(valid, disk, rho, ang, 5.0)
+    if band is None:
+        return None
+    ix, iy = band
+    fx, fy = ix - cx, iy - cy
+    ca, sa = math.cos(ang), math.sin(ang)
+    d = ca * fx + sa * fy - rho
+    s = -sa * fx + ca * fy
+    dip = np.maximum(-flat[iy, ix], 0.0)
+    bins = np.floor((s - s.min()) / 12.0).astype(int)
+    weight = np.bincount(bins, dip)
+    has = weight > 0
+    if has.sum() < 3:
+        return None
+    centroid = np.bincount(bins, dip * d)[has] / weight[has]
+    s_mid = np.bincount(bins, s)[has] / np.bincount(bins)[has]
+    design = np.stack([np.ones_like(s_mid), s_mid], axis=1) * np.sqrt(weight[has])[:, None]
+    coef = np.linalg.lstsq(design, centroid * np.sqrt(weight[has]), rcond=None)[0]
+    rho_new, ang_new = rho + coef[0], ang - math.atan(coef[1])
+    d_new = math.cos(ang_new) * fx + math.sin(ang_new) * fy - rho_new
+    core, flank = np.abs(d_new) < 1.0, (np.abs(d_new) > 3.5) & (np.abs(d_new) < 5.0)
+    if core.sum() < 10 or flank.sum() < 10:
+        return None
+    depth = np.mean(flat[iy[flank], ix[flank]]) - np.mean(flat[iy[core], ix[core]])
+    error = noise * math.sqrt(1.0 / core.sum() + 1.0 / flank.sum())
+    return rho_new, ang_new, depth / error
 
 
 def _hough_candidates(ridge, interior, disk, max_lines):
@@ -409,8 +447,13 @@ def detect_lines(image, *, disk=None, saturation=None, min_angle_deg=5.0, max_li
     # first every candidate alone (neighbouring Hough peaks of one line would
     # otherwise mask each other), then, once duplicates are merged, each line
     # again with the pixels near all other lines left out
-    fitted = _fit_all(flat, interior, starts, None, disk, noise)
-    fitted = _fit_all(flat, interior, [(p[0], p[1], p[2], p[4]) for p, _, _ in fitted], True,
+    quick = []
+    for st in starts:
+        q = _quick_fit(flat, interior, st, disk, noise)
+        if q is not None and q[2] > 10.0:
+            quick.append((np.array([q[0], q[1], 0.0, q[2], 1.0, 0.0]), np.eye(6), 0))
+    quick = _merge_duplicates(quick, disk, key=lambda f: -f[0][3])
+    fitted = _fit_all(flat, interior, [(p[0], p[1], 0.0, 1.0) for p, _, _ in quick], True,
                       disk, noise)
     lines = [_make_line(p, cov, npx, disk) for p, cov, npx in fitted]
     _flag_lines(lines, image, valid, disk, warnings)
@@ -427,9 +470,10 @@ def detect_lines(image, *, disk=None, saturation=None, min_angle_deg=5.0, max_li
 
 def _fit_all(flat, valid, starts, exclude_others, disk, noise):
     fits = []
+    gap = _gap_matrix([st[:3] for st in starts], disk) if starts else None
     for k, st in enumerate(starts):
         others = [o for j, o in enumerate(starts)
-                  if j != k and _chord_gap(o, st, disk) > 4.0] if exclude_others else []
+                  if j != k and gap[j, k] > 4.0] if exclude_others else []
         res = _fit_line(flat, valid, st, others, disk, noise)
         if res is None:
             continue
@@ -451,6 +495,23 @@ def _fraction_in_frame(disk, rows, cols):
     return float(np.mean((px >= 0) & (px <= cols - 1) & (py >= 0) & (py <= rows - 1)))
 
 
+def _gap_matrix(params, disk, samples=9):
+    """gap[i, j]: largest distance (px) from line j of points along line i's chord."""
+    params = np.asarray(params, dtype=float).reshape(-1, 3)
+    cx, cy = disk.center_px
+    rho, ang, kappa = params[:, 0], params[:, 1], params[:, 2]
+    span = np.sqrt(np.maximum(disk.radius_px ** 2 - rho ** 2, 0.0))
+    sv = np.linspace(-1, 1, samples)[None, :] * span[:, None]
+    ca, sa = np.cos(ang)[:, None], np.sin(ang)[:, None]
+    off = rho[:, None] + kappa[:, None] * sv * sv
+    u, v = off * ca - sv * sa, off * sa + sv * ca              # (n, k) relative to c
+    cb, sb = np.cos(ang)[None, :, None], np.sin(ang)[None, :, None]
+    uu, vv = u[:, None, :], v[:, None, :]
+    s_other = -sb * uu + cb * vv
+    d = cb * uu + sb * vv - rho[None, :, None] - kappa[None, :, None] * s_other ** 2
+    return np.max(np.abs(d), axis=2)
+
+
 def _chord_gap(p, q, disk, samples=9):
     """Largest distance (px) from line q of points sampled along line p's chord."""
     cx, cy = disk.center_px
@@ -463,14 +524,18 @@ def _chord_gap(p, q, disk, samples=9):
     return float(np.max(np.abs(_distance(q[0], q[1], q[2], px, py, cx, cy))))
 
 
-def _merge_duplicates(fits, disk):
+def _merge_duplicates(fits, disk, key=None):
     """Keep the most significant of fits that trace the same line (within 2 px)."""
-    fits = sorted(fits, key=lambda f: -f[0][3] / math.sqrt(max(f[1][3, 3], 1e-30)))
+    key = key or (lambda f: -f[0][3] / math.sqrt(max(f[1][3, 3], 1e-30)))
+    fits = sorted(fits, key=key)
+    if not fits:
+        return fits
+    gap = _gap_matrix([f[0][:3] for f in fits], disk)
     kept = []
-    for p, cov, npx in fits:
-        if not any(_chord_gap(p, q, disk) < 2.0 for q, _, _ in kept):
-            kept.append((p, cov, npx))
-    return kept
+    for i in range(len(fits)):
+        if not any(gap[i, j] < 2.0 for j in kept):
+            kept.append(i)
+    return [fits[i] for i in kept]
 
 
 def _make_line(p, cov, npx, disk):
@@ -496,46 +561,57 @@ def _make_line(p, cov, npx, disk):
 
 
 def _flag_lines(lines, image, valid, disk, warnings):
-    """Flag lines that continue outside the disk or have an unusual width."""
+    """Flag lines that continue outside the disk or have an unusual width.
+
+    Beyond both ends of each chord (6 to 40 px outside the rim) the image
+    along the line is compared with its two flanks; a deficit line ends at
+    the rim, an artefact (scratch, seam, straight streak) does not.
+    """
     if not lines:
         return
     from scipy import ndimage
 
     cx, cy = disk.center_px
-    widths = np.array([ln.width_px for ln in lines])
-    median_width = float(np.median(widths))
     rows, cols = image.shape
+    median_width = float(np.median([ln.width_px for ln in lines]))
+    steps = np.arange(6.0, 40.0)
+    coords, owner = [], []
     for k, ln in enumerate(lines):
         ang = math.radians(ln.normal_angle_deg)
         ca, sa = math.cos(ang), math.sin(ang)
         span = math.sqrt(max(disk.radius_px ** 2 - ln.offset_px ** 2, 0.0))
-        # beyond both ends of the chord, compare the line with its flanks
-        contrasts = []
+        shift = 3 * ln.width_px
         for sign in (-1, 1):
-            s = sign * (span + np.arange(6.0, 40.0))
-            fx = cx + ln.offset_px * ca - s * sa
-            fy = cy + ln.offset_px * sa + s * ca
+            sv = sign * (span + steps)
+            fx = cx + ln.offset_px * ca - sv * sa
+            fy = cy + ln.offset_px * sa + sv * ca
             ok = (fx >= 2) & (fx <= cols - 3) & (fy >= 2) & (fy <= rows - 3)
             if ok.sum() < 10:
                 continue
-            w = ln.width_px
-            on = ndimage.map_coordinates(image, [fy[ok], fx[ok]], order=1)
-            off = 0.5 * (ndimage.map_coordinates(image, [fy[ok] + 3 * w * sa, fx[ok] + 3 * w * ca],
-                                                 order=1) +
-                         ndimage.map_coordinates(image, [fy[ok] - 3 * w * sa, fx[ok] - 3 * w * ca],
-                                                 order=1))
-            diff = off - on
-            spread = np.std(diff) / math.sqrt(len(diff)) + 1e-12
-            contrasts.append(np.mean(diff) / spread)
-        if contrasts and max(contrasts) > 6.0:
+            for dx, dy in ((0, 0), (shift * ca, shift * sa), (-shift * ca, -shift * sa)):
+                coords.append(np.stack([fy[ok] + dy, fx[ok] + dx]))
+            owner.append((k, int(ok.sum())))
+    contrast = {}
+    if coords:
+        values = ndimage.map_coordinates(image, np.concatenate(coords, axis=1), order=1)
+        pos = 0
+        for k, n in owner:
+            on, plus, minus = values[pos:pos + n], values[pos + n:pos + 2 * n], \
+                values[pos + 2 * n:pos + 3 * n]
+            pos += 3 * n
+            diff = 0.5 * (plus + minus) - on
+            z = np.mean(diff) / (np.std(diff) / math.sqrt(n) + 1e-12)
+            contrast[k] = max(contrast.get(k, -np.inf), z)
+    for k, ln in enumerate(lines):
+        if contrast.get(k, 0.0) > 6.0:
             ln.flag = "continues outside the disk: an artefact, not a deficit line"
         elif ln.width_px > 2.5 * median_width or ln.width_px < 0.4 * median_width:
             ln.flag = (f"width {ln.width_px:.1f} px is far from the median "
                        f"{median_width:.1f} px")
-    flagged = [ln for ln in lines if ln.flag]
-    for ln in flagged:
-        warnings.append(f"line at angle {ln.normal_angle_deg:.1f} deg, offset "
-                        f"{ln.offset_px:.1f} px left out: {ln.flag}")
+    for ln in lines:
+        if ln.flag:
+            warnings.append(f"line at angle {ln.normal_angle_deg:.1f} deg, offset "
+                            f"{ln.offset_px:.1f} px left out: {ln.flag}")
 
 
 def _crossings(lines, disk, min_angle_deg):
