@@ -10,8 +10,8 @@ from __future__ import annotations
 import numpy as np
 
 
-__all__ = ["pattern_figure", "fit_figure", "thickness_figure", "survey_figure", "save_figure",
-           "draw_disk_lines", "hkl_label"]
+__all__ = ["pattern_figure", "fit_figure", "thickness_figure", "survey_figure",
+           "detection_figure", "save_figure", "draw_disk_lines", "hkl_label"]
 
 _DISK_FILL = "#f4f1ea"
 _DISK_EDGE = "#5b5b5b"
@@ -318,4 +318,36 @@ def survey_figure(result, crystal, n_labels=8):
     cb.set_label(f"predicted 1-sigma of {result.ranked_by}")
     ax.set_title(f"{result.structure['name']}, {result.kv:g} kV, {result.disk_mrad:g} mrad: "
                  f"{title}", fontsize=10)
+    return fig
+
+
+def detection_figure(det, image):
+    """The pattern with the detected disk, lines (flagged ones dashed) and crossings."""
+    from matplotlib.patches import Circle
+
+    fig = _new_figure(7.0, 7.0)
+    ax = fig.subplots()
+    ax.imshow(image, cmap="gray", origin="upper", interpolation="nearest")
+    d = det.disk
+    ax.add_patch(Circle(d.center_px, d.radius_px, fill=False, edgecolor="#e9c46a",
+                        linewidth=0.8, linestyle=(0, (3, 2))))
+    for i, ln in enumerate(det.lines):
+        pts = ln.points_px
+        style = (0, (4, 3)) if ln.flag else "-"
+        colour = "#9b9b9b" if ln.flag else "#2a9d8f"
+        ax.plot(pts[:, 0], pts[:, 1], color=colour, linewidth=0.9, linestyle=style, alpha=0.9)
+        mid = pts[len(pts) // 2]
+        ax.text(mid[0], mid[1], str(i), fontsize=6, color="#f4f1ea", ha="center",
+                va="center", zorder=5)
+    if len(det.crossing_px):
+        ax.plot(det.crossing_px[:, 0], det.crossing_px[:, 1], linestyle="none", marker="o",
+                markersize=2.2, markerfacecolor="none", markeredgecolor=_CROSSING,
+                markeredgewidth=0.6)
+    ax.set_xlim(-0.5, image.shape[1] - 0.5)
+    ax.set_ylim(image.shape[0] - 0.5, -0.5)
+    ax.set_title(f"{len(det.good_lines)} lines, {len(det.crossing_px)} crossings"
+                 + (f", {len(det.lines) - len(det.good_lines)} flagged" if
+                    len(det.lines) != len(det.good_lines) else ""), fontsize=10)
+    ax.set_xlabel("x (px)")
+    ax.set_ylabel("y (px, down)")
     return fig

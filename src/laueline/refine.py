@@ -43,12 +43,13 @@ from .crystal import basis_from_cell, cell_from_basis
 from .detector import Detector, rotation_matrix
 from .errors import InputError
 from .frame import default_x_axis, reduce_indices
-from .lines import crossing_angles_deg, crossing_positions, predict
+from .lines import (crossing_angles_deg, crossing_positions, line_parameters_batch,
+                    locus_distances, predict)
 from .optics import make_beam, relativistic_factor, wave_number
 from .strain import strain_report
 
-__all__ = ["MODELS", "STRAIN_COMPONENTS", "FitResult", "refine", "calibration_from_document",
-           "fitted_pattern", "CAUTIONS"]
+__all__ = ["MODELS", "STRAIN_COMPONENTS", "FitResult", "refine", "refine_image",
+           "calibration_from_document", "fitted_pattern", "CAUTIONS"]
 
 MODELS = ("strain", "fixed", "cubic", "tetragonal", "hexagonal", "orthorhombic",
           "monoclinic", "triclinic")
@@ -174,14 +175,19 @@ class _Setup:
     def crossings_px(self, v, hkl_a, hkl_b):
         return self.detector(v).to_pixels(self.crossings_mrad(v, hkl_a, hkl_b))
 
-    def crossings_px_many(self, value_sets, hkl_a, hkl_b):
-        """Crossing pixels for several parameter sets in one vectorised pass, (m, p, 2)."""
+    def stacked(self, value_sets):
+        """Bases, wave numbers, detector matrices and centres of several parameter sets."""
         bases = np.stack([self.basis(v) for v in value_sets])
         k = np.array([self.wave_number(v["kv"]) for v in value_sets])
-        t = crossing_positions(bases, self.zone, self.x_axis, k, hkl_a, hkl_b)
         dets = [self.detector(v) for v in value_sets]
         matrices = np.stack([d.matrix for d in dets])
         centres = np.array([d.center_px for d in dets], dtype=float)
+        return bases, k, matrices, centres
+
+    def crossings_px_many(self, value_sets, hkl_a, hkl_b):
+        """Crossing pixels for several parameter sets in one vectorised pass, (m, p, 2)."""
+        bases, k, matrices, centres = self.stacked(value_sets)
+        t = crossing_positions(bases, self.zone, self.x_axis, k, hkl_a, hkl_b)
         return t @ np.swapaxes(matrices, -1, -2) + centres[:, None, :]
 
 
@@ -225,6 +231,7 @@ class FitResult:
     structure: dict | None = None
     inner_potential: bool = False
     wave_number: float = float("nan")
+    lines: list | None = None
 
     def parameter(self, name):
         """(value, sigma) of a refined parameter."""
@@ -294,6 +301,56 @@ def refine(crystal, zone, points, *, kv=200.0, model="strain", x_axis=None, free
     -------
     FitResult
     """
+    if len(points) == 0:
+        raise InputError("no points to fit")
+    n = len(points)
+    setup, warnings, center_px, scale_px_per_mrad, rotation_deg, mirror = _prepare(
+        crystal, zone, kv=kv, model=model, x_axis=x_axis, free=free, hold=hold,
+        unique_axis=unique_axis, center_px=center_px, scale_px_per_mrad=scale_px_per_mrad,
+        rotation_deg=rotation_deg, mirror=mirror, calibration=calibration,
+        inner_potential=inner_potential)
+
+    xy = np.asarray(points.xy_px, dtype=float)
+    _check_spread(xy)
+    if center_px is not None and scale_px_per_mrad is not None:
+        _check_inside_disk(xy, center_px, scale_px_per_mrad, disk_mrad)
+    weights = np.ones(n) if points.sigma_px is None else 1.0 / points.sigma_px
+
+    # -- labels ----------------------------------------------------------------
+    if points.labelled:
+        hkl_a, hkl_b = _check_labels(crystal, setup, points, disk_mrad)
+        _start_detector_from_labels(setup, xy, hkl_a, hkl_b, center_px, scale_px_per_mrad,
+                                    rotation_deg, mirror)
+        used = np.ones(n, dtype=bool)
+        reasons = [""] * n
+        obs = _CrossingObs(xy, hkl_a, hkl_b, weights)
+        x, fit_warnings, converged = _fit(setup, obs, robust)
+        if robust:
+            used, reasons, x, converged = _reject_outliers(setup, obs, x)
+        warnings += fit_warnings
+        fitted = setup.values(x)
+        _check_inside_disk(xy, (fitted["center_x"], fitted["center_y"]), fitted["scale"],
+                           disk_mrad)
+    else:
+        if scale_px_per_mrad is None:
+            raise InputError("unlabelled points need a starting detector scale: give "
+                             "--scale-px-per-mrad or --calibration")
+        hkl_a, hkl_b, used, reasons, x, converged, assign_warnings = _assign_and_fit(
+            setup, xy, weights, center_px, scale_px_per_mrad, rotation_deg, mirror,
+            disk_mrad, min_strength, min_angle_deg, match_mrad, robust)
+        warnings += assign_warnings
+
+    rows, rms = _crossing_rows(setup, setup.values(x), xy, hkl_a, hkl_b, used, reasons)
+    obs = _CrossingObs(xy, hkl_a, hkl_b, weights).subset(used)
+    return _result(setup, crystal, obs, x, converged, warnings, points.sigma_px is not None,
+                   rows, rms, unique_axis=unique_axis if model in ("tetragonal", "monoclinic")
+                   else None, disk_mrad=disk_mrad, stiffness=stiffness,
+                   sample_axes=sample_axes, inner_potential=inner_potential)
+
+
+def _prepare(crystal, zone, *, kv, model, x_axis, free, hold, unique_axis, center_px,
+             scale_px_per_mrad, rotation_deg, mirror, calibration, inner_potential):
+    """Validate the request and build the fit set-up and detector start values."""
     if model not in MODELS:
         raise InputError(f"unknown model '{model}'; choose one of {', '.join(MODELS)}")
     if unique_axis not in (None, "a", "b", "c"):
@@ -306,9 +363,6 @@ def refine(crystal, zone, points, *, kv=200.0, model="strain", x_axis=None, free
         x_axis = tuple(int(v) for v in x_axis)
         if np.dot(x_axis, zone) != 0:
             raise InputError(f"the x axis {x_axis} is not normal to the zone {zone}")
-    n = len(points)
-    if n == 0:
-        raise InputError("no points to fit")
     if calibration is not None:
         kv = calibration[0]
     kv = float(kv)
@@ -368,38 +422,7 @@ def refine(crystal, zone, points, *, kv=200.0, model="strain", x_axis=None, free
         u0 = crystal.forward_scattering() / (math.pi * crystal.volume)
     setup = _Setup(crystal, zone, x_axis, model, free_names, start, expand, bool(mirror), u0)
 
-    xy = np.asarray(points.xy_px, dtype=float)
-    _check_spread(xy)
-    if center_px is not None and scale_px_per_mrad is not None:
-        _check_inside_disk(xy, center_px, scale_px_per_mrad, disk_mrad)
-    weights = np.ones(n) if points.sigma_px is None else 1.0 / points.sigma_px
-
-    # -- labels ----------------------------------------------------------------
-    if points.labelled:
-        hkl_a, hkl_b = _check_labels(crystal, setup, points, disk_mrad)
-        _start_detector_from_labels(setup, xy, hkl_a, hkl_b, center_px, scale_px_per_mrad,
-                                    rotation_deg, mirror)
-        used = np.ones(n, dtype=bool)
-        reasons = [""] * n
-        x, fit_warnings, converged = _fit(setup, xy, hkl_a, hkl_b, used, weights, robust)
-        if robust:
-            used, reasons, x, converged = _reject_outliers(setup, xy, hkl_a, hkl_b, weights, x)
-        warnings += fit_warnings
-        fitted = setup.values(x)
-        _check_inside_disk(xy, (fitted["center_x"], fitted["center_y"]), fitted["scale"],
-                           disk_mrad)
-    else:
-        if scale_px_per_mrad is None:
-            raise InputError("unlabelled points need a starting detector scale: give "
-                             "--scale-px-per-mrad or --calibration")
-        hkl_a, hkl_b, used, reasons, x, converged, assign_warnings = _assign_and_fit(
-            setup, xy, weights, center_px, scale_px_per_mrad, rotation_deg, mirror,
-            disk_mrad, min_strength, min_angle_deg, match_mrad, robust)
-        warnings += assign_warnings
-
-    return _result(setup, crystal, xy, hkl_a, hkl_b, used, reasons, weights, x, converged,
-                   warnings, points, unique_axis if model in ("tetragonal", "monoclinic")
-                   else None, disk_mrad, stiffness, sample_axes, inner_potential)
+    return setup, warnings, center_px, scale_px_per_mrad, rotation_deg, mirror
 
 
 def _has_dilatation(model, free_set):
@@ -486,43 +509,104 @@ def _start_detector_from_labels(setup, xy, hkl_a, hkl_b, center, scale, rotation
     setup.start["rotation"] = angle if rotation is None else float(rotation)
 
 
-def _residuals_and_jacobian(setup, x, hkl_a, hkl_b, meas, w):
+class _CrossingObs:
+    """Measured crossings (px); one group is one crossing, two residuals."""
+
+    kind = "crossings"
+    group = 2
+
+    def __init__(self, xy, hkl_a, hkl_b, weights):
+        self.xy, self.hkl_a, self.hkl_b, self.weights = xy, hkl_a, hkl_b, weights
+
+    def __len__(self):
+        return len(self.xy)
+
+    def subset(self, mask):
+        return _CrossingObs(self.xy[mask], self.hkl_a[mask], self.hkl_b[mask],
+                            self.weights[mask])
+
+    def residuals(self, setup, value_sets):
+        px = setup.crossings_px_many(value_sets, self.hkl_a, self.hkl_b)
+        return ((px - self.xy) * self.weights[:, None]).reshape(len(value_sets), -1)
+
+    def distances_px(self, setup, v):
+        """Unweighted residual length per crossing, px."""
+        return np.linalg.norm(setup.crossings_px(v, self.hkl_a, self.hkl_b) - self.xy, axis=1)
+
+
+class _LineObs:
+    """Points on detected lines (px); one group is one line.
+
+    The residual of a point is its distance from the predicted exact locus of
+    the line's reflection, whitened with the covariance of the detected
+    line's position at those points.
+    """
+
+    kind = "lines"
+
+    def __init__(self, hkl, points_px, whiten):
+        self.hkl, self.points, self.whiten = hkl, points_px, whiten
+        self.group = points_px.shape[1]
+
+    def __len__(self):
+        return len(self.hkl)
+
+    def subset(self, mask):
+        return _LineObs(self.hkl[mask], self.points[mask], self.whiten[mask])
+
+    def _distances(self, setup, value_sets):
+        bases, k, matrices, centres = setup.stacked(value_sets)
+        inverse = np.linalg.inv(matrices)
+        rel = self.points[None] - centres[:, None, None, :]            # (m, L, k, 2)
+        t = np.einsum("mij,mlkj->mlki", inverse, rel)                   # mrad
+        params = line_parameters_batch(bases, setup.zone, setup.x_axis, k, self.hkl)
+        scale = np.array([v["scale"] for v in value_sets])
+        return locus_distances(t * 1e-3, params) * 1e3 * scale[:, None, None]
+
+    def residuals(self, setup, value_sets):
+        d = self._distances(setup, value_sets)
+        return np.einsum("lij,mlj->mli", self.whiten, d).reshape(len(value_sets), -1)
+
+    def distances_px(self, setup, v):
+        """Rms distance of each line's points from its predicted locus, px."""
+        d = self._distances(setup, [v])[0]
+        return np.sqrt(np.mean(d ** 2, axis=1))
+
+
+def _residuals_and_jacobian(setup, x, obs):
     """Weighted residuals at x and their forward-difference Jacobian, one batched call."""
     trial = [x] + [x + _JAC_STEP * np.eye(x.size)[j] for j in range(x.size)]
-    px = setup.crossings_px_many([setup.values(xx) for xx in trial], hkl_a, hkl_b)
-    r = ((px - meas) * w[:, None]).reshape(len(trial), -1)
+    r = obs.residuals(setup, [setup.values(xx) for xx in trial])
     return r[0], ((r[1:] - r[0]) / _JAC_STEP).T
 
 
-def _fit(setup, xy, hkl_a, hkl_b, used, weights, robust, f_scale=None):
-    """One least-squares fit on the used points; returns (x, warnings, converged)."""
+def _fit(setup, obs, robust, f_scale=None):
+    """One least-squares fit; returns (x, warnings, converged)."""
     from scipy.optimize import least_squares
 
-    sel = np.flatnonzero(used)
     p = len(setup.free)
-    if 2 * len(sel) < p:
-        raise InputError(f"{len(sel)} crossings give {2 * len(sel)} observations for "
-                         f"{p} free parameters; measure more crossings or hold parameters")
-    ha, hb, meas, w = hkl_a[sel], hkl_b[sel], xy[sel], weights[sel]
+    n_obs = len(obs) * obs.group
+    if n_obs < p:
+        raise InputError(f"{len(obs)} {obs.kind} give {n_obs} observations for "
+                         f"{p} free parameters; measure more or hold parameters")
 
     def fun(x):
-        pred = setup.crossings_px(setup.values(x), ha, hb)
-        return ((pred - meas) * w[:, None]).ravel()
+        return obs.residuals(setup, [setup.values(x)])[0]
 
     def jac(x):
-        return _residuals_and_jacobian(setup, x, ha, hb, meas, w)[1]
+        return _residuals_and_jacobian(setup, x, obs)[1]
 
     x0 = np.zeros(p)
     if p == 0:
         return x0, [], True
     if robust:
         if f_scale is None:
-            r = np.linalg.norm(fun(x0).reshape(-1, 2), axis=1)
-            f_scale = max(np.median(r) / 1.1774, 1e-3)
+            r = np.linalg.norm(fun(x0).reshape(-1, obs.group), axis=1)
+            f_scale = max(np.median(r) / _median_norm(obs.group), 1e-3)
         res = least_squares(fun, x0, jac=jac, method="trf", loss="soft_l1", f_scale=f_scale,
                             x_scale=1.0, max_nfev=100 * (p + 1))
     else:
-        method = "lm" if fun(x0).size >= p else "trf"
+        method = "lm" if n_obs >= p else "trf"
         res = least_squares(fun, x0, jac=jac, method=method, x_scale=1.0,
                             max_nfev=100 * (p + 1))
     warnings = []
@@ -532,15 +616,29 @@ def _fit(setup, xy, hkl_a, hkl_b, used, weights, robust, f_scale=None):
     return res.x, warnings, converged
 
 
-def _reject_outliers(setup, xy, hkl_a, hkl_b, weights, x):
-    """After a robust fit, drop points beyond 4 robust sigmas and refit by least squares."""
+def _median_norm(k):
+    """Median of the length of a k-dimensional standard Gaussian vector."""
+    from scipy.stats import chi2
+
+    return math.sqrt(chi2.ppf(0.5, k))
+
+
+def _reject_outliers(setup, obs, x):
+    """After a robust fit, drop groups beyond the 4-sigma level and refit by least squares.
+
+    For one crossing (k = 2) the level is a residual 4 robust sigmas long
+    (tail probability exp(-8)); other group sizes use the same probability.
+    """
+    from scipy.stats import chi2
+
     v = setup.values(x)
-    r = np.linalg.norm((setup.crossings_px(v, hkl_a, hkl_b) - xy) * weights[:, None], axis=1)
-    # median of the norm of a 2-D Gaussian residual is sigma sqrt(2 ln 2)
-    sigma = max(np.median(r) / 1.1774, 1e-9)
-    used = r <= 4.0 * sigma
-    reasons = ["" if u else f"outlier: {ri / sigma:.1f} robust sigmas" for u, ri in zip(used, r)]
-    x, _, converged = _fit(setup, xy, hkl_a, hkl_b, used, weights, robust=False)
+    r = np.linalg.norm(obs.residuals(setup, [v])[0].reshape(len(obs), obs.group), axis=1)
+    sigma = max(np.median(r) / _median_norm(obs.group), 1e-9)
+    level = math.sqrt(chi2.isf(math.exp(-8.0), obs.group))
+    used = r <= level * sigma
+    reasons = ["" if u else f"outlier: residual {ri / sigma:.1f} robust sigmas"
+               for u, ri in zip(used, r)]
+    x, _, converged = _fit(setup, obs.subset(used), robust=False)
     return used, reasons, x, converged
 
 
@@ -682,11 +780,10 @@ def _assign_and_fit(setup, xy, weights, center, scale, rotation, mirror, disk_mr
         full_a = np.zeros((len(xy), 3), dtype=np.int64)
         full_b = np.zeros((len(xy), 3), dtype=np.int64)
         full_a[used], full_b[used] = ha[assigned[used]], hb[assigned[used]]
-        x_new, fit_warnings, converged = _fit(setup, xy, full_a, full_b, used, weights,
-                                              robust)
+        obs = _CrossingObs(xy, full_a, full_b, weights).subset(used)
+        x_new, fit_warnings, converged = _fit(setup, obs, robust)
         setup_v = setup.values(x_new)
-        r = np.linalg.norm(setup.crossings_px(setup_v, full_a[used], full_b[used]) - xy[used],
-                           axis=1)
+        r = obs.distances_px(setup, setup_v)
         # shrink the gate toward the achieved precision, never below 3 px
         gate = max(min(match_mrad, 6 * np.sqrt(np.mean(r ** 2)) / setup_v["scale"]),
                    3.0 / setup_v["scale"])
@@ -696,8 +793,8 @@ def _assign_and_fit(setup, xy, weights, center, scale, rotation, mirror, disk_mr
         converged = False
     reasons = ["" if u else "no predicted crossing within the gate" for u in used]
     if robust:
-        used_r, reasons_r, x, converged = _reject_outliers(setup, xy[used], full_a[used],
-                                                           full_b[used], weights[used], x)
+        used_r, reasons_r, x, converged = _reject_outliers(
+            setup, _CrossingObs(xy, full_a, full_b, weights).subset(used), x)
         idx = np.flatnonzero(used)
         for k, i in enumerate(idx):
             if not used_r[k]:
@@ -712,14 +809,27 @@ def _assign_and_fit(setup, xy, weights, center, scale, rotation, mirror, disk_mr
 
 # -- results -------------------------------------------------------------------
 
-def _result(setup, crystal, xy, hkl_a, hkl_b, used, reasons, weights, x, converged,
-            warnings, points, unique_axis, disk_mrad, stiffness, sample_axes,
-            inner_potential):
-    sel = np.flatnonzero(used)
+def _crossing_rows(setup, v, xy, hkl_a, hkl_b, used, reasons):
+    """Points table: measured, assigned, residual (measured - fitted, px), used, note."""
+    fitted = np.full_like(xy, np.nan)
+    labelled = np.any(hkl_a != 0, axis=1)
+    if np.any(labelled):
+        fitted[labelled] = setup.crossings_px(v, hkl_a[labelled], hkl_b[labelled])
+    rows = [{"x_px": xy[i, 0], "y_px": xy[i, 1], "hkl_a": hkl_a[i].tolist(),
+             "hkl_b": hkl_b[i].tolist(), "residual_px": (xy[i] - fitted[i]).tolist(),
+             "used": bool(used[i]), "note": reasons[i]} for i in range(len(xy))]
+    res = (xy - fitted)[used]
+    rms = float(np.sqrt(np.mean(np.sum(res ** 2, axis=1)))) if np.any(used) else float("nan")
+    return rows, rms
+
+
+def _result(setup, crystal, obs, x, converged, warnings, sigma_given, rows, rms, *,
+            unique_axis, disk_mrad, stiffness, sample_axes, inner_potential, lines=None):
+    """Statistics, strain and stress of a finished fit on the used observations ``obs``."""
     p = len(setup.free)
     v = setup.values(x)
 
-    f0, jac = _residuals_and_jacobian(setup, x, hkl_a[sel], hkl_b[sel], xy[sel], weights[sel])
+    f0, jac = _residuals_and_jacobian(setup, x, obs)
     m = f0.size
     dof = m - p
     chi2 = float(np.sum(f0 ** 2))
@@ -735,9 +845,9 @@ def _result(setup, crystal, xy, hkl_a, hkl_b, used, reasons, weights, x, converg
             worst = vt[-1]
             names = [setup.free[j] for j in np.argsort(-np.abs(worst))[:2]]
             raise InputError(f"degenerate fit: {' and '.join(names)} cannot be separated by "
-                             "these crossings; hold one of them or add crossings")
+                             f"these {obs.kind}; hold one of them or measure more")
         cov_int = (vt.T / sv ** 2) @ vt / np.outer(scale, scale)
-        if points.sigma_px is None:
+        if not sigma_given:
             s2 = chi2 / dof if dof > 0 else float("nan")
             cov_int = cov_int * s2
         units = setup.units
@@ -760,7 +870,7 @@ def _result(setup, crystal, xy, hkl_a, hkl_b, used, reasons, weights, x, converg
                 warnings.append(f"{setup.free[i]} and {setup.free[j]} are correlated "
                                 f"({corr[i, j]:+.3f}): they are poorly separated")
     chi2_out = None
-    if points.sigma_px is not None and dof > 0:
+    if sigma_given and dof > 0:
         from scipy.stats import chi2 as chi2_dist
 
         chi2_out = chi2
@@ -807,18 +917,6 @@ def _result(setup, crystal, xy, hkl_a, hkl_b, used, reasons, weights, x, converg
         "scale_px_per_mrad": sigma_of("scale"),
         "rotation_deg": sigma_of("rotation"),
     }
-    all_pred = np.full_like(xy, np.nan)
-    labelled = np.any(hkl_a != 0, axis=1)
-    if np.any(labelled):
-        all_pred[labelled] = setup.crossings_px(v, hkl_a[labelled], hkl_b[labelled])
-    rows = []
-    for i in range(len(xy)):
-        rows.append({"x_px": xy[i, 0], "y_px": xy[i, 1], "hkl_a": hkl_a[i].tolist(),
-                     "hkl_b": hkl_b[i].tolist(),
-                     "residual_px": (xy[i] - all_pred[i]).tolist(),
-                     "used": bool(used[i]), "note": reasons[i]})
-    res = xy[sel] - all_pred[sel]
-    rms = float(np.sqrt(np.mean(np.sum(res ** 2, axis=1)))) if len(sel) else float("nan")
     if p and "kv" not in setup.free and setup.model != "fixed" and "scale" in setup.free:
         warnings.append("the camera scale is refined together with the crystal: scale and "
                         "in-plane dilatation are nearly degenerate in one pattern; calibrate "
@@ -829,10 +927,12 @@ def _result(setup, crystal, xy, hkl_a, hkl_b, used, reasons, weights, x, converg
         kv=v["kv"], kv_sigma=sigma_of("kv"), detector=setup.detector(v),
         detector_sigma=det_sigma, parameters=list(setup.free), values=values, sigmas=sig,
         covariance=cov, correlation=corr, condition_number=condition, strain=strain,
-        points=rows, rms_px=rms, n_points=len(xy), n_used=int(len(sel)), chi2=chi2_out,
+        points=rows, rms_px=rms, n_points=len(rows), n_used=int(sum(r["used"] for r in rows)),
+        chi2=chi2_out,
         dof=int(dof), converged=converged, warnings=list(dict.fromkeys(warnings)),
         unique_axis=unique_axis, disk_mrad=disk_mrad, structure=crystal.summary(),
-        inner_potential=inner_potential, wave_number=setup.wave_number(v["kv"]))
+        inner_potential=inner_potential, wave_number=setup.wave_number(v["kv"]),
+        lines=lines)
 
 
 def fitted_pattern(result, crystal, min_strength=0.05):
@@ -840,3 +940,251 @@ def fitted_pattern(result, crystal, min_strength=0.05):
     return predict(crystal.with_basis(result.basis), result.zone, result.kv, result.disk_mrad,
                    x_axis=result.x_axis, min_strength=min_strength,
                    wave_number=result.wave_number)
+
+
+# ---------------------------------------------------------------------------
+# fitting detected lines
+# ---------------------------------------------------------------------------
+
+_POINTS_PER_LINE = (-0.8, 0.0, 0.8)  # positions along each chord, fractions of its half
+
+
+def _line_samples(detection, indices):
+    """Three points on each detected line and their whitening matrices."""
+    cx, cy = detection.disk.center_px
+    points, whiten = [], []
+    for i in indices:
+        ln = detection.lines[i]
+        ang = math.radians(ln.normal_angle_deg)
+        n = np.array([math.cos(ang), math.sin(ang)])
+        m = np.array([-n[1], n[0]])
+        along = (ln.points_px - [cx, cy]) @ m
+        half = 0.5 * (along.max() - along.min())
+        mid = 0.5 * (along.max() + along.min())
+        s = mid + half * np.array(_POINTS_PER_LINE)
+        offset = ln.offset_px + ln.curvature_per_px * s * s
+        pts = np.array([cx, cy]) + offset[:, None] * n + s[:, None] * m
+        # position along the normal moves by d_rho - s d_angle + s^2 d_kappa
+        jac = np.stack([np.ones_like(s), -s, s * s], axis=1)
+        cov = jac @ ln.covariance @ jac.T + np.eye(3) * 1e-12
+        whiten.append(np.linalg.inv(np.linalg.cholesky(cov)))
+        points.append(pts)
+    return np.array(points), np.array(whiten)
+
+
+def _predicted_lines_px(setup, v, disk_mrad, min_strength, centre):
+    """Predicted lines as (hkl, normal angle rad, offset px from ``centre``) in pixels."""
+    crystal = setup.crystal.with_basis(setup.basis(v))
+    pattern = predict(crystal, setup.zone, v["kv"], disk_mrad, x_axis=setup.x_axis,
+                      min_strength=min_strength, min_angle_deg=0.0,
+                      wave_number=setup.wave_number(v["kv"]))
+    det = setup.detector(v)
+    # a straight line n.t = d in mrad maps to pixels as N.(p - c) = d with N = M^-T n
+    normal_px = pattern.normal @ np.linalg.inv(det.matrix)
+    length = np.linalg.norm(normal_px, axis=1)
+    normal_px /= length[:, None]
+    offset = pattern.offset_mrad / length + normal_px @ (np.asarray(det.center_px) - centre)
+    return pattern.hkl, np.arctan2(normal_px[:, 1], normal_px[:, 0]), offset
+
+
+def _line_cost(detection, indices, angles, offsets, centre):
+    """Mean distance (px) of each detected line's chord points from each predicted line.
+
+    Lines more than 1 deg apart in direction get an infinite cost: voltage and
+    strain move lines sideways far more than they turn them.
+    """
+    cost = np.empty((len(indices), len(angles)))
+    normals = np.stack([np.cos(angles), np.sin(angles)], axis=1)
+    for r, i in enumerate(indices):
+        ln = detection.lines[i]
+        pts = ln.points_px[::8] - centre
+        cost[r] = np.mean(np.abs(pts @ normals.T - offsets[None, :]), axis=0)
+        da = np.angle(np.exp(1j * (math.radians(ln.normal_angle_deg) - angles)))
+        turned = np.minimum(np.abs(da), np.pi - np.abs(da)) > math.radians(1.0)
+        cost[r, turned] = np.inf
+    return cost
+
+
+def _search_line_orientation(detection, indices, setup, v0, disk_mrad, min_strength,
+                             rotation, mirror, gate_px):
+    """Rotation and mirror that bring most predicted lines onto detected ones."""
+    centre = np.asarray(detection.disk.center_px)
+    d_ang = np.array([math.radians(detection.lines[i].normal_angle_deg) for i in indices])
+    d_off = np.array([detection.lines[i].offset_px for i in indices])
+    mirrors = [mirror] if mirror is not None else [False, True]
+    rotations = [float(rotation)] if rotation is not None else np.arange(0.0, 360.0, 0.5)
+    results = []
+    for m in mirrors:
+        setup.mirror = bool(m)
+        v = dict(v0, rotation=0.0)
+        hkl, p_ang, p_off = _predicted_lines_px(setup, v, disk_mrad, min_strength, centre)
+        for rot in rotations:  # the detector rotation turns every line normal by rot
+            ang = p_ang + math.radians(rot)
+            # compare lines as (angle, offset) pairs, allowing the flipped description
+            da = np.angle(np.exp(1j * (d_ang[:, None] - ang[None, :])))
+            same = (np.abs(da) < math.radians(1.0)) & (np.abs(d_off[:, None] - p_off[None, :])
+                                                      < gate_px)
+            flipped = (np.abs(np.abs(da) - math.pi) < math.radians(1.0)) & \
+                (np.abs(d_off[:, None] + p_off[None, :]) < gate_px)
+            hits = int(np.sum(np.any(same | flipped, axis=1)))
+            results.append((hits, not m, -rot, m, rot))
+    results.sort(reverse=True)
+    hits, _, _, m, rot = results[0]
+    rivals = [(r[3], r[4]) for r in results[1:] if r[0] >= hits and
+              (r[3] != m or abs((r[4] - rot + 180) % 360 - 180) > 5)]
+    return hits, m, rot, rivals
+
+
+def refine_image(crystal, zone, detection, *, kv=200.0, model="strain", x_axis=None, free=(),
+                 hold=(), unique_axis=None, center_px=None, scale_px_per_mrad=None,
+                 rotation_deg=None, mirror=None, calibration=None, robust=False,
+                 disk_mrad=None, min_strength=0.1, match_px=None, inner_potential=False,
+                 stiffness=None, sample_axes=None):
+    """Fit crystal and detector parameters to detected line positions.
+
+    The detected lines (:func:`laueline.images.detect.detect_lines`) are
+    assigned to predicted lines by optimal matching inside a distance gate,
+    after a search over rotation and mirror when the rotation is unknown;
+    the fit then minimises the distances of three points on each detected
+    line from the exact predicted locus of its reflection, whitened with the
+    detection's covariance of the line position.  Fit and assignment
+    alternate until the assignment is stable.  Parameters are those of
+    :func:`refine`; the pattern centre starts at the detected disk centre,
+    and the disk radius in mrad follows from the detected radius and the
+    scale (or, given ``disk_mrad``, the scale from the radius).
+
+    Returns
+    -------
+    FitResult
+        With ``lines`` listing every detected line, its assignment and
+        residual, and ``points`` the detected crossings against the fitted ones.
+    """
+    from scipy.optimize import linear_sum_assignment
+
+    good = detection.good_lines
+    if len(good) < 3:
+        raise InputError(f"only {len(good)} usable lines were detected: too few to fit")
+    radius_px = detection.disk.radius_px
+    if calibration is not None and scale_px_per_mrad is None:
+        scale_px_per_mrad = calibration[1].scale_px_per_mrad
+    if scale_px_per_mrad is None:
+        if disk_mrad is None:
+            raise InputError("fitting an image needs the camera scale: give "
+                             "--scale-px-per-mrad, --calibration or --disk-mrad")
+        scale_px_per_mrad = radius_px / float(disk_mrad)
+    if disk_mrad is None:
+        disk_mrad = radius_px / scale_px_per_mrad
+    if center_px is None:
+        center_px = detection.disk.center_px
+    setup, warnings, center_px, scale_px_per_mrad, rotation_deg, mirror = _prepare(
+        crystal, zone, kv=kv, model=model, x_axis=x_axis, free=free, hold=hold,
+        unique_axis=unique_axis, center_px=center_px, scale_px_per_mrad=scale_px_per_mrad,
+        rotation_deg=rotation_deg, mirror=mirror, calibration=calibration,
+        inner_potential=inner_potential)
+    warnings = warnings + list(detection.warnings)
+    if calibration is not None:
+        # the pattern centre moves between regions; the disk centre is the better start
+        center_px = detection.disk.center_px
+    setup.start.update(center_x=float(center_px[0]), center_y=float(center_px[1]),
+                       scale=float(scale_px_per_mrad))
+    # a voltage a few kV off, or a strain of a few 1e-3, moves lines by up to about
+    # half a mrad: the first assignment needs a gate that wide
+    gate = match_px if match_px is not None else max(3.0, 0.5 * scale_px_per_mrad)
+
+    hits, m, rot, rivals = _search_line_orientation(
+        detection, good, setup, dict(setup.start), disk_mrad, min_strength, rotation_deg,
+        mirror, gate)
+    if hits < max(3, 0.3 * len(good)):
+        raise InputError(f"only {hits} of {len(good)} detected lines match predicted ones in "
+                         "any orientation: check the zone axis, the voltage and the scale")
+    if rotation_deg is None:
+        warnings.append(f"orientation found by search: rotation {rot:.1f} deg, mirror "
+                        f"{'yes' if m else 'no'}")
+    if rivals:
+        warnings.append(
+            f"the lines fit the pattern equally well at rotation {rivals[0][1]:.1f} deg, "
+            f"mirror {'yes' if rivals[0][0] else 'no'}: the pattern's symmetry leaves the "
+            "assignment, and with it the sign or order of some strain components, "
+            "undetermined; fix the orientation from a labelled reference")
+    setup.mirror = bool(m)
+    setup.start["rotation"] = float(rot)
+
+    points_all, whiten_all = _line_samples(detection, good)
+    centre = np.asarray(detection.disk.center_px)
+    x = np.zeros(len(setup.free))
+    previous = None
+    converged = False
+    fit_warnings = []
+    for _ in range(12):
+        v = setup.values(x)
+        hkl, p_ang, p_off = _predicted_lines_px(setup, v, disk_mrad, min_strength, centre)
+        cost = _line_cost(detection, good, p_ang, p_off, centre)
+        rows_, cols_ = linear_sum_assignment(np.where(cost <= gate, cost, 1e6))
+        assigned = np.full(len(good), -1)
+        ok = cost[rows_, cols_] <= gate
+        assigned[rows_[ok]] = cols_[ok]
+        key = tuple(tuple(hkl[a]) if a >= 0 else None for a in assigned)
+        if key == previous:
+            break
+        previous = key
+        used = assigned >= 0
+        if used.sum() * 3 < len(setup.free):
+            raise InputError(f"only {int(used.sum())} detected lines matched predicted ones: "
+                             f"too few for {len(setup.free)} parameters")
+        line_hkl = np.zeros((len(good), 3), dtype=np.int64)
+        line_hkl[used] = hkl[assigned[used]]
+        obs = _LineObs(line_hkl, points_all, whiten_all).subset(used)
+        x_new, fit_warnings, converged = _fit(setup, obs, robust)
+        r = obs.distances_px(setup, setup.values(x_new))
+        gate = max(min(gate, 6 * float(np.sqrt(np.mean(r ** 2)))), 2.0)
+        x = x_new
+    else:
+        warnings.append("the assignment of lines did not settle in 12 rounds")
+        converged = False
+    reasons = ["" if u else "no predicted line within the gate" for u in used]
+    if robust:
+        used_r, reasons_r, x, converged = _reject_outliers(
+            setup, _LineObs(line_hkl, points_all, whiten_all).subset(used), x)
+        for k, i in enumerate(np.flatnonzero(used)):
+            if not used_r[k]:
+                used[i] = False
+                reasons[i] = reasons_r[k]
+    warnings += fit_warnings
+    if int((~used).sum()):
+        warnings.append(f"{int((~used).sum())} detected line(s) left out of the fit "
+                        "(see the lines table)")
+
+    v = setup.values(x)
+    full = _LineObs(line_hkl, points_all, whiten_all)
+    dist = np.full(len(good), np.nan)
+    if np.any(used):
+        dist[used] = full.subset(used).distances_px(setup, v)
+    lines = []
+    index_of = {i: k for k, i in enumerate(good)}
+    for i, ln in enumerate(detection.lines):
+        k = index_of.get(i)
+        lines.append({"index": i, "hkl": line_hkl[k].tolist() if k is not None else [0, 0, 0],
+                      "residual_px": float(dist[k]) if k is not None else None,
+                      "used": bool(k is not None and used[k]),
+                      "note": ln.flag if k is None else reasons[k]})
+    # the detected crossings of assigned lines, against the fitted ones
+    label = {i: line_hkl[k] for k, i in enumerate(good) if used[k]}
+    cx_rows = [(xy, label[a], label[b]) for (a, b), xy in
+               zip(detection.crossing_lines, detection.crossing_px) if a in label and b in label]
+    if cx_rows:
+        xy = np.array([c[0] for c in cx_rows])
+        ha = np.array([c[1] for c in cx_rows])
+        hb = np.array([c[2] for c in cx_rows])
+        rows, _ = _crossing_rows(setup, v, xy, ha, hb, np.ones(len(xy), bool),
+                                 ["derived from two fitted lines"] * len(xy))
+    else:
+        rows = []
+    rms = float(np.sqrt(np.nanmean(dist[used] ** 2))) if np.any(used) else float("nan")
+    obs = full.subset(used)
+    result = _result(setup, crystal, obs, x, converged, warnings, True, rows, rms,
+                     unique_axis=unique_axis if model in ("tetragonal", "monoclinic") else None,
+                     disk_mrad=disk_mrad, stiffness=stiffness, sample_axes=sample_axes,
+                     inner_potential=inner_potential, lines=lines)
+    result.n_used = int(used.sum())
+    result.n_points = len(good)
+    return result

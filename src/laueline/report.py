@@ -24,6 +24,9 @@ __all__ = [
     "fit_text",
     "THICKNESS_SCHEMA",
     "SURVEY_SCHEMA",
+    "DETECTION_SCHEMA",
+    "detection_document",
+    "detection_text",
     "survey_document",
     "survey_text",
     "thickness_document",
@@ -549,4 +552,60 @@ def survey_text(result, top=15):
     if result.warnings:
         out.append("")
         out.extend(f"warning: {w}" for w in result.warnings)
+    return "\n".join(out)
+
+
+# ---------------------------------------------------------------------------
+# detection
+# ---------------------------------------------------------------------------
+
+DETECTION_SCHEMA = "laueline.detection/1"
+
+
+def detection_document(det):
+    """The ``laueline.detection/1`` document of a :class:`~laueline.images.detect.Detection`."""
+    return _clean({
+        "schema": DETECTION_SCHEMA,
+        "image": det.source,
+        "shape": list(det.shape),
+        "pixel_convention": "x = column, y = row (down), pixel centres at integers",
+        "disk": {"center_px": list(det.disk.center_px), "radius_px": det.disk.radius_px,
+                 "rms_px": det.disk.rms_px, "edge_points": det.disk.n_edge_points,
+                 "given": det.disk.given},
+        "noise": det.noise,
+        "saturated_px": det.saturated_px,
+        "lines": [{"normal_angle_deg": ln.normal_angle_deg, "offset_px": ln.offset_px,
+                   "curvature_per_px": ln.curvature_per_px,
+                   "position_sigma_px": ln.offset_sigma_px,
+                   "angle_sigma_deg": ln.angle_sigma_deg,
+                   "covariance": ln.covariance,
+                   "depth": ln.depth, "width_px": ln.width_px, "snr": ln.snr,
+                   "n_pixels": ln.n_pixels, "points_px": ln.points_px,
+                   "flagged": bool(ln.flag), "flag": ln.flag} for ln in det.lines],
+        "crossings": [{"lines": det.crossing_lines[k], "xy_px": det.crossing_px[k],
+                       "sigma_px": det.crossing_sigma_px[k],
+                       "angle_deg": det.crossing_angle_deg[k]}
+                      for k in range(len(det.crossing_lines))],
+        "warnings": det.warnings,
+    })
+
+
+def detection_text(det):
+    """Readable summary of a detection."""
+    d = det.disk
+    good = det.good_lines
+    out = [f"disk       centre ({d.center_px[0]:.2f}, {d.center_px[1]:.2f}) px, radius "
+           f"{d.radius_px:.2f} px" + (" (given)" if d.given else
+                                       f", edge rms {d.rms_px:.2f} px from {d.n_edge_points} points"),
+           f"lines      {len(good)} found ({len(det.lines) - len(good)} flagged); "
+           f"{len(det.crossing_lines)} crossings; noise {det.noise:.3g} of the background",
+           "",
+           "  #   angle deg   offset px   +-px     width px   depth    snr"]
+    for i, ln in enumerate(det.lines):
+        mark = "  flagged" if ln.flag else ""
+        out.append(f"  {i:<3d} {ln.normal_angle_deg:9.3f} {ln.offset_px:11.3f} {ln.offset_sigma_px:6.3f}"
+                   f" {ln.width_px:11.2f} {ln.depth:7.3f} {ln.snr:6.0f}{mark}")
+    if det.warnings:
+        out.append("")
+        out.extend(f"warning: {w}" for w in det.warnings)
     return "\n".join(out)

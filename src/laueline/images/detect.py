@@ -586,6 +586,11 @@ def _flag_lines(lines, image, valid, disk, warnings):
             fx = cx + ln.offset_px * ca - sv * sa
             fy = cy + ln.offset_px * sa + sv * ca
             ok = (fx >= 2) & (fx <= cols - 3) & (fy >= 2) & (fy <= rows - 3)
+            # line and both flanks must lie outside the disk (a line near the rim
+            # has one flank inside it)
+            for side in (-1, 1):
+                ok &= np.hypot(fx + side * shift * ca - cx, fy + side * shift * sa - cy) > \
+                    disk.radius_px + 3
             if ok.sum() < 10:
                 continue
             for dx, dy in ((0, 0), (shift * ca, shift * sa), (-shift * ca, -shift * sa)):
