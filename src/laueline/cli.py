@@ -8,6 +8,7 @@ status 2; a fit that runs but does not converge exits with status 3.
 from __future__ import annotations
 
 import argparse
+import re
 import sys
 
 from .errors import FitError, InputError
@@ -17,7 +18,11 @@ EXIT_NOT_CONVERGED = 3
 
 
 class _Parser(argparse.ArgumentParser):
-    """Argument errors as a single line, exit status 2."""
+    """Argument errors as a single line, exit status 2; -5e-4 is a number, not an option."""
+
+    def __init__(self, *args, **kwargs):
+        super().__init__(*args, **kwargs)
+        self._negative_number_matcher = re.compile(r"^-(\d+\.?\d*|\.\d+)([eE][-+]?\d+)?$")
 
     def error(self, message):
         sys.stderr.write(f"laueline: error: {message} (see '{self.prog} --help')\n")
@@ -115,12 +120,17 @@ def _stiffness_and_axes(args, crystal):
 
 def _cmd_refine(args):
     from . import report
+
+    args.disk_mrad_given = args.disk_mrad is not None
+    if args.disk_mrad is None:
+        args.disk_mrad = 6.0
     from .points import read_points
     from .refine import calibration_from_document, refine
 
     report.check_outputs([args.json], args.force, args.figure)
     crystal = _load_crystal(args)
-    points = read_points(args.points, y_up=args.y_up)
+    if (args.points is None) == (args.image is None):
+        raise InputError("give either --points CSV or --image PATTERN")
     calibration = None
     if args.calibration:
         calibration = calibration_from_document(
@@ -128,24 +138,40 @@ def _cmd_refine(args):
     stiffness, axes = _stiffness_and_axes(args, crystal)
     flip = -1.0 if args.y_up else 1.0
     center = None if args.center_px is None else (args.center_px[0], flip * args.center_px[1])
-    result = refine(
-        crystal, args.zone, points, kv=args.kv, model=args.model, x_axis=args.x_axis,
-        free=args.free or (), hold=args.hold or (), unique_axis=args.unique_axis,
-        center_px=center, scale_px_per_mrad=args.scale_px_per_mrad,
-        rotation_deg=args.rotation_deg, mirror=args.mirror, calibration=calibration,
-        robust=args.robust, disk_mrad=args.disk_mrad, min_strength=args.min_strength,
-        min_angle_deg=args.min_angle_deg, match_mrad=args.match_mrad,
-        inner_potential=args.inner_potential, stiffness=stiffness, sample_axes=axes)
+    common = dict(kv=args.kv, model=args.model, x_axis=args.x_axis, free=args.free or (),
+                  hold=args.hold or (), unique_axis=args.unique_axis, center_px=center,
+                  scale_px_per_mrad=args.scale_px_per_mrad, rotation_deg=args.rotation_deg,
+                  mirror=args.mirror, calibration=calibration, robust=args.robust,
+                  min_strength=args.min_strength, inner_potential=args.inner_potential,
+                  stiffness=stiffness, sample_axes=axes)
+    image = None
+    if args.image:
+        from .images.detect import detect_lines
+        from .images.io import read_image
+        from .refine import refine_image
+
+        if args.y_up:
+            raise InputError("--y-up applies to point files; images are read row by row")
+        image, saturation = read_image(args.image)
+        detection = detect_lines(image, disk=args.disk_px, saturation=saturation,
+                                 min_angle_deg=args.min_angle_deg, source=args.image)
+        result = refine_image(crystal, args.zone, detection,
+                              disk_mrad=args.disk_mrad if args.disk_mrad_given else None,
+                              **common)
+    else:
+        points = read_points(args.points, y_up=args.y_up)
+        result = refine(crystal, args.zone, points, disk_mrad=args.disk_mrad,
+                        min_angle_deg=args.min_angle_deg, match_mrad=args.match_mrad, **common)
     print(report.fit_text(result, y_up=args.y_up))
     if args.json:
         report.write_json(report.fit_document(result, y_up=args.y_up,
                                               calibration_source=args.calibration,
-                                              points_source=args.points),
+                                              points_source=args.points or args.image),
                           args.json, args.force)
     if args.figure:
         from .plot import fit_figure, save_figure
 
-        save_figure(fit_figure(result, crystal), args.figure)
+        save_figure(fit_figure(result, crystal, image=image), args.figure)
     written = [p for p in (args.json, args.figure) if p]
     if written:
         print("\nwrote " + ", ".join(str(p) for p in written))
@@ -235,6 +261,71 @@ def _cmd_survey(args):
     return 0
 
 
+def _truth_path(out):
+    from pathlib import Path
+
+    out = Path(out)
+    return out.with_name(out.stem + ".truth.json")
+
+
+def _cmd_render(args):
+    from . import report
+    from .images.io import IMAGE_SUFFIXES, write_image
+    from .images.render import RenderSettings, render_pattern
+
+    from pathlib import Path
+
+    if Path(args.out).suffix.lower() not in IMAGE_SUFFIXES:
+        raise InputError(f"--out must end in one of {', '.join(IMAGE_SUFFIXES)}")
+    truth_path = _truth_path(args.out)
+    report.check_outputs([args.out, truth_path], args.force)
+    crystal = _load_crystal(args)
+    if args.cell is not None:
+        crystal = crystal.with_cell(*args.cell)
+    settings = RenderSettings(
+        shape=(args.size[1], args.size[0]), center_px=args.center_px,
+        scale_px_per_mrad=args.scale_px_per_mrad, rotation_deg=args.rotation_deg,
+        mirror=args.mirror, line_width_mrad=args.line_width_mrad, line_depth=args.line_depth,
+        min_strength=args.min_strength, background_tilt=args.background_tilt,
+        background_angle_deg=args.background_angle_deg, blur_px=args.blur_px,
+        dose=args.dose, seed=args.seed)
+    image, truth = render_pattern(crystal, args.zone, args.kv, args.disk_mrad, settings,
+                                  strain=args.strain, x_axis=args.x_axis, gmax=args.gmax,
+                                  inner_potential=args.inner_potential)
+    truth["image"] = str(args.out)
+    write_image(args.out, image, force=args.force)
+    report.write_json(truth, truth_path, args.force)
+    print(f"rendered {crystal.name} [{' '.join(map(str, truth['zone']))}], {args.kv:g} kV: "
+          f"{len(truth['lines'])} lines, {len(truth['crossings'])} crossings, "
+          f"{image.shape[1]} x {image.shape[0]} px")
+    print(f"wrote {args.out}, {truth_path}")
+    return 0
+
+
+def _cmd_detect(args):
+    from . import report
+    from .images.detect import detect_lines
+    from .images.io import read_image
+
+    report.check_outputs([args.json], args.force, args.figure)
+    image, saturation = read_image(args.pattern)
+    det = detect_lines(image, disk=args.disk_px, saturation=saturation,
+                       min_angle_deg=args.min_angle_deg, source=args.pattern)
+    if len(det.good_lines) < 2:
+        raise InputError(f"{args.pattern}: fewer than two lines found in the disk")
+    print(report.detection_text(det))
+    if args.json:
+        report.write_json(report.detection_document(det), args.json, args.force)
+    if args.figure:
+        from .plot import detection_figure, save_figure
+
+        save_figure(detection_figure(det, image), args.figure)
+    written = [p for p in (args.json, args.figure) if p]
+    if written:
+        print("\nwrote " + ", ".join(str(p) for p in written))
+    return 0
+
+
 def _cmd_structures(args):
     from .crystal import bundled_structures, read_crystal
 
@@ -281,9 +372,13 @@ def build_parser():
                        description="Fit measured HOLZ line crossings: cell or strain, detector "
                                    "and optionally the voltage, with uncertainties.")
     _add_crystal_options(p)
-    p.add_argument("--points", required=True, metavar="CSV",
+    p.add_argument("--points", metavar="CSV",
                    help="crossings in pixels: columns x, y (X, Y), optional h1 k1 l1 h2 k2 l2 "
                         "and sigma_px")
+    p.add_argument("--image", metavar="PATTERN",
+                   help="a pattern image (TIFF, PNG, .npy): detect its lines and fit them")
+    p.add_argument("--disk-px", nargs=3, type=float, metavar=("X", "Y", "R"),
+                   help="with --image: the disk centre and radius in px instead of finding it")
     p.add_argument("--y-up", action="store_true",
                    help="the points' y grows upward (default: down, as image rows)")
     from .refine import MODELS
@@ -310,10 +405,11 @@ def build_parser():
                         "centre, rotation and mirror")
     p.add_argument("--robust", action="store_true",
                    help="down-weight outliers and list those rejected")
-    p.add_argument("--disk-mrad", type=float, default=6.0,
-                   help="disk radius in mrad for predicting and checking crossings (6)")
+    p.add_argument("--disk-mrad", type=float, default=None,
+                   help="disk radius in mrad for predicting and checking crossings (6; with "
+                        "--image, from the detected radius and the scale)")
     p.add_argument("--min-strength", type=float, default=0.1,
-                   help="strength threshold of candidate lines for unlabelled points (0.1)")
+                   help="strength threshold of candidate lines for matching (0.1)")
     p.add_argument("--min-angle-deg", type=float, default=5.0,
                    help="smallest crossing angle of candidates in degrees (5)")
     p.add_argument("--match-mrad", type=float, default=0.25,
@@ -391,6 +487,57 @@ def build_parser():
                    help="crystal direction of the sample z axis")
     _add_output_options(p)
     p.set_defaults(run=_cmd_survey)
+
+    p = sub.add_parser("render", help="render a synthetic pattern with a truth file",
+                       description="Render a synthetic central disk with HOLZ lines on their "
+                                   "exact loci; a truth JSON beside the image records every "
+                                   "parameter and the true crossings in pixels.")
+    _add_crystal_options(p)
+    p.add_argument("--disk-mrad", type=float, default=6.0, help="disk radius in mrad (6)")
+    p.add_argument("--gmax", type=float, default=4.0, help="largest |g| in 1/A (4)")
+    state = p.add_mutually_exclusive_group()
+    state.add_argument("--strain", nargs=6, type=float,
+                       metavar=("EXX", "EYY", "EZZ", "EYZ", "EXZ", "EXY"))
+    state.add_argument("--cell", nargs=6, type=float,
+                       metavar=("A", "B", "C", "ALPHA", "BETA", "GAMMA"))
+    p.add_argument("--out", required=True, metavar="PATTERN",
+                   help="image file (.tif, .png, .npy); the truth goes to PATTERN.truth.json")
+    p.add_argument("--size", nargs=2, type=int, default=[512, 512], metavar=("W", "H"),
+                   help="image width and height in px (512 512)")
+    p.add_argument("--scale-px-per-mrad", type=float,
+                   help="camera scale (default: the disk fills 84 %% of the smaller side)")
+    p.add_argument("--center-px", nargs=2, type=float, metavar=("X", "Y"),
+                   help="pattern centre (default: the image centre)")
+    p.add_argument("--rotation-deg", type=float, default=0.0, help="detector rotation (0)")
+    p.add_argument("--mirror", action="store_true", help="mirror the disk frame")
+    p.add_argument("--line-width-mrad", type=float, default=0.06,
+                   help="full width at half depth of a line (0.06)")
+    p.add_argument("--line-depth", type=float, default=0.6,
+                   help="relative depth of a line of strength 1 (0.6)")
+    p.add_argument("--min-strength", type=float, default=0.1,
+                   help="weaker lines are not drawn (0.1)")
+    p.add_argument("--background-tilt", type=float, default=0.2,
+                   help="relative background change across the disk (0.2)")
+    p.add_argument("--background-angle-deg", type=float, default=30.0,
+                   help="direction of that gradient (30)")
+    p.add_argument("--blur-px", type=float, default=0.7,
+                   help="detector blur, Gaussian sigma in px (0.7)")
+    p.add_argument("--dose", type=float, default=2000.0,
+                   help="counts per pixel on the disk; 0 for no noise (2000)")
+    p.add_argument("--seed", type=int, default=0, help="noise seed (0)")
+    p.add_argument("--force", action="store_true", help="overwrite existing files")
+    p.set_defaults(run=_cmd_render)
+
+    p = sub.add_parser("detect", help="find the disk, its lines and crossings in an image",
+                       description="Find the central disk and its HOLZ lines to sub-pixel "
+                                   "precision, with their crossings and uncertainties.")
+    p.add_argument("pattern", help="image file (TIFF, PNG or .npy)")
+    p.add_argument("--disk-px", nargs=3, type=float, metavar=("X", "Y", "R"),
+                   help="disk centre and radius in px instead of finding it")
+    p.add_argument("--min-angle-deg", type=float, default=5.0,
+                   help="smallest angle between crossing lines (5)")
+    _add_output_options(p)
+    p.set_defaults(run=_cmd_detect)
 
     p = sub.add_parser("structures", help="list the bundled structures")
     p.set_defaults(run=_cmd_structures)

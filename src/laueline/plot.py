@@ -46,7 +46,8 @@ def _halo():
     return [patheffects.withStroke(linewidth=2.2, foreground="white")]
 
 
-def draw_disk_lines(ax, pattern, *, n_labels=10, show_crossings=True, to_plot=None):
+def draw_disk_lines(ax, pattern, *, n_labels=10, show_crossings=True, to_plot=None,
+                    fill=True):
     """Draw the central disk with the exact loci on ``ax``.
 
     Parameters
@@ -60,8 +61,8 @@ def draw_disk_lines(ax, pattern, *, n_labels=10, show_crossings=True, to_plot=No
     convert = to_plot or (lambda xy: xy)
     angle = np.linspace(0, 2 * np.pi, 361)
     rim = pattern.disk_mrad * np.stack([np.cos(angle), np.sin(angle)], axis=1)
-    ax.add_patch(Polygon(convert(rim), closed=True, facecolor=_DISK_FILL,
-                         edgecolor=_DISK_EDGE, linewidth=1.0, zorder=0))
+    ax.add_patch(Polygon(convert(rim), closed=True, facecolor=_DISK_FILL if fill else "none",
+                         edgecolor=_DISK_EDGE, linewidth=1.0, zorder=0 if fill else 3))
     order = np.argsort(pattern.strength)  # weak first, strong drawn on top
     for i in order:
         s = float(min(pattern.strength[i], 1.0))
@@ -167,24 +168,45 @@ def fit_figure(result, crystal, *, image=None, magnify=None):
     ax = fig.subplots()
     if image is not None:
         ax.imshow(image, cmap="gray", origin="upper", interpolation="nearest")
-    draw_disk_lines(ax, pattern, n_labels=8, show_crossings=False, to_plot=det.to_pixels)
-    xy = np.array([[p["x_px"], p["y_px"]] for p in result.points])
-    res = np.array([p["residual_px"] for p in result.points], dtype=float)
-    used = np.array([p["used"] for p in result.points])
+    draw_disk_lines(ax, pattern, n_labels=8, show_crossings=False, to_plot=det.to_pixels,
+                    fill=image is None)
     radius_px = result.disk_mrad * det.scale_px_per_mrad
     if magnify is None:
         rms = result.rms_px if np.isfinite(result.rms_px) and result.rms_px > 0 else 1.0
         magnify = _nice_factor(0.08 * radius_px / rms)
-    ok = used & np.all(np.isfinite(res), axis=1)
-    fitted = xy - res
+    if result.lines is not None:
+        # image fit: residuals of the points on each detected line, along its normal
+        pts, vec, left = [], [], []
+        for ln in result.lines:
+            if "points_px" not in ln:
+                continue
+            a = np.radians(ln["normal_angle_deg"])
+            n = np.array([np.cos(a), np.sin(a)])
+            for p, r in zip(ln["points_px"], ln["point_residuals_px"]):
+                (pts if ln["used"] else left).append(p)
+                if ln["used"]:
+                    vec.append(-r * n)
+        xy, res = np.array(pts).reshape(-1, 2), np.array(vec).reshape(-1, 2)
+        fitted, ok = xy, np.all(np.isfinite(res), axis=1)
+        used = np.ones(len(xy), bool)
+        label = "detected line points"
+        left = np.array(left).reshape(-1, 2)
+    else:
+        xy = np.array([[p["x_px"], p["y_px"]] for p in result.points])
+        res = np.array([p["residual_px"] for p in result.points], dtype=float)
+        used = np.array([p["used"] for p in result.points])
+        ok = used & np.all(np.isfinite(res), axis=1)
+        fitted = xy - res
+        label = "measured, used"
+        left = xy[~used]
     ax.quiver(fitted[ok, 0], fitted[ok, 1], magnify * res[ok, 0], magnify * res[ok, 1],
               angles="xy", scale_units="xy", scale=1, color=_CROSSING, width=0.004,
               zorder=5)
     ax.plot(xy[used, 0], xy[used, 1], linestyle="none", marker="o", markersize=3.5,
             markerfacecolor="#2a9d8f", markeredgecolor="white", markeredgewidth=0.4,
-            zorder=6, label="measured, used")
-    if np.any(~used):
-        ax.plot(xy[~used, 0], xy[~used, 1], linestyle="none", marker="x", markersize=5,
+            zorder=6, label=label)
+    if len(left):
+        ax.plot(left[:, 0], left[:, 1], linestyle="none", marker="x", markersize=5,
                 color="#6c6c6c", zorder=6, label="left out")
     c = np.asarray(det.center_px)
     pad = 1.08 * radius_px
@@ -195,8 +217,9 @@ def fit_figure(result, crystal, *, image=None, magnify=None):
     ax.set_ylabel("y (px, down)")
     zone = "".join(str(v) for v in result.zone) if all(0 <= v < 10 for v in result.zone) \
         else " ".join(str(v) for v in result.zone)
+    what = "points" if result.lines is None else "lines"
     ax.set_title(f"{result.structure['name']} [{zone}], model {result.model}: "
-                 f"{result.n_used} points, rms {result.rms_px:.3g} px\n"
+                 f"{result.n_used} {what}, rms {result.rms_px:.3g} px\n"
                  f"residuals drawn {magnify:g} x", fontsize=10)
     ax.legend(loc="lower right", fontsize=8, framealpha=0.9)
     return fig

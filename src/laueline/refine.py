@@ -1157,16 +1157,24 @@ def refine_image(crystal, zone, detection, *, kv=200.0, model="strain", x_axis=N
     v = setup.values(x)
     full = _LineObs(line_hkl, points_all, whiten_all)
     dist = np.full(len(good), np.nan)
+    offsets = np.full((len(good), points_all.shape[1]), np.nan)
     if np.any(used):
         dist[used] = full.subset(used).distances_px(setup, v)
+        offsets[used] = full.subset(used)._distances(setup, [v])[0]
     lines = []
     index_of = {i: k for k, i in enumerate(good)}
     for i, ln in enumerate(detection.lines):
         k = index_of.get(i)
-        lines.append({"index": i, "hkl": line_hkl[k].tolist() if k is not None else [0, 0, 0],
-                      "residual_px": float(dist[k]) if k is not None else None,
-                      "used": bool(k is not None and used[k]),
-                      "note": ln.flag if k is None else reasons[k]})
+        entry = {"index": i, "hkl": line_hkl[k].tolist() if k is not None else [0, 0, 0],
+                 "residual_px": float(dist[k]) if k is not None else None,
+                 "used": bool(k is not None and used[k]),
+                 "note": ln.flag if k is None else reasons[k],
+                 "normal_angle_deg": ln.normal_angle_deg}
+        if k is not None:
+            # signed distances of the line's sample points from the fitted locus
+            entry["points_px"] = points_all[k].tolist()
+            entry["point_residuals_px"] = offsets[k].tolist()
+        lines.append(entry)
     # the detected crossings of assigned lines, against the fitted ones
     label = {i: line_hkl[k] for k, i in enumerate(good) if used[k]}
     cx_rows = [(xy, label[a], label[b]) for (a, b), xy in

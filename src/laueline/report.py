@@ -305,6 +305,8 @@ def fit_document(result, *, y_up=False, calibration_source=None, points_source=N
         "rms_px": result.rms_px, "n_points": result.n_points, "n_used": result.n_used,
         "chi2": result.chi2, "dof": result.dof, "converged": result.converged,
         "calibration": calibration_source, "points_file": points_source,
+        "observations": "crossings" if result.lines is None else "lines",
+        "lines": result.lines,
         "warnings": result.warnings,
         "cautions": list(CAUTIONS),
     }
@@ -346,9 +348,10 @@ def fit_text(result, *, y_up=False):
     out = []
     zone = " ".join(str(v) for v in result.zone)
     status = "" if result.converged else "   NOT CONVERGED"
+    kind = "points" if result.lines is None else "detected lines"
     out.append(f"fit        {result.structure['name']} [{zone}], model {result.model}"
                + (f" (unique axis {result.unique_axis})" if result.unique_axis else "")
-               + f": {result.n_used} of {result.n_points} points used, "
+               + f": {result.n_used} of {result.n_points} {kind} used, "
                f"rms {result.rms_px:.3g} px, {result.dof} degrees of freedom{status}")
     out.append("")
     out.append(f"  {'parameter':10} {'value':>16} {'sigma':>11}  unit")
@@ -402,6 +405,13 @@ def fit_text(result, *, y_up=False):
 def _fit_tail(out, result, y_up):
     from .refine import CAUTIONS
 
+    if result.lines is not None:
+        unused = [ln for ln in result.lines if not ln["used"]]
+        out.append("")
+        out.append(f"  lines fitted: {sum(ln['used'] for ln in result.lines)} of "
+                   f"{len(result.lines)} detected")
+        for ln in unused:
+            out.append(f"    line #{ln['index']} left out: {ln['note'] or 'not assigned'}")
     left = [i for i, row in enumerate(result.points) if not row["used"]]
     if left:
         out.append("")
