@@ -326,6 +326,13 @@ def _cmd_detect(args):
     return 0
 
 
+def _cmd_demo(args):
+    from .demo import run_demo
+
+    run_demo(args.out, force=args.force)
+    return 0
+
+
 def _cmd_structures(args):
     from .crystal import bundled_structures, read_crystal
 
@@ -538,6 +545,14 @@ def build_parser():
                    help="smallest angle between crossing lines (5)")
     _add_output_options(p)
     p.set_defaults(run=_cmd_detect)
+
+    p = sub.add_parser("demo", help="run the demonstration on an invented device",
+                       description="Render a reference and a strained pattern of an invented "
+                                   "silicon device, calibrate on the reference, fit the strain "
+                                   "from the image and compare with the truth.")
+    p.add_argument("--out", default="laueline-demo", help="output folder (laueline-demo)")
+    p.add_argument("--force", action="store_true", help="overwrite existing files")
+    p.set_defaults(run=_cmd_demo)
 
     p = sub.add_parser("structures", help="list the bundled structures")
     p.set_defaults(run=_cmd_structures)

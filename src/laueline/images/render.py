@@ -56,6 +56,9 @@ class RenderSettings:
     dose : float
         Mean counts per pixel on the plateau; 0 for a noiseless float image.
     seed : int
+    omit : tuple of (h, k, l)
+        Reflections whose lines are not drawn (as when a line is dynamically
+        extinguished); the truth lists them under ``omitted``.
     """
 
     shape: tuple = (512, 512)
@@ -73,6 +76,7 @@ class RenderSettings:
     blur_px: float = 0.7
     dose: float = 2000.0
     seed: int = 0
+    omit: tuple = ()
 
 
 def render_pattern(crystal, zone, kv=200.0, disk_mrad=6.0, settings=None, *, strain=None,
@@ -129,7 +133,9 @@ def render_pattern(crystal, zone, kv=200.0, disk_mrad=6.0, settings=None, *, str
 
     params = line_parameters(pattern.crystal.g_vectors(pattern.hkl), pattern.frame,
                              pattern.beam.wave_number)
-    for i in range(pattern.n_lines):  # one line at a time keeps memory at one image
+    omitted = {tuple(int(v) for v in h) for h in settings.omit}
+    drawn = np.array([tuple(h) not in omitted for h in pattern.hkl.tolist()], dtype=bool)
+    for i in np.flatnonzero(drawn):  # one line at a time keeps memory at one image
         sub = type(params)(params.g_perp[i:i + 1], params.g_perp_norm[i:i + 1],
                            params.gz[i:i + 1], params.c[i:i + 1])
         d = locus_distances(t_rad[None], sub)[0] * 1e3  # mrad
@@ -159,14 +165,16 @@ def render_pattern(crystal, zone, kv=200.0, disk_mrad=6.0, settings=None, *, str
         "detector": det.as_dict(),
         "disk_radius_px": radius_px,
         "settings": {k: (list(v) if isinstance(v, tuple) else v)
-                     for k, v in asdict(settings).items()},
+                     for k, v in asdict(settings).items() if k != "omit"},
         "lines": [{"hkl": pattern.hkl[i].tolist(), "laue_zone": int(pattern.laue_zone[i]),
                    "strength": float(pattern.strength[i]), "depth": float(depth[i]),
                    "points_px": det.to_pixels(pattern.points_mrad[i]).tolist()}
-                  for i in range(pattern.n_lines)],
+                  for i in np.flatnonzero(drawn)],
+        "omitted": [list(h) for h in sorted(omitted)],
         "crossings": [{"hkl_a": ha[k].tolist(), "hkl_b": hb[k].tolist(),
                        "xy_px": det.to_pixels(pattern.crossing_mrad[k]).tolist(),
                        "angle_deg": float(pattern.crossing_angle_deg[k])}
-                      for k in range(pattern.n_crossings)],
+                      for k in range(pattern.n_crossings)
+                      if drawn[pattern.crossing_lines[k]].all()],
     }
     return image, truth
