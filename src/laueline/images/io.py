@@ -43,7 +43,7 @@ def read_image(path):
         elif suffix == ".png":
             import imageio.v3 as iio
 
-            data = iio.imread(path)
+            data = iio.imread(path, plugin="pillow")
         else:
             data = np.load(path, allow_pickle=False)
     except Exception as exc:  # any decoder failure is a bad file, reported in one line
