@@ -202,3 +202,14 @@ def test_labels_absent_or_parallel(si):
     pts.hkl_b[0] = pts.hkl_a[0]
     with pytest.raises(InputError, match="parallel"):
         refine(si, ZONE, pts, x_axis=(0, 0, 4))
+
+
+def test_unlabelled_noisy_matches_labelled(si):
+    # the same noisy points, with and without labels, give the same fit once
+    # the assignment has settled (0.1 px noise, calibration held)
+    pts = synthetic_points(si, ZONE, strain=E_TRUE, noise_px=0.1, rng=np.random.default_rng(3))
+    bare = type(pts)(pts.xy_px.copy())
+    a = refine(si, ZONE, pts, x_axis=(0, 0, 4), calibration=CAL, mirror=False)
+    b = refine(si, ZONE, bare, x_axis=(0, 0, 4), calibration=CAL, mirror=False)
+    np.testing.assert_allclose(b.values, a.values, rtol=0, atol=1e-9)
+    assert b.assigned and not a.assigned

@@ -232,6 +232,7 @@ class FitResult:
     inner_potential: bool = False
     wave_number: float = float("nan")
     lines: list | None = None
+    assigned: bool = False
 
     def parameter(self, name):
         """(value, sigma) of a refined parameter."""
@@ -342,10 +343,12 @@ def refine(crystal, zone, points, *, kv=200.0, model="strain", x_axis=None, free
 
     rows, rms = _crossing_rows(setup, setup.values(x), xy, hkl_a, hkl_b, used, reasons)
     obs = _CrossingObs(xy, hkl_a, hkl_b, weights).subset(used)
-    return _result(setup, crystal, obs, x, converged, warnings, points.sigma_px is not None,
-                   rows, rms, unique_axis=unique_axis if model in ("tetragonal", "monoclinic")
-                   else None, disk_mrad=disk_mrad, stiffness=stiffness,
-                   sample_axes=sample_axes, inner_potential=inner_potential)
+    result = _result(setup, crystal, obs, x, converged, warnings, points.sigma_px is not None,
+                     rows, rms, unique_axis=unique_axis if model in ("tetragonal", "monoclinic")
+                     else None, disk_mrad=disk_mrad, stiffness=stiffness,
+                     sample_axes=sample_axes, inner_potential=inner_potential)
+    result.assigned = not points.labelled
+    return result
 
 
 def _prepare(crystal, zone, *, kv, model, x_axis, free, hold, unique_axis, center_px,
@@ -715,13 +718,23 @@ def _search_orientation(xy, t_cand, scale, center, rotation, mirror, gate_mrad):
     return sc, m, rot, c, rivals
 
 
-def _match(xy_px, cand_px, gate_px):
-    """Optimal one-to-one assignment within a gate; returns candidate index or -1."""
+def _match(xy_px, cand_px, gate_px, distinct=False, minimum=0):
+    """Optimal one-to-one assignment within a gate; returns candidate index or -1.
+
+    With ``distinct``, only points whose nearest candidate is less than half
+    as far as the next are matched (unless that leaves fewer than ``minimum``
+    points): the unambiguous matches that start the alternation safely.
+    """
     from scipy.optimize import linear_sum_assignment
     from scipy.spatial.distance import cdist
 
     d = cdist(xy_px, cand_px)
-    cost = np.where(d <= gate_px, d, 1e6 + d)
+    if distinct and d.shape[1] > 1:
+        two = np.sort(d, axis=1)[:, :2]
+        clear = (two[:, 0] <= gate_px) & (two[:, 0] < 0.5 * two[:, 1])
+        if 2 * clear.sum() >= max(minimum, 6):
+            d = np.where(clear[:, None], d, np.inf)
+    cost = np.where(d <= gate_px, d, 1e6)
     rows, cols = linear_sum_assignment(cost)
     assigned = np.full(len(xy_px), -1)
     ok = d[rows, cols] <= gate_px
@@ -762,15 +775,16 @@ def _assign_and_fit(setup, xy, weights, center, scale, rotation, mirror, disk_mr
     x = np.zeros(len(setup.free))
     previous = None
     converged = False
-    for _ in range(12):
+    for round_ in range(12):
         v = setup.values(x)
         if previous is not None:
             ha, hb, t_cand = _candidate_crossings(setup, v, disk_mrad, min_strength,
                                                   min_angle_deg)
         cand_px = setup.detector(v).to_pixels(t_cand)
-        assigned = _match(xy, cand_px, gate * v["scale"])
+        assigned = _match(xy, cand_px, gate * v["scale"], distinct=round_ == 0,
+                          minimum=len(setup.free))
         used = assigned >= 0
-        key = tuple(assigned)
+        key = tuple((tuple(ha[a]), tuple(hb[a])) if a >= 0 else None for a in assigned)
         if key == previous:
             break
         previous = key
@@ -781,7 +795,9 @@ def _assign_and_fit(setup, xy, weights, center, scale, rotation, mirror, disk_mr
         full_b = np.zeros((len(xy), 3), dtype=np.int64)
         full_a[used], full_b[used] = ha[assigned[used]], hb[assigned[used]]
         obs = _CrossingObs(xy, full_a, full_b, weights).subset(used)
-        x_new, fit_warnings, converged = _fit(setup, obs, robust)
+        # the first round starts from the reference and may hold wrong matches: a
+        # robust loss keeps them from dragging the fit away
+        x_new, fit_warnings, converged = _fit(setup, obs, robust or round_ == 0)
         setup_v = setup.values(x_new)
         r = obs.distances_px(setup, setup_v)
         # shrink the gate toward the achieved precision, never below 3 px

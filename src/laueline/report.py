@@ -405,6 +405,18 @@ def fit_text(result, *, y_up=False):
 def _fit_tail(out, result, y_up):
     from .refine import CAUTIONS
 
+    if result.assigned and result.lines is None:
+        out.append("")
+        out.append("  assignments (points without labels, matched to predicted crossings)")
+        out.append("       #      x px      y px         line a         line b   residual px")
+        for i, row in enumerate(result.points):
+            if not row["used"]:
+                continue
+            y = -row["y_px"] if y_up else row["y_px"]
+            dx, dy = row["residual_px"]
+            out.append(f"    {i + 1:4d} {row['x_px']:9.2f} {y:9.2f}   "
+                       f"{format_hkl(row['hkl_a']):>12}   {format_hkl(row['hkl_b']):>12}"
+                       f"   {math.hypot(dx, dy):11.3f}")
     if result.lines is not None:
         unused = [ln for ln in result.lines if not ln["used"]]
         out.append("")
