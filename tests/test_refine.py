@@ -206,10 +206,18 @@ def test_labels_absent_or_parallel(si):
 
 def test_unlabelled_noisy_matches_labelled(si):
     # the same noisy points, with and without labels, give the same fit once
-    # the assignment has settled (0.1 px noise, calibration held)
+    # the assignment has settled (0.1 px noise, calibration held).  Where three
+    # lines meet almost at one point a point may take the other crossing; the
+    # report must say so, and the fit moves by a small fraction of a sigma.
     pts = synthetic_points(si, ZONE, strain=E_TRUE, noise_px=0.1, rng=np.random.default_rng(3))
     bare = type(pts)(pts.xy_px.copy())
     a = refine(si, ZONE, pts, x_axis=(0, 0, 4), calibration=CAL, mirror=False)
     b = refine(si, ZONE, bare, x_axis=(0, 0, 4), calibration=CAL, mirror=False)
-    np.testing.assert_allclose(b.values, a.values, rtol=0, atol=1e-9)
+    assert np.all(np.abs(b.values - a.values) < 0.2 * a.sigmas)
     assert b.assigned and not a.assigned
+    differ = [i for i, (pa, pb) in enumerate(zip(a.points, b.points))
+              if {tuple(pa["hkl_a"]), tuple(pa["hkl_b"])} !=
+              {tuple(pb["hkl_a"]), tuple(pb["hkl_b"])}]
+    assert all("ambiguous" in b.points[i]["note"] for i in differ)
+    if differ:
+        assert any("ambiguous" in w for w in b.warnings)

@@ -808,6 +808,29 @@ def _assign_and_fit(setup, xy, weights, center, scale, rotation, mirror, disk_mr
         warnings.append("the assignment of points to crossings did not settle in 12 rounds")
         converged = False
     reasons = ["" if u else "no predicted crossing within the gate" for u in used]
+    # a point near two predicted crossings (lines meeting almost at one point)
+    # could be either: say so where the second is within three residuals
+    v = setup.values(x)
+    cand_px = setup.detector(v).to_pixels(t_cand)
+    fitted = obs.distances_px(setup, v)
+    level = 3 * max(float(np.sqrt(np.mean(fitted ** 2))), 0.05)
+    from scipy.spatial.distance import cdist
+
+    d = cdist(xy, cand_px)
+    ambiguous = 0
+    for i in np.flatnonzero(used):
+        near = np.flatnonzero(d[i] < level)
+        others = [k for k in near if {tuple(ha[k]), tuple(hb[k])} !=
+                  {tuple(full_a[i]), tuple(full_b[i])}]
+        if others:
+            k = others[0]
+            reasons[i] = (f"ambiguous: the crossing of ({' '.join(map(str, ha[k]))}) and "
+                          f"({' '.join(map(str, hb[k]))}) is as near")
+            ambiguous += 1
+    if ambiguous:
+        warnings.append(f"{ambiguous} point(s) lie as near to a second predicted crossing "
+                        "(lines meeting almost at one point); their assignment is ambiguous "
+                        "(see the points table)")
     if robust:
         used_r, reasons_r, x, converged = _reject_outliers(
             setup, _CrossingObs(xy, full_a, full_b, weights).subset(used), x)

@@ -416,7 +416,8 @@ def _fit_tail(out, result, y_up):
             dx, dy = row["residual_px"]
             out.append(f"    {i + 1:4d} {row['x_px']:9.2f} {y:9.2f}   "
                        f"{format_hkl(row['hkl_a']):>12}   {format_hkl(row['hkl_b']):>12}"
-                       f"   {math.hypot(dx, dy):11.3f}")
+                       f"   {math.hypot(dx, dy):11.3f}"
+                       + (f"   {row['note']}" if row["note"] else ""))
     if result.lines is not None:
         unused = [ln for ln in result.lines if not ln["used"]]
         out.append("")
