@@ -35,3 +35,18 @@ def synthetic_points(crystal, zone, *, n=40, kv=200.0, strain=None, detector=DET
 @pytest.fixture(scope="session")
 def si():
     return read_crystal("Si")
+
+
+def run_cli(capsys, *argv):
+    """Run the command line in-process: (exit status, stdout, stderr).
+
+    Argument errors leave through SystemExit; its code is the status.
+    """
+    from laueline.cli import main
+
+    try:
+        code = main([str(a) for a in argv])
+    except SystemExit as exc:
+        code = exc.code
+    out, err = capsys.readouterr()
+    return code, out, err

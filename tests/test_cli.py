@@ -4,23 +4,13 @@ import csv
 import json
 
 import pytest
+from conftest import run_cli
 
-from laueline.cli import main
-
-
-def run(capsys, *argv):
-    """Run the CLI in-process; argument errors exit through SystemExit."""
-    try:
-        code = main([str(a) for a in argv])
-    except SystemExit as exc:
-        code = exc.code
-    out, err = capsys.readouterr()
-    return code, out, err
 
 
 def test_predict_writes_json_csv_and_figure(tmp_path, capsys):
     js, cs, fig = tmp_path / "p.json", tmp_path / "p.csv", tmp_path / "p.png"
-    code, out, err = run(capsys, "predict", "Si", "--zone", 2, 3, 0, "--json", js,
+    code, out, err = run_cli(capsys, "predict", "Si", "--zone", 2, 3, 0, "--json", js,
                          "--csv", cs, "--figure", fig)
     assert code == 0, err
     assert "wavelength" in out and "rings" in out
@@ -47,16 +37,16 @@ def test_predict_writes_json_csv_and_figure(tmp_path, capsys):
 def test_no_overwrite_without_force(tmp_path, capsys):
     js = tmp_path / "p.json"
     js.write_text("keep me")
-    code, out, err = run(capsys, "predict", "Si", "--zone", 1, 1, 0, "--json", js)
+    code, out, err = run_cli(capsys, "predict", "Si", "--zone", 1, 1, 0, "--json", js)
     assert code == 2 and "--force" in err and js.read_text() == "keep me"
-    code, _, _ = run(capsys, "predict", "Si", "--zone", 1, 1, 0, "--json", js, "--force")
+    code, _, _ = run_cli(capsys, "predict", "Si", "--zone", 1, 1, 0, "--json", js, "--force")
     assert code == 0 and json.loads(js.read_text())["schema"] == "laueline.pattern/1"
 
 
 def test_structures_lists_all(capsys):
     from laueline.crystal import bundled_structures
 
-    code, out, _ = run(capsys, "structures")
+    code, out, _ = run_cli(capsys, "structures")
     assert code == 0
     for name in bundled_structures():
         assert name in out
@@ -99,7 +89,7 @@ def test_bad_input_one_line_exit_2_nothing_written(tmp_path, capsys, args):
     out_json = tmp_path / "out.json"
     if "--json" not in argv:
         argv += ["--json", str(out_json)]
-    code, out, err = run(capsys, "predict", *argv)
+    code, out, err = run_cli(capsys, "predict", *argv)
     assert code == 2
     lines = [ln for ln in err.splitlines() if ln.strip()]
     assert len(lines) == 1 and lines[0].startswith("laueline: error:"), err
@@ -112,7 +102,7 @@ def test_bad_input_one_line_exit_2_nothing_written(tmp_path, capsys, args):
 def crossing_files(tmp_path):
     """Reference (197.3 kV) and strained point files, labelled and not."""
     import numpy as np
-    from conftest import DETECTOR, synthetic_points
+    from conftest import synthetic_points
 
     from laueline import read_crystal
     from laueline.points import write_points
@@ -132,14 +122,14 @@ def crossing_files(tmp_path):
 
 def test_calibration_workflow(tmp_path, capsys, crossing_files):
     cal, fit, fig = tmp_path / "cal.json", tmp_path / "fit.json", tmp_path / "fit.png"
-    code, out, err = run(capsys, "refine", "Si", "--zone", 2, 3, 0, "--kv", 200, "--points",
+    code, out, err = run_cli(capsys, "refine", "Si", "--zone", 2, 3, 0, "--kv", 200, "--points",
                          crossing_files["ref"], "--model", "fixed", "--free", "kv",
                          "--x-axis", 0, 0, 4, "--json", cal)
     assert code == 0, err
     doc = json.loads(cal.read_text())
     assert doc["schema"] == "laueline.fit/1"
     assert doc["kv"] == pytest.approx(197.3, abs=0.02)  # 0.1 px noise, sigma ~ 0.001 kV
-    code, out, err = run(capsys, "refine", "Si", "--zone", 2, 3, 0, "--points",
+    code, out, err = run_cli(capsys, "refine", "Si", "--zone", 2, 3, 0, "--points",
                          crossing_files["strained-bare"], "--calibration", cal,
                          "--x-axis", 0, 0, 4, "--cubic-elastic-GPa", 165.7, 63.9, 79.6,
                          "--json", fit, "--figure", fig)
@@ -176,7 +166,7 @@ def _write(tmp_path, text):
     "",                                                   # empty
 ])
 def test_refine_bad_points_file(tmp_path, capsys, text):
-    code, out, err = run(capsys, "refine", "Si", "--zone", 2, 3, 0, "--points",
+    code, out, err = run_cli(capsys, "refine", "Si", "--zone", 2, 3, 0, "--points",
                          _write(tmp_path, text), "--scale-px-per-mrad", 40)
     assert code == 2
     assert len(err.strip().splitlines()) == 1 and err.startswith("laueline: error:")
@@ -198,7 +188,7 @@ def test_refine_bad_requests(tmp_path, capsys, crossing_files):
         (base + [crossing_files["ref"], "--hold", "foo"], "cannot hold"),
     ]
     for argv, message in cases:
-        code, out, err = run(capsys, *argv)
+        code, out, err = run_cli(capsys, *argv)
         assert code == 2, (argv, err)
         assert len(err.strip().splitlines()) == 1 and message in err, err
 
@@ -214,6 +204,6 @@ def test_refine_not_converged_exits_3(tmp_path, capsys, crossing_files, monkeypa
         return res
 
     monkeypatch.setattr(scipy.optimize, "least_squares", stalled)
-    code, out, err = run(capsys, "refine", "Si", "--zone", 2, 3, 0, "--x-axis", 0, 0, 4,
+    code, out, err = run_cli(capsys, "refine", "Si", "--zone", 2, 3, 0, "--x-axis", 0, 0, 4,
                          "--points", crossing_files["strained"])
     assert code == 3 and "did not converge" in err

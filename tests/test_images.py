@@ -6,9 +6,9 @@ from pathlib import Path
 
 import numpy as np
 import pytest
+from conftest import run_cli
 
 from laueline import read_crystal
-from laueline.cli import main
 from laueline.errors import InputError
 from laueline.images.detect import detect_lines, find_disk
 from laueline.images.io import read_image, write_image
@@ -19,15 +19,6 @@ SI = read_crystal("Si")
 ZONE = (2, 3, 0)
 X_AXIS = (0, 0, 4)
 E_TRUE = np.array([1e-3, -5e-4, 2e-3, 2e-4, -3e-4, 1e-4])
-
-
-def run(capsys, *argv):
-    try:
-        code = main([str(a) for a in argv])
-    except SystemExit as exc:
-        code = exc.code
-    out, err = capsys.readouterr()
-    return code, out, err
 
 
 # -- reading ------------------------------------------------------------------
@@ -322,12 +313,12 @@ def test_lines_against_scikit_image_hough():
 
 def test_cli_render_detect_refine(tmp_path, capsys):
     pattern = tmp_path / "p.tif"
-    code, out, err = run(capsys, "render", "Si", "--zone", 2, 3, 0, "--x-axis", 0, 0, 4,
+    code, out, err = run_cli(capsys, "render", "Si", "--zone", 2, 3, 0, "--x-axis", 0, 0, 4,
                          "--rotation-deg", 17, "--out", pattern, "--seed", 1)
     assert code == 0, err
     truth = json.loads((tmp_path / "p.truth.json").read_text())
     assert truth["schema"] == "laueline.truth/1"
-    code, out, err = run(capsys, "detect", pattern, "--json", tmp_path / "d.json",
+    code, out, err = run_cli(capsys, "detect", pattern, "--json", tmp_path / "d.json",
                          "--figure", tmp_path / "d.png")
     assert code == 0, err
     doc = json.loads((tmp_path / "d.json").read_text())
@@ -336,7 +327,7 @@ def test_cli_render_detect_refine(tmp_path, capsys):
                 "depth", "width_px", "snr"]:
         assert key in doc["lines"][0]
     assert "sigma_px" in doc["crossings"][0]
-    code, out, err = run(capsys, "refine", "Si", "--zone", 2, 3, 0, "--x-axis", 0, 0, 4,
+    code, out, err = run_cli(capsys, "refine", "Si", "--zone", 2, 3, 0, "--x-axis", 0, 0, 4,
                          "--image", pattern, "--model", "fixed", "--free", "kv",
                          "--disk-mrad", 6, "--no-mirror", "--json", tmp_path / "f.json",
                          "--figure", tmp_path / "f.png")
@@ -357,7 +348,7 @@ def test_cli_bad_images(tmp_path, capsys):
     for name, message in [("bad.tif", "not a readable image"), ("cube.npy", "(4, 64, 64)"),
                           ("flat.npy", "disk"), ("blank.tif", "lines"),
                           ("missing.tif", "no such file")]:
-        code, out, err = run(capsys, "detect", tmp_path / name)
+        code, out, err = run_cli(capsys, "detect", tmp_path / name)
         assert code == 2, (name, err)
         assert len(err.strip().splitlines()) == 1 and message in err, (name, err)
 

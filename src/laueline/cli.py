@@ -52,6 +52,26 @@ def _add_output_options(p, csv=False):
     p.add_argument("--force", action="store_true", help="overwrite existing output files")
 
 
+def _finish(args, document=None, figure=None, extra=()):
+    """Write the JSON document and the figure asked for, then say what was written.
+
+    ``figure`` is a callable returning a matplotlib figure, so that matplotlib
+    is imported only when a figure is asked for.
+    """
+    from . import report
+
+    if args.json and document is not None:
+        report.write_json(document, args.json, args.force)
+    if getattr(args, "figure", None) and figure is not None:
+        from .plot import save_figure
+
+        save_figure(figure(), args.figure)
+    written = [p for p in (getattr(args, "json", None), *extra, getattr(args, "figure", None))
+               if p]
+    if written:
+        print("\nwrote " + ", ".join(str(p) for p in written))
+
+
 def _load_crystal(args):
     from .crystal import read_crystal
 
@@ -86,36 +106,49 @@ def _cmd_predict(args):
                       min_angle_deg=args.min_angle_deg, strain=args.strain,
                       inner_potential=args.inner_potential)
     print(report.pattern_text(pattern))
-    if args.json:
-        report.write_json(report.pattern_document(pattern), args.json, args.force)
     if args.csv:
         (lh, lr), (ch, cr) = report.pattern_tables(pattern)
         report.write_csv(csv_paths[0], lh, lr, args.force)
         report.write_csv(csv_paths[1], ch, cr, args.force)
-    if args.figure:
-        from .plot import pattern_figure, save_figure
 
-        save_figure(pattern_figure(pattern, show_crossings=args.mark_crossings), args.figure)
-    written = [p for p in (args.json, *csv_paths, args.figure) if p]
-    if written:
-        print("\nwrote " + ", ".join(str(p) for p in written))
+    def figure():
+        from .plot import pattern_figure
+
+        return pattern_figure(pattern, show_crossings=args.mark_crossings)
+
+    _finish(args, report.pattern_document(pattern), figure, extra=csv_paths)
     return 0
 
 
+def _add_sample_frame_options(p):
+    p.add_argument("--sample-x", nargs=3, type=float, metavar=("U", "V", "W"),
+                   help="crystal direction of the sample x axis (e.g. a channel direction)")
+    p.add_argument("--sample-z", nargs=3, type=float, metavar=("U", "V", "W"),
+                   help="crystal direction of the sample z axis (e.g. the growth direction)")
+
+
+def _sample_frame(args, crystal):
+    """(axes, description) of the sample frame asked for, or (None, 'reference-cartesian')."""
+    from .strain import sample_axes
+
+    if (args.sample_x is None) != (args.sample_z is None):
+        raise InputError("a sample frame needs both --sample-x and --sample-z")
+    if args.sample_x is None:
+        return None, "reference-cartesian"
+    return (sample_axes(crystal.basis, args.sample_x, args.sample_z),
+            f"sample: x along [{' '.join(f'{v:g}' for v in args.sample_x)}], "
+            f"z along [{' '.join(f'{v:g}' for v in args.sample_z)}]")
+
+
 def _stiffness_and_axes(args, crystal):
-    from .strain import cubic_stiffness, read_stiffness, sample_axes
+    from .strain import cubic_stiffness, read_stiffness
 
     stiffness = None
     if args.cubic_elastic_gpa is not None:
         stiffness = cubic_stiffness(*args.cubic_elastic_gpa)
     elif args.stiffness_gpa is not None:
         stiffness = read_stiffness(args.stiffness_gpa)
-    axes = None
-    if (args.sample_x is None) != (args.sample_z is None):
-        raise InputError("a sample frame needs both --sample-x and --sample-z")
-    if args.sample_x is not None:
-        axes = sample_axes(crystal.basis, args.sample_x, args.sample_z)
-    return stiffness, axes
+    return stiffness, _sample_frame(args, crystal)[0]
 
 
 def _cmd_refine(args):
@@ -163,18 +196,15 @@ def _cmd_refine(args):
         result = refine(crystal, args.zone, points, disk_mrad=args.disk_mrad,
                         min_angle_deg=args.min_angle_deg, match_mrad=args.match_mrad, **common)
     print(report.fit_text(result, y_up=args.y_up))
-    if args.json:
-        report.write_json(report.fit_document(result, y_up=args.y_up,
-                                              calibration_source=args.calibration,
-                                              points_source=args.points or args.image),
-                          args.json, args.force)
-    if args.figure:
-        from .plot import fit_figure, save_figure
 
-        save_figure(fit_figure(result, crystal, image=image), args.figure)
-    written = [p for p in (args.json, args.figure) if p]
-    if written:
-        print("\nwrote " + ", ".join(str(p) for p in written))
+    def figure():
+        from .plot import fit_figure
+
+        return fit_figure(result, crystal, image=image)
+
+    _finish(args, report.fit_document(result, y_up=args.y_up,
+                                      calibration_source=args.calibration,
+                                      points_source=args.points or args.image), figure)
     if not result.converged:
         sys.stderr.write("laueline: the fit did not converge; see the warnings\n")
         return EXIT_NOT_CONVERGED
@@ -214,50 +244,39 @@ def _cmd_thickness(args):
         result.profile = detection
         result.warnings = detection.warnings + result.warnings
     print(report.thickness_text(result))
-    if args.json:
-        report.write_json(report.thickness_document(
-            result, crystal.summary() if crystal is not None else None), args.json, args.force)
-    if args.figure:
-        from .plot import save_figure, thickness_figure
 
-        save_figure(thickness_figure(result), args.figure)
-    written = [p for p in (args.json, args.figure) if p]
-    if written:
-        print("\nwrote " + ", ".join(str(p) for p in written))
+    def figure():
+        from .plot import thickness_figure
+
+        return thickness_figure(result)
+
+    _finish(args, report.thickness_document(
+        result, crystal.summary() if crystal is not None else None), figure)
     return 0
 
 
 def _cmd_survey(args):
     from . import report
-    from .strain import sample_axes
     from .survey import survey
 
     report.check_outputs([args.json], args.force, args.figure)
     crystal = _load_crystal(args)
     if (args.near is None) != (args.max_tilt_deg is None):
         raise InputError("--near and --max-tilt-deg go together")
-    if (args.sample_x is None) != (args.sample_z is None):
-        raise InputError("a sample frame needs both --sample-x and --sample-z")
-    axes, frame = None, "reference-cartesian"
-    if args.sample_x is not None:
-        axes = sample_axes(crystal.basis, args.sample_x, args.sample_z)
-        frame = (f"sample: x along [{' '.join(f'{v:g}' for v in args.sample_x)}], "
-                 f"z along [{' '.join(f'{v:g}' for v in args.sample_z)}]")
+    axes, frame = _sample_frame(args, crystal)
     result = survey(crystal, kv=args.kv, disk_mrad=args.disk_mrad, max_index=args.max_index,
                     near=args.near, max_tilt_deg=args.max_tilt_deg, gmax=args.gmax,
                     min_strength=args.min_strength, min_angle_deg=args.min_angle_deg,
                     sigma_mrad=args.sigma_mrad, component=args.component, axes=axes,
                     frame_description=frame, progress=True)
     print(report.survey_text(result, top=args.top))
-    if args.json:
-        report.write_json(report.survey_document(result), args.json, args.force)
-    if args.figure:
-        from .plot import save_figure, survey_figure
 
-        save_figure(survey_figure(result, crystal), args.figure)
-    written = [p for p in (args.json, args.figure) if p]
-    if written:
-        print("\nwrote " + ", ".join(str(p) for p in written))
+    def figure():
+        from .plot import survey_figure
+
+        return survey_figure(result, crystal)
+
+    _finish(args, report.survey_document(result), figure)
     return 0
 
 
@@ -314,15 +333,13 @@ def _cmd_detect(args):
     if len(det.good_lines) < 2:
         raise InputError(f"{args.pattern}: fewer than two lines found in the disk")
     print(report.detection_text(det))
-    if args.json:
-        report.write_json(report.detection_document(det), args.json, args.force)
-    if args.figure:
-        from .plot import detection_figure, save_figure
 
-        save_figure(detection_figure(det, image), args.figure)
-    written = [p for p in (args.json, args.figure) if p]
-    if written:
-        print("\nwrote " + ", ".join(str(p) for p in written))
+    def figure():
+        from .plot import detection_figure
+
+        return detection_figure(det, image)
+
+    _finish(args, report.detection_document(det), figure)
     return 0
 
 
@@ -427,10 +444,7 @@ def build_parser():
                          help="cubic elastic constants in GPa, for the stress")
     elastic.add_argument("--stiffness-GPa", dest="stiffness_gpa", metavar="FILE",
                          help="6x6 Voigt stiffness in GPa (reference Cartesian frame)")
-    p.add_argument("--sample-x", nargs=3, type=float, metavar=("U", "V", "W"),
-                   help="crystal direction of the sample x axis (e.g. a channel direction)")
-    p.add_argument("--sample-z", nargs=3, type=float, metavar=("U", "V", "W"),
-                   help="crystal direction of the sample z axis (e.g. the growth direction)")
+    _add_sample_frame_options(p)
     _add_output_options(p)
     p.set_defaults(run=_cmd_refine)
 
@@ -488,10 +502,7 @@ def build_parser():
     p.add_argument("--top", type=int, default=15, help="rows printed (15)")
     p.add_argument("--b-iso", type=float, metavar="B",
                    help="one isotropic B in A^2 for all atoms")
-    p.add_argument("--sample-x", nargs=3, type=float, metavar=("U", "V", "W"),
-                   help="crystal direction of the sample x axis")
-    p.add_argument("--sample-z", nargs=3, type=float, metavar=("U", "V", "W"),
-                   help="crystal direction of the sample z axis")
+    _add_sample_frame_options(p)
     _add_output_options(p)
     p.set_defaults(run=_cmd_survey)
 

@@ -451,7 +451,6 @@ def read_crystal(source, *, name=None):
 
 
 def _crystal_from_small(small, name, label):
-    import gemmi
 
     notes = []
     cell = small.cell

@@ -89,8 +89,8 @@ def read_points(path, *, y_up=False):
     if len(set(lower)) != len(lower):
         raise InputError(f"{path}: repeated column names in the header")
     known = {"x", "y", "sigma_px", *_LABELS}
-    extra = [h for i, h in enumerate(header)
-             if h.lower() not in known and not (h.lower() in _IGNORED)]
+    extra = [h for h in header
+             if h.lower() not in known and h.lower() not in _IGNORED]
     if extra:
         raise InputError(f"{path}: unknown column(s) {', '.join(extra)}; allowed are x, y, "
                          "h1 k1 l1 h2 k2 l2, sigma_px and an identifier column")

@@ -10,8 +10,6 @@
    truth crossings) as the baseline.
 """
 
-import statistics
-import time
 
 import numpy as np
 
@@ -20,15 +18,8 @@ from laueline.images.detect import detect_lines
 from laueline.images.render import RenderSettings, render_pattern
 from laueline.points import Points
 from laueline.refine import refine, refine_image
+from timing import median_time  # noqa: E402
 
-
-def median_time(fn, repeat):
-    times = []
-    for _ in range(repeat):
-        t0 = time.perf_counter()
-        fn()
-        times.append(time.perf_counter() - t0)
-    return statistics.median(times)
 
 
 def main():

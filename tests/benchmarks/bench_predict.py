@@ -9,25 +9,16 @@
 3. ``laueline predict Si --zone 2 3 0 --json out.json`` as a whole process.
 """
 
-import statistics
 import subprocess
 import sys
 import tempfile
-import time
 from pathlib import Path
 
 import numpy as np
 
 from laueline import predict, read_crystal
+from timing import median_time  # noqa: E402
 
-
-def median_time(fn, repeat):
-    times = []
-    for _ in range(repeat):
-        t0 = time.perf_counter()
-        fn()
-        times.append(time.perf_counter() - t0)
-    return statistics.median(times)
 
 
 def brute_force(crystal, pattern, n_scan=200, tol_mrad=1e-4):

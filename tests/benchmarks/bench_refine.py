@@ -11,9 +11,7 @@
    the full strain model, Monte-Carlo scatter against the Jacobian prediction.
 """
 
-import statistics
 import sys
-import time
 from pathlib import Path
 
 import numpy as np
@@ -23,19 +21,12 @@ from conftest import DETECTOR, synthetic_points  # noqa: E402
 
 from laueline import read_crystal  # noqa: E402
 from laueline.refine import refine  # noqa: E402
+from timing import median_time  # noqa: E402
 
 ZONE = (2, 3, 0)
 E = np.array([2e-3, -1.5e-3, 1e-3, 5e-4, -7e-4, 3e-4])
 CAL = (200.0, DETECTOR)
 
-
-def median_time(fn, repeat):
-    times = []
-    for _ in range(repeat):
-        t0 = time.perf_counter()
-        fn()
-        times.append(time.perf_counter() - t0)
-    return statistics.median(times)
 
 
 def baseline_fit(si, pts):

@@ -7,20 +7,11 @@ Survey of all symmetry-distinct axes of Si at 200 kV, 6 mrad disk, for
 of predicting the same axes without the precision analysis.
 """
 
-import statistics
-import time
 
 from laueline import predict, read_crystal
 from laueline.survey import candidate_axes, survey
+from timing import median_time  # noqa: E402
 
-
-def median_time(fn, repeat):
-    times = []
-    for _ in range(repeat):
-        t0 = time.perf_counter()
-        fn()
-        times.append(time.perf_counter() - t0)
-    return statistics.median(times)
 
 
 def main():

@@ -7,9 +7,7 @@ thickness fit, median of 21, against a plain scipy.signal.find_peaks pass
 over the same profile as the simplest baseline.
 """
 
-import statistics
 import sys
-import time
 from pathlib import Path
 
 import numpy as np
@@ -19,15 +17,8 @@ sys.path.insert(0, str(Path(__file__).resolve().parents[1]))
 from test_thickness import D_SI220, KV, synthetic_profile  # noqa: E402
 
 from laueline.thickness import detect_profile, thickness_from_fringes  # noqa: E402
+from timing import median_time  # noqa: E402
 
-
-def median_time(fn, repeat):
-    times = []
-    for _ in range(repeat):
-        t0 = time.perf_counter()
-        fn()
-        times.append(time.perf_counter() - t0)
-    return statistics.median(times)
 
 
 def main():
