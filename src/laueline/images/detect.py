@@ -356,7 +356,7 @@ def _hough_candidates(ridge, interior, disk, max_lines):
     from skimage.feature import peak_local_max
     from skimage.transform import hough_line
 
-    theta = np.linspace(-np.pi / 2, np.pi / 2, 360, endpoint=False)  # 0.5 deg bins
+    theta = np.linspace(-np.pi / 2, np.pi / 2, 720, endpoint=False)  # 0.25 deg bins
     acc, angles, dists = hough_line(ridge, theta=theta)
     p = ridge.sum() / max(interior.sum(), 1)
     cx, cy = disk.center_px
@@ -366,7 +366,7 @@ def _hough_candidates(ridge, interior, disk, max_lines):
     expected = p * chord
     z = (acc - expected) / np.sqrt(expected + 1.0)
     z[chord < 20] = 0
-    peaks = peak_local_max(z, min_distance=3, threshold_abs=6.0, num_peaks=max_lines,
+    peaks = peak_local_max(z, min_distance=4, threshold_abs=6.0, num_peaks=max_lines,
                            exclude_border=False)
     out = []
     for i, j in peaks:
