@@ -863,8 +863,13 @@ def _crossing_rows(setup, v, xy, hkl_a, hkl_b, used, reasons):
 
 
 def _result(setup, crystal, obs, x, converged, warnings, sigma_given, rows, rms, *,
-            unique_axis, disk_mrad, stiffness, sample_axes, inner_potential, lines=None):
-    """Statistics, strain and stress of a finished fit on the used observations ``obs``."""
+            unique_axis, disk_mrad, stiffness, sample_axes, inner_potential, lines=None,
+            inflate=False):
+    """Statistics, strain and stress of a finished fit on the used observations ``obs``.
+
+    With ``inflate``, stated uncertainties are scaled up by sqrt(chi2 / dof)
+    when the scatter exceeds them (never down).
+    """
     p = len(setup.free)
     v = setup.values(x)
 
@@ -889,6 +894,8 @@ def _result(setup, crystal, obs, x, converged, warnings, sigma_given, rows, rms,
         if not sigma_given:
             s2 = chi2 / dof if dof > 0 else float("nan")
             cov_int = cov_int * s2
+        elif inflate and dof > 0 and chi2 > dof:
+            cov_int = cov_int * (chi2 / dof)
         units = setup.units
         cov = cov_int * np.outer(units, units)
     else:
@@ -1087,7 +1094,10 @@ def refine_image(crystal, zone, detection, *, kv=200.0, model="strain", x_axis=N
     the fit then minimises the distances of three points on each detected
     line from the exact predicted locus of its reflection, whitened with the
     detection's covariance of the line position.  Fit and assignment
-    alternate until the assignment is stable.  Parameters are those of
+    alternate until the assignment is stable.  When the scatter exceeds what
+    the detection's covariances promise (chi2 / dof > 1: crossings, background
+    and profile shape are modelled only approximately), the uncertainties are
+    scaled up by sqrt(chi2 / dof).  Parameters are those of
     :func:`refine`; the pattern centre starts at the detected disk centre,
     and the disk radius in mrad follows from the detected radius and the
     scale (or, given ``disk_mrad``, the scale from the radius).
@@ -1231,7 +1241,7 @@ def refine_image(crystal, zone, detection, *, kv=200.0, model="strain", x_axis=N
     result = _result(setup, crystal, obs, x, converged, warnings, True, rows, rms,
                      unique_axis=unique_axis if model in ("tetragonal", "monoclinic") else None,
                      disk_mrad=disk_mrad, stiffness=stiffness, sample_axes=sample_axes,
-                     inner_potential=inner_potential, lines=lines)
+                     inner_potential=inner_potential, lines=lines, inflate=True)
     result.n_used = int(used.sum())
     result.n_points = len(good)
     return result
