@@ -48,7 +48,7 @@ from .lines import (crossing_angles_deg, crossing_positions, line_parameters_bat
 from .optics import make_beam, relativistic_factor, wave_number
 from .strain import strain_report
 
-__all__ = ["MODELS", "STRAIN_COMPONENTS", "FitResult", "refine", "refine_image",
+__all__ = ["MODELS", "STRAIN_COMPONENTS", "PARAMETER_UNITS", "FitResult", "refine", "refine_image",
            "calibration_from_document", "fitted_pattern", "CAUTIONS"]
 
 MODELS = ("strain", "fixed", "cubic", "tetragonal", "hexagonal", "orthorhombic",
@@ -68,7 +68,7 @@ _UNITS = {  # internal step sizes: the fit works in these units, offsets from th
     "strain": 1e-3, "length": 1e-3, "angle": 0.05, "kv": 1.0, "center": 1.0,
     "scale": 1e-3, "rotation": 0.05,
 }
-_PHYSICAL_UNIT = {"exx": "", "eyy": "", "ezz": "", "eyz": "", "exz": "", "exy": "",
+PARAMETER_UNITS = {"exx": "", "eyy": "", "ezz": "", "eyz": "", "exz": "", "exy": "",
                   "a": "A", "b": "A", "c": "A", "alpha": "deg", "beta": "deg", "gamma": "deg",
                   "kv": "kV", "center_x": "px", "center_y": "px", "scale": "px/mrad",
                   "rotation": "deg"}
@@ -145,9 +145,6 @@ class _Setup:
         for name, unit, xi in zip(self.free, self.units, x):
             v[name] = self.start[name] + unit * xi
         return v
-
-    def internal(self, values):
-        return np.array([(values[n] - self.start[n]) / u for n, u in zip(self.free, self.units)])
 
     def basis(self, v):
         if self.model == "strain":
@@ -883,7 +880,7 @@ def _result(setup, crystal, obs, x, converged, warnings, sigma_given, rows, rms,
             dead = [setup.free[j] for j in np.flatnonzero(scale == 0)]
             raise InputError(f"degenerate fit: the data do not depend on {', '.join(dead)}; "
                              "hold it")
-        u_, sv, vt = np.linalg.svd(jac / scale, full_matrices=False)
+        _, sv, vt = np.linalg.svd(jac / scale, full_matrices=False)
         condition = float(sv[0] / sv[-1]) if sv[-1] > 0 else float("inf")
         if not np.isfinite(condition) or condition > 1e10:
             worst = vt[-1]

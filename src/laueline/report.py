@@ -248,10 +248,6 @@ def pattern_text(pattern, n_strongest=12):
 
 FIT_SCHEMA = "laueline.fit/1"
 
-_UNIT_OF = {"exx": "", "eyy": "", "ezz": "", "eyz": "", "exz": "", "exy": "",
-            "a": "A", "b": "A", "c": "A", "alpha": "deg", "beta": "deg", "gamma": "deg",
-            "kv": "kV", "center_x": "px", "center_y": "px", "scale": "px/mrad",
-            "rotation": "deg"}
 
 
 def fit_document(result, *, y_up=False, calibration_source=None, points_source=None):
@@ -260,7 +256,7 @@ def fit_document(result, *, y_up=False, calibration_source=None, points_source=N
     With ``y_up`` the point coordinates and residuals are given back in the
     caller's y-up convention, as read.
     """
-    from .refine import CAUTIONS
+    from .refine import CAUTIONS, PARAMETER_UNITS
 
     flip = np.array([1.0, -1.0 if y_up else 1.0])
     st = result.strain
@@ -298,7 +294,7 @@ def fit_document(result, *, y_up=False, calibration_source=None, points_source=N
         "stress_GPa": st.stress_GPa, "stress_sigma_GPa": st.stress_sigma_GPa,
         "parameters": result.parameters,
         "values": result.values, "sigmas": result.sigmas,
-        "units": [_UNIT_OF[n] for n in result.parameters],
+        "units": [PARAMETER_UNITS[n] for n in result.parameters],
         "correlation": result.correlation,
         "condition_number": result.condition_number,
         "points": points,
@@ -320,12 +316,6 @@ def fit_document(result, *, y_up=False, calibration_source=None, points_source=N
     return _clean(doc)
 
 
-def _value_sigma(value, sigma, fmt):
-    if sigma is None:
-        return f"{value:{fmt}} (held)"
-    return f"{value:{fmt}} +- {sigma:.2g}"
-
-
 _COMPONENTS = [("xx", 0, 0), ("yy", 1, 1), ("zz", 2, 2), ("yz", 1, 2), ("xz", 0, 2), ("xy", 0, 1)]
 
 
@@ -345,6 +335,8 @@ def _tensor_rows(label, tensor, sigma, scale=1.0, unit=""):
 
 def fit_text(result, *, y_up=False):
     """Readable report of a fit: parameters, cell, strain, stress, warnings, cautions."""
+    from .refine import PARAMETER_UNITS
+
     out = []
     zone = " ".join(str(v) for v in result.zone)
     status = "" if result.converged else "   NOT CONVERGED"
@@ -359,7 +351,7 @@ def fit_text(result, *, y_up=False):
         if name == "center_y" and y_up:
             value = -value
         fmt = ".4e" if name.startswith("e") else ".5f"
-        out.append(f"  {name:10} {value:16{fmt}} {sigma:11.2e}  {_UNIT_OF[name]}")
+        out.append(f"  {name:10} {value:16{fmt}} {sigma:11.2e}  {PARAMETER_UNITS[name]}")
     det = result.detector
     held = [n for n, present in (("kv", "kv" in result.parameters),
                                  ("scale", "scale" in result.parameters),

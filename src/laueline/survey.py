@@ -181,8 +181,8 @@ def candidate_axes(crystal, max_index, *, near=None, max_tilt_deg=None):
             raise InputError("the --near axis must be three numbers, not all zero")
         if max_tilt_deg is None or not max_tilt_deg > 0:
             raise InputError("--near needs a positive --max-tilt-deg")
-        dirs = uvw @ crystal.basis.T
-        ref = crystal.basis @ near
+        dirs = crystal.direction(uvw)
+        ref = crystal.direction(near)
         cos = dirs @ ref / (np.linalg.norm(dirs, axis=1) * np.linalg.norm(ref))
         tilt = np.degrees(np.arccos(np.clip(cos, -1, 1)))
         keep = tilt <= max_tilt_deg + 1e-9

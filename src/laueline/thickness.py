@@ -404,7 +404,7 @@ def detect_profile(position, intensity):
     lo, hi = i0 + margin, i1 - margin
     inner = smooth[lo:hi + 1]
     prominence = 0.08 * (inner.max() - inner.min())
-    peaks, props = find_peaks(-inner, prominence=prominence)
+    peaks, _ = find_peaks(-inner, prominence=prominence)
     peaks = peaks + lo
     minima, minima_sigma = [], []
     for p in peaks:
