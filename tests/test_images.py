@@ -76,17 +76,22 @@ def test_same_seed_same_image_and_truth():
 
 
 def test_examples_match_the_scenario():
-    # examples/ holds the demo's patterns as rendered by examples/make_demo.py
+    # examples/ holds the demo's patterns as rendered by examples/make_demo.py.
+    # The geometry must agree exactly; the Poisson draws may differ in a few
+    # pixels between NumPy versions (their streams are not guaranteed stable).
     from laueline.demo import SCENARIO, scenario_strain
 
     folder = Path(__file__).resolve().parents[1] / "examples"
     stored, _ = read_image(folder / "channel.tif")
+    stored_truth = json.loads((folder / "channel.truth.json").read_text())
     settings = RenderSettings(rotation_deg=SCENARIO["rotation_deg"],
                               seed=SCENARIO["seeds"]["channel"])
-    image, _ = render_pattern(SI, SCENARIO["zone"], SCENARIO["effective_kv"],
-                              SCENARIO["disk_mrad"], settings, strain=scenario_strain(SI),
-                              x_axis=SCENARIO["x_axis"])
-    np.testing.assert_array_equal(stored, image)
+    image, truth = render_pattern(SI, SCENARIO["zone"], SCENARIO["effective_kv"],
+                                  SCENARIO["disk_mrad"], settings, strain=scenario_strain(SI),
+                                  x_axis=SCENARIO["x_axis"])
+    np.testing.assert_allclose([c["xy_px"] for c in stored_truth["crossings"]],
+                               [c["xy_px"] for c in truth["crossings"]], atol=1e-9)
+    assert np.mean(stored != image) < 0.01
 
 
 # -- detection against the truth ----------------------------------------------------
