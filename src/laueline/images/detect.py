@@ -493,7 +493,7 @@ def _fit_all(flat, valid, starts, exclude_others, disk, noise):
         p, cov, npx = res
         if p[3] < 8 * math.sqrt(max(cov[3, 3], 0)) or cov[0, 0] > 0.25:
             continue  # not significant, or not located to half a pixel
-        if _chord_gap(p, st, disk) > 4.0:
+        if _gap_matrix([p[:3], st[:3]], disk)[0, 1] > 4.0:
             continue  # wandered off to another feature
         fits.append((p, cov, npx))
     return _merge_duplicates(fits, disk)
@@ -523,18 +523,6 @@ def _gap_matrix(params, disk, samples=9):
     s_other = -sb * uu + cb * vv
     d = cb * uu + sb * vv - rho[None, :, None] - kappa[None, :, None] * s_other ** 2
     return np.max(np.abs(d), axis=2)
-
-
-def _chord_gap(p, q, disk, samples=9):
-    """Largest distance (px) from line q of points sampled along line p's chord."""
-    cx, cy = disk.center_px
-    rho, ang, kappa = p[0], p[1], p[2]
-    span = math.sqrt(max(disk.radius_px ** 2 - rho ** 2, 0.0))
-    sv = np.linspace(-span, span, samples)
-    ca, sa = math.cos(ang), math.sin(ang)
-    off = rho + kappa * sv * sv
-    px, py = cx + off * ca - sv * sa, cy + off * sa + sv * ca
-    return float(np.max(np.abs(_distance(q[0], q[1], q[2], px, py, cx, cy))))
 
 
 def _merge_duplicates(fits, disk, key=None):
