@@ -366,7 +366,8 @@ def _cmd_structures(args):
 
 def build_parser():
     parser = _Parser(prog="laueline",
-                     description="HOLZ deficit lines in CBED patterns: predict, fit, survey.")
+                     description="HOLZ deficit lines in CBED patterns: predict them, fit strain to "
+                                 "them, plan zone axes, measure foil thickness.")
     sub = parser.add_subparsers(dest="command", metavar="COMMAND", parser_class=_Parser)
     sub.required = True
 
@@ -392,7 +393,8 @@ def build_parser():
     p.add_argument("--mark-crossings", action="store_true", help="mark crossings in the figure")
     p.set_defaults(run=_cmd_predict)
 
-    p = sub.add_parser("refine", help="fit cell or strain (and detector, voltage) to crossings",
+    p = sub.add_parser("refine", help="fit cell or strain (and detector, voltage) to crossings "
+                                      "or to the lines of an image",
                        description="Fit measured HOLZ line crossings: cell or strain, detector "
                                    "and optionally the voltage, with uncertainties.")
     _add_crystal_options(p)
