@@ -170,7 +170,7 @@ class _Setup:
                                   self.wave_number(v["kv"]), hkl_a, hkl_b)
 
     def crossings_px(self, v, hkl_a, hkl_b):
-        return self.detector(v).to_pixels(self.crossings_mrad(v, hkl_a, hkl_b))
+        return self.crossings_px_many([v], hkl_a, hkl_b)[0]
 
     def stacked(self, value_sets):
         """Bases, wave numbers, detector matrices and centres of several parameter sets."""

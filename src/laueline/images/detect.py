@@ -226,7 +226,8 @@ def _line_model(params, px, py, cx, cy):
 
 
 def _distance(rho, ang, kappa, px, py, cx, cy):
-    ca, sa = math.cos(ang), math.sin(ang)
+    """Signed distance of pixels from the curved line(s); broadcasts over arrays."""
+    ca, sa = np.cos(ang), np.sin(ang)
     u, v = px - cx, py - cy
     s = -sa * u + ca * v
     return ca * u + sa * v - rho - kappa * s * s
@@ -250,10 +251,7 @@ def _fit_line(flat, valid, start, others, disk, noise):
     fx, fy, ix, iy = fx[near], fy[near], ix[near], iy[near]
     if len(others):
         o = np.asarray(others, dtype=float)                  # (k, 4): rho, angle, kappa, sigma
-        ca_o, sa_o = np.cos(o[:, 1]), np.sin(o[:, 1])
-        u, v = fx[:, None] - cx, fy[:, None] - cy
-        s_o = -sa_o * u + ca_o * v
-        d_o = ca_o * u + sa_o * v - o[:, 0] - o[:, 2] * s_o * s_o
+        d_o = _distance(o[:, 0], o[:, 1], o[:, 2], fx[:, None], fy[:, None], cx, cy)
         clear = np.all(np.abs(d_o) > 2.5 * o[:, 3] + 1.0, axis=1)
         fx, fy, ix, iy = fx[clear], fy[clear], ix[clear], iy[clear]
     if len(fx) < 40:
@@ -518,10 +516,8 @@ def _gap_matrix(params, disk, samples=9):
     ca, sa = np.cos(ang)[:, None], np.sin(ang)[:, None]
     off = rho[:, None] + kappa[:, None] * sv * sv
     u, v = off * ca - sv * sa, off * sa + sv * ca              # (n, k) relative to c
-    cb, sb = np.cos(ang)[None, :, None], np.sin(ang)[None, :, None]
-    uu, vv = u[:, None, :], v[:, None, :]
-    s_other = -sb * uu + cb * vv
-    d = cb * uu + sb * vv - rho[None, :, None] - kappa[None, :, None] * s_other ** 2
+    d = _distance(rho[None, :, None], ang[None, :, None], kappa[None, :, None],
+                  u[:, None, :], v[:, None, :], 0.0, 0.0)
     return np.max(np.abs(d), axis=2)
 
 
