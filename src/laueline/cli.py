@@ -128,13 +128,29 @@ def _add_sample_frame_options(p):
 
 
 def _sample_frame(args, crystal):
-    """(axes, description) of the sample frame asked for, or (None, 'reference-cartesian')."""
+    """(axes, description) of the sample frame asked for, or (None, 'reference-cartesian').
+
+    The two directions must be normal to each other in the crystal: a frame
+    is never made orthogonal behind the user's back.
+    """
+    import numpy as np
+
     from .strain import sample_axes
 
     if (args.sample_x is None) != (args.sample_z is None):
         raise InputError("a sample frame needs both --sample-x and --sample-z")
     if args.sample_x is None:
         return None, "reference-cartesian"
+    x = crystal.basis @ np.asarray(args.sample_x, dtype=float)
+    z = crystal.basis @ np.asarray(args.sample_z, dtype=float)
+    if not (np.linalg.norm(x) > 0 and np.linalg.norm(z) > 0):
+        raise InputError("--sample-x and --sample-z must be non-zero directions")
+    cos = float(x @ z / (np.linalg.norm(x) * np.linalg.norm(z)))
+    if abs(cos) > 1e-6:  # direction indices are exact; this only absorbs rounding
+        raise InputError(
+            f"--sample-x [{' '.join(f'{v:g}' for v in args.sample_x)}] is not normal to "
+            f"--sample-z [{' '.join(f'{v:g}' for v in args.sample_z)}] (angle "
+            f"{np.degrees(np.arccos(np.clip(cos, -1, 1))):.2f} deg); give normal directions")
     return (sample_axes(crystal.basis, args.sample_x, args.sample_z),
             f"sample: x along [{' '.join(f'{v:g}' for v in args.sample_x)}], "
             f"z along [{' '.join(f'{v:g}' for v in args.sample_z)}]")
@@ -267,8 +283,10 @@ def _cmd_survey(args):
     result = survey(crystal, kv=args.kv, disk_mrad=args.disk_mrad, max_index=args.max_index,
                     near=args.near, max_tilt_deg=args.max_tilt_deg, gmax=args.gmax,
                     min_strength=args.min_strength, min_angle_deg=args.min_angle_deg,
-                    sigma_mrad=args.sigma_mrad, component=args.component, axes=axes,
-                    frame_description=frame, progress=True)
+                    sigma_mrad=args.sigma_mrad, line_sigma_mrad=args.line_sigma_mrad,
+                    thickness_nm=args.thickness_nm, min_contrast=args.min_contrast,
+                    component=args.component, axes=axes, frame_description=frame,
+                    progress=True)
     print(report.survey_text(result, top=args.top))
 
     def figure():
@@ -480,7 +498,8 @@ def build_parser():
     p = sub.add_parser("survey", help="rank zone axes by the strain precision they deliver",
                        description="Rank zone axes by the predicted precision of the strain "
                                    "after a reference calibration (centre and rotation free, "
-                                   "voltage and scale held).")
+                                   "voltage and scale held), counting only the lines visible "
+                                   "at the foil thickness and with an error per line.")
     p.add_argument("structure", help="CIF file or bundled structure name")
     p.add_argument("--kv", type=float, default=200.0, help="accelerating voltage in kV (200)")
     p.add_argument("--disk-mrad", type=float, default=6.0,
@@ -490,14 +509,27 @@ def build_parser():
     p.add_argument("--near", nargs=3, type=float, metavar=("U", "V", "W"),
                    help="keep every axis within --max-tilt-deg of this orientation")
     p.add_argument("--max-tilt-deg", type=float, metavar="T", help="holder tilt range")
-    p.add_argument("--gmax", type=float, default=4.0, help="largest |g| in 1/A (4)")
+    p.add_argument("--gmax", type=float, default=4.0,
+                   help="largest |g| in 1/A (4; raised per axis to reach its first HOLZ ring)")
     p.add_argument("--min-strength", type=float, default=0.05,
-                   help="lines weaker than this are not counted (0.05)")
+                   help="lines weaker than this are not considered (0.05)")
     p.add_argument("--min-angle-deg", type=float, default=5.0,
                    help="smallest usable crossing angle in degrees (5)")
+    from .survey import (COMPONENTS, DEFAULT_LINE_SIGMA_MRAD, DEFAULT_MIN_CONTRAST,
+                         DEFAULT_THICKNESS_NM)
+
     p.add_argument("--sigma-mrad", type=float, default=0.005,
-                   help="noise of a measured crossing coordinate in mrad (0.005)")
-    from .survey import COMPONENTS
+                   help="independent noise of a measured crossing coordinate in mrad (0.005)")
+    p.add_argument("--line-sigma-mrad", type=float, default=DEFAULT_LINE_SIGMA_MRAD,
+                   help="offset of a whole line along its normal, shared by its crossings, "
+                        f"in mrad ({DEFAULT_LINE_SIGMA_MRAD:g}; 0 treats crossings as "
+                        "independent)")
+    p.add_argument("--thickness-nm", type=float, default=DEFAULT_THICKNESS_NM,
+                   help=f"foil thickness for the line contrast estimate in nm "
+                        f"({DEFAULT_THICKNESS_NM:g})")
+    p.add_argument("--min-contrast", type=float, default=DEFAULT_MIN_CONTRAST,
+                   help="lines with a shallower estimated dip are not seen "
+                        f"({DEFAULT_MIN_CONTRAST:g})")
 
     p.add_argument("--component", choices=COMPONENTS,
                    help="rank by this strain component (default: the worst of the six)")

@@ -10,7 +10,7 @@ from __future__ import annotations
 import numpy as np
 
 
-__all__ = ["pattern_figure", "fit_figure", "thickness_figure", "survey_figure",
+__all__ = ["pattern_figure", "fit_figure", "thickness_figure", "survey_figure", "robust_log_limits",
            "detection_figure", "save_figure", "draw_disk_lines", "hkl_label"]
 
 _DISK_FILL = "#f4f1ea"
@@ -270,37 +270,85 @@ def _stereo(v):
     return v[..., :2] / (1.0 + v[..., 2:3])
 
 
+def robust_log_limits(scores):
+    """Colour limits (low, high) for a log scale that one outlier cannot flatten.
+
+    The low end is the best (smallest) score, the axes one plans for; the
+    high end is the largest score, capped at 3 scaled median absolute
+    deviations above the median of log10(score) (Hampel's outlier rule,
+    common practice), so that a nearly degenerate axis is drawn in the
+    end colour instead of compressing all others into one.
+    """
+    s = np.asarray(scores, dtype=float)
+    s = s[np.isfinite(s) & (s > 0)]
+    if not len(s):
+        return 1.0, 10.0
+    logs = np.log10(s)
+    median = np.median(logs)
+    spread = 1.4826 * np.median(np.abs(logs - median))
+    low = float(s.min())
+    high = float(s.max())
+    if spread > 0:
+        high = min(high, float(10 ** (median + 3.0 * spread)))
+    return low, max(high, low * 1.05)
+
+
 def survey_figure(result, crystal, n_labels=8):
     """Stereographic map of the candidate axes coloured by predicted precision.
 
-    Cubic crystals without a tilt cone are shown in the standard triangle
-    [001]-[101]-[111]; other crystals on the upper hemisphere (z along c*);
-    a survey around ``near`` in tilt angles about that axis.
+    Without a sample frame: cubic crystals without a tilt cone are shown in
+    the standard triangle [001]-[101]-[111], other crystals on the upper
+    hemisphere (z along c*).  With a sample frame: the axis shown for each
+    family (its best member) on the upper hemisphere about the sample z
+    axis, sample x to the right.  A survey around ``near`` is drawn in tilt
+    angles about that axis (x tilt toward the sample x axis when a sample
+    frame is given).  The colour scale is logarithmic with its upper end
+    set robustly (:func:`robust_log_limits`); axes whose strain is not
+    determined are drawn as grey crosses.
     """
     from matplotlib import colormaps
     from matplotlib.colors import LogNorm
 
     fig = _new_figure(6.6, 5.6)
     ax = fig.subplots()
-    axes = [a for a in result.axes if np.isfinite(a.score)]
-    zones = np.array([a.zone for a in axes], dtype=float)
-    scores = np.array([a.score for a in axes])
+    sample = getattr(result, "sample_axes", None)
+    shown = np.array([a.member if len(getattr(a, "member", ())) else a.zone
+                      for a in result.axes], dtype=float)
+    scores = np.array([a.score for a in result.axes])
     if result.near is not None:
         ref = crystal.basis @ np.asarray(result.near)
         e3 = ref / np.linalg.norm(ref)
-        e1 = np.cross(e3, [0, 0, 1.0]) if abs(e3[2]) < 0.9 else np.cross(e3, [1.0, 0, 0])
+        toward = sample[0] if sample is not None else np.array([0, 0, 1.0])
+        e1 = toward - (toward @ e3) * e3
+        if np.linalg.norm(e1) < 1e-6:
+            e1 = np.cross(e3, [0, 0, 1.0]) if abs(e3[2]) < 0.9 else np.cross(e3, [1.0, 0, 0])
+        if sample is None:
+            e1 = np.cross(e3, [0, 0, 1.0]) if abs(e3[2]) < 0.9 else np.cross(e3, [1.0, 0, 0])
         e1 /= np.linalg.norm(e1)
         e2 = np.cross(e3, e1)
-        d = zones @ crystal.basis.T
+        d = shown @ crystal.basis.T
         xy = np.degrees(np.stack([np.arctan2(d @ e1, d @ e3), np.arctan2(d @ e2, d @ e3)], 1))
         t = np.linspace(0, 2 * np.pi, 200)
         ax.plot(result.max_tilt_deg * np.cos(t), result.max_tilt_deg * np.sin(t),
                 color=_DISK_EDGE, linewidth=0.8)
-        ax.set_xlabel("tilt x (deg)")
-        ax.set_ylabel("tilt y (deg)")
+        ax.set_xlabel("tilt toward sample x (deg)" if sample is not None else "tilt x (deg)")
+        ax.set_ylabel("tilt toward sample y (deg)" if sample is not None else "tilt y (deg)")
         title = f"axes within {result.max_tilt_deg:g} deg of [{' '.join(f'{v:g}' for v in result.near)}]"
+    elif sample is not None:
+        d = shown @ crystal.basis.T @ np.asarray(sample).T   # sample-frame components
+        d[d[:, 2] < 0] *= -1  # an axis and its opposite give the same precision
+        xy = _stereo(d)
+        t = np.linspace(0, 2 * np.pi, 200)
+        ax.plot(np.cos(t), np.sin(t), color=_DISK_EDGE, linewidth=0.8)
+        for label, v in [("x", (1.0, 0, 0)), ("y", (0, 1.0, 0))]:
+            p = _stereo(np.array(v))
+            ax.annotate(f"sample {label}", p, textcoords="offset points", xytext=(3, 3),
+                        fontsize=8, color=_DISK_EDGE)
+        ax.plot([0], [0], marker="+", color=_DISK_EDGE)
+        ax.set_axis_off()
+        title = "sample frame, upper hemisphere about z"
     elif result.cubic:
-        s = -np.sort(-np.abs(zones), axis=1)
+        s = -np.sort(-np.abs(shown), axis=1)
         xy = _stereo(np.stack([s[:, 1], s[:, 2], s[:, 0]], axis=1))
         u = np.linspace(0, 1, 100)
         edge = np.concatenate([_stereo(np.stack([u, 0 * u, 1 + 0 * u], 1)),
@@ -314,30 +362,40 @@ def survey_figure(result, crystal, n_labels=8):
         ax.set_axis_off()
         title = "standard triangle"
     else:
-        d = zones @ crystal.basis.T
+        d = shown @ crystal.basis.T
         d[d[:, 2] < 0] *= -1  # Friedel: the opposite axis is equivalent
         xy = _stereo(d)
         t = np.linspace(0, 2 * np.pi, 200)
         ax.plot(np.cos(t), np.sin(t), color=_DISK_EDGE, linewidth=0.8)
         ax.set_axis_off()
         title = "upper hemisphere, z along c*"
-    cmap = colormaps["plasma"]
-    norm = LogNorm(vmin=scores.min(), vmax=max(scores.max(), scores.min() * 1.01))
-    sc = ax.scatter(xy[:, 0], xy[:, 1], c=scores, cmap=cmap, norm=norm, s=30,
-                    edgecolors="none", zorder=3)
-    overlap = np.array([a.overlap for a in axes])
+    finite = np.isfinite(scores)
+    low, high = robust_log_limits(scores[finite])
+    norm = LogNorm(vmin=low, vmax=high, clip=False)
+    cmap = colormaps["plasma"].with_extremes(over="#3b3b3b")
+    sc = ax.scatter(xy[finite, 0], xy[finite, 1], c=scores[finite], cmap=cmap, norm=norm,
+                    s=30, edgecolors="none", zorder=3)
+    if np.any(~finite):
+        ax.scatter(xy[~finite, 0], xy[~finite, 1], marker="x", s=18, color="#9b9b9b",
+                   linewidths=0.8, zorder=2, label="strain not determined")
+    overlap = np.array([a.overlap for a in result.axes])
     if np.any(overlap):
         ax.scatter(xy[overlap, 0], xy[overlap, 1], s=80, facecolors="none",
                    edgecolors=_DISK_EDGE, linewidths=0.6, zorder=2,
-                   label="zero-layer disks overlap")
+                   label="disks overlap: at largest convergence")
+    if np.any(overlap) or np.any(~finite):
         ax.legend(loc="upper left", fontsize=7, frameon=False)
     halo = _halo()
-    for a, p in list(zip(axes, xy))[:n_labels]:
-        ax.annotate("[" + " ".join(str(v) for v in a.zone) + "]", p,
+    for a, p in list(zip(result.axes, xy))[:n_labels]:
+        if not np.isfinite(a.score):
+            continue
+        z = a.member if len(getattr(a, "member", ())) else a.zone
+        ax.annotate("[" + " ".join(str(v) for v in z) + "]", p,
                     textcoords="offset points", xytext=(5, 4), fontsize=7, color=_LINE,
                     path_effects=halo, zorder=4)
     ax.set_aspect("equal")
-    cb = fig.colorbar(sc, ax=ax, shrink=0.8)
+    extend = "max" if np.any(scores[finite] > high) else "neither"
+    cb = fig.colorbar(sc, ax=ax, shrink=0.8, extend=extend)
     cb.set_label(f"predicted 1-sigma of {result.ranked_by}")
     ax.set_title(f"{result.structure['name']}, {result.kv:g} kV, {result.disk_mrad:g} mrad: "
                  f"{title}", fontsize=10)

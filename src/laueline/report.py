@@ -513,22 +513,34 @@ def thickness_text(result):
 # survey
 # ---------------------------------------------------------------------------
 
-SURVEY_SCHEMA = "laueline.survey/1"
+SURVEY_SCHEMA = "laueline.survey/2"
 
 
 def survey_document(result):
-    """The ``laueline.survey/1`` document of a :class:`~laueline.survey.SurveyResult`."""
+    """The ``laueline.survey/2`` document of a :class:`~laueline.survey.SurveyResult`.
+
+    ``sigma_strain`` is the predicted total 1-sigma under the per-line error
+    model; each axis carries ``member`` (the symmetry-equivalent axis shown),
+    ``n_visible_lines`` and the ``thickness_nm``, ``disk_mrad`` and
+    ``gmax_inv_A`` its figures are for.
+    """
     return _clean({
         "schema": SURVEY_SCHEMA,
         "structure": result.structure,
         "kv": result.kv, "disk_mrad": result.disk_mrad, "sigma_mrad": result.sigma_mrad,
+        "line_sigma_mrad": result.line_sigma_mrad, "thickness_nm": result.thickness_nm,
+        "min_contrast": result.min_contrast, "contrast_model": result.contrast_model,
         "frame": result.frame,
+        "sample_axes": None if result.sample_axes is None else result.sample_axes,
         "ranked_by": result.ranked_by,
         "point_group": result.point_group,
         "near": list(result.near) if result.near else None,
         "max_tilt_deg": result.max_tilt_deg,
-        "axes": [{"zone": list(a.zone), "x_axis": list(a.x_axis), "tilt_deg": a.tilt_deg,
-                  "n_lines": a.n_lines, "n_crossings": a.n_crossings,
+        "axes": [{"zone": list(a.zone), "member": list(a.member), "n_members": a.n_members,
+                  "x_axis": list(a.x_axis), "tilt_deg": a.tilt_deg,
+                  "n_lines": a.n_lines, "n_visible_lines": a.n_visible_lines,
+                  "n_crossings": a.n_crossings, "thickness_nm": a.thickness_nm,
+                  "disk_mrad": a.disk_mrad, "gmax_inv_A": a.gmax,
                   "ring_radius_mrad": a.ring_radius_mrad,
                   "max_convergence_mrad": a.max_convergence_mrad, "overlap": a.overlap,
                   "sigma_strain": a.sigma_strain, "score": a.score} for a in result.axes],
@@ -539,31 +551,49 @@ def survey_document(result):
 def survey_text(result, top=15):
     """The best ``top`` axes as a table."""
     out = [f"survey     {result.structure['name']}, {result.kv:g} kV, disk "
-           f"{result.disk_mrad:g} mrad, crossing noise {result.sigma_mrad:g} mrad, "
-           f"{len(result.axes)} candidate axes"
+           f"{result.disk_mrad:g} mrad, {len(result.axes)} candidate axes"
            + (f" within {result.max_tilt_deg:g} deg of [{' '.join(f'{v:g}' for v in result.near)}]"
               if result.near else f" (one per orbit of the Laue group {result.point_group})"),
-           f"ranked by  predicted 1-sigma of {result.ranked_by} ({result.frame} frame); "
+           f"lines      seen when their {result.contrast_model} dip at "
+           f"{result.thickness_nm:g} nm thickness is at least {result.min_contrast:g} "
+           "(--thickness-nm, --min-contrast)",
+           f"errors     crossing noise {result.sigma_mrad:g} mrad per coordinate, line offset "
+           f"{result.line_sigma_mrad:g} mrad shared by the crossings of a line",
+           f"ranked by  predicted total 1-sigma of {result.ranked_by} ({result.frame} frame); "
            "centre and rotation free, voltage and scale held", ""]
     tilt = result.near is not None
-    head = f"  {'rank':>4} {'zone':>10} " + (f"{'tilt':>6} " if tilt else "") + \
-        f"{'lines':>5} {'cross':>6} {'ring':>6} {'max conv':>8}  " + \
+    members = not tilt and any(a.member != a.zone for a in result.axes[:top])
+    head = f"  {'rank':>4} {'zone':>10} " + (f"{'shown as':>10} " if members else "") + \
+        (f"{'tilt':>6} " if tilt else "") + \
+        f"{'lines':>5} {'seen':>5} {'cross':>6} {'ring':>6} {'max conv':>8}  " + \
         "  ".join(f"{c:>8}" for c in ("exx", "eyy", "ezz", "eyz", "exz", "exy"))
     out.append(head)
-    out.append(f"  {'':4} {'':10} " + (f"{'deg':>6} " if tilt else "") +
-               f"{'':5} {'':6} {'mrad':>6} {'mrad':>8}  " + "  ".join(f"{'':>8}" for _ in range(6)))
+    out.append(f"  {'':4} {'':10} " + (f"{'':10} " if members else "") +
+               (f"{'deg':>6} " if tilt else "") +
+               f"{'':5} {'':5} {'':6} {'mrad':>6} {'mrad':>8}  " +
+               "  ".join(f"{'':>8}" for _ in range(6)))
     for k, a in enumerate(result.axes[:top], 1):
         zone = " ".join(str(v) for v in a.zone)
+        shown = " ".join(str(v) for v in a.member)
         flag = "*" if a.overlap else " "
-        row = f"  {k:4d} {zone:>10} " + (f"{a.tilt_deg:6.2f} " if tilt else "") + \
-            f"{a.n_lines:5d} {a.n_crossings:6d} {a.ring_radius_mrad:6.1f} " \
-            f"{a.max_convergence_mrad:7.2f}{flag}  " + \
+        row = f"  {k:4d} {zone:>10} " + (f"{shown:>10} " if members else "") + \
+            (f"{a.tilt_deg:6.2f} " if tilt else "") + \
+            f"{a.n_lines:5d} {a.n_visible_lines:5d} {a.n_crossings:6d} " \
+            f"{a.ring_radius_mrad:6.1f} {a.max_convergence_mrad:7.2f}{flag}  " + \
             "  ".join(f"{s:8.1e}" for s in a.sigma_strain)
         out.append(row)
+    out.append("")
+    out.append("  lines: HOLZ lines above --min-strength; seen: those above --min-contrast; "
+               "cross: crossings of two seen lines")
+    if members:
+        out.append("  shown as: the symmetry-equivalent axis with the best figures in this "
+                   "frame (its figures are those printed)")
     if any(a.overlap for a in result.axes[:top]):
-        out.append("")
-        out.append("  * zero-layer disks overlap at this disk size (reduce the convergence "
-                   "angle below 'max conv')")
+        out.append("  * zero-layer disks overlap at the requested disk size: figures are for "
+                   "the largest convergence without overlap, 'max conv'")
+    out.append("  The error model and the contrast estimate are kinematic: dynamical shifts "
+               "enter only through the line offset, and strain in a thin foil relaxes at its "
+               "surfaces.")
     if result.warnings:
         out.append("")
         out.extend(f"warning: {w}" for w in result.warnings)
