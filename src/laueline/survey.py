@@ -55,11 +55,10 @@ from functools import reduce
 import numpy as np
 
 from .errors import InputError
-from .lines import LineParameters, crossing_positions, line_parameters_batch, locus_distances
-from .lines import predict
+from .lines import crossing_positions, predict
 from .strain import from_voigt, voigt
 from .thickness import two_beam_intensity
-from .uncertainty import crossing_loading, predicted_covariance
+from .uncertainty import crossing_loading_of_lines, predicted_covariance
 
 __all__ = ["COMPONENTS", "AxisPrecision", "SurveyResult", "strain_precision",
            "candidate_axes", "family_members", "survey_axis", "survey", "kinematic_contrast",
@@ -74,7 +73,6 @@ DEFAULT_MIN_CONTRAST = 0.02     # smallest deficit seen in a real disk (common p
 # (common practice), plus what dynamical shifts leave after a calibration
 DEFAULT_LINE_SIGMA_MRAD = 0.002
 _STEP = 1e-6  # strain step of the central-difference Jacobian
-_NORMAL_STEP = 1e-7  # rad: finite step for the locus normals at a crossing
 _ROCKING_SAMPLES = 257  # samples of the rocking curve beyond its central peak
 
 
@@ -86,28 +84,6 @@ def _voigt_rotation(axes):
         unit[k] = 1.0
         T[:, k] = voigt(axes @ from_voigt(unit) @ axes.T)
     return T
-
-
-def _crossing_normals(basis, zone, x_axis, wave_number, hkl_a, hkl_b, t_mrad):
-    """Line index of each crossing's two lines and the loci's unit normals there."""
-    hkl = np.concatenate([hkl_a, hkl_b])
-    unique, index = np.unique(hkl, axis=0, return_inverse=True)
-    index = index.ravel()
-    line_a, line_b = index[:len(hkl_a)], index[len(hkl_a):]
-    params = line_parameters_batch(basis, zone, x_axis, wave_number, unique)
-    # gradient of the signed distance from each locus, by finite differences
-    # of the forward model's own distance function: its unit normal
-    offsets = np.array([[0.0, 0.0], [_NORMAL_STEP, 0.0], [0.0, _NORMAL_STEP]])
-    points = np.asarray(t_mrad, dtype=float)[:, None, :] * 1e-3 + offsets
-
-    def normals(line):
-        sub = LineParameters(params.g_perp[line], params.g_perp_norm[line], params.gz[line],
-                             params.c[line])
-        d = locus_distances(points, sub)
-        n = (d[:, 1:] - d[:, :1]) / _NORMAL_STEP
-        return n / np.linalg.norm(n, axis=1, keepdims=True)
-
-    return line_a, line_b, normals(line_a), normals(line_b), len(unique)
 
 
 def strain_precision(basis, zone, x_axis, wave_number, hkl_a, hkl_b, sigma_mrad, *,
@@ -161,10 +137,9 @@ def strain_precision(basis, zone, x_axis, wave_number, hkl_a, hkl_b, sigma_mrad,
     jac[:, 8] = np.stack([-t0[:, 1], t0[:, 0]], axis=1).ravel() * 1e-3  # rotation, mrad/mrad
     if not np.all(np.isfinite(jac)):
         return undetermined
-    line_a, line_b, normal_a, normal_b, n_lines = _crossing_normals(
-        basis, zone, x_axis, wave_number, hkl_a, hkl_b, t0)
     try:
-        loading = crossing_loading(normal_a, normal_b, line_a, line_b, n_lines)
+        loading, _ = crossing_loading_of_lines(basis, zone, x_axis, wave_number, hkl_a, hkl_b,
+                                               t0)
         cov = predicted_covariance(jac, loading, sigma_mrad, line_sigma_mrad)[:6, :6]
     except InputError:  # parallel lines or undetermined strain
         return undetermined

@@ -85,6 +85,8 @@ __all__ = [
     "CovarianceParts",
     "LineSigmaEstimate",
     "crossing_loading",
+    "crossing_loading_of_lines",
+    "locus_normals",
     "line_point_loading",
     "residual_covariance",
     "combine",
@@ -96,6 +98,7 @@ __all__ = [
 ]
 
 _RANK_TOL = 1e-10  # relative singular value below which a parameter is undetermined
+_NORMAL_STEP = 1e-7  # rad: finite step for the locus normals at a point
 
 
 # ---------------------------------------------------------------------------
@@ -151,6 +154,79 @@ def crossing_loading(normal_a, normal_b, line_a, line_b, n_lines=None):
     loading[rows, :, la] = col_a
     loading[rows, :, lb] = col_b
     return loading.reshape(2 * p, n_lines)
+
+
+def locus_normals(basis, zone, x_axis, wave_number, hkl, t_mrad):
+    """Unit normals (disk frame) of the exact loci of ``hkl`` at the points ``t_mrad``.
+
+    The gradient of the forward model's signed distance from each locus
+    (:func:`laueline.lines.locus_distances`), by finite differences: the
+    geometry stays in :mod:`laueline.lines`.
+
+    Parameters
+    ----------
+    basis : ndarray (3, 3)
+    zone, x_axis : sequence of 3 int
+    wave_number : float
+    hkl : ndarray (p, 3)
+        One reflection per point.
+    t_mrad : ndarray (p, 2)
+
+    Returns
+    -------
+    ndarray (p, 2)
+        Pointing to the side where the Bragg-condition residual is positive.
+    """
+    from .lines import LineParameters, line_parameters_batch, locus_distances
+
+    hkl = np.asarray(hkl).reshape(-1, 3)
+    unique, index = np.unique(hkl, axis=0, return_inverse=True)
+    index = index.ravel()
+    params = line_parameters_batch(basis, zone, x_axis, wave_number, unique)
+    sub = LineParameters(params.g_perp[index], params.g_perp_norm[index], params.gz[index],
+                         params.c[index])
+    steps = np.array([[0.0, 0.0], [_NORMAL_STEP, 0.0], [0.0, _NORMAL_STEP]])
+    points = np.asarray(t_mrad, dtype=float).reshape(-1, 1, 2) * 1e-3 + steps
+    d = locus_distances(points, sub)
+    n = (d[:, 1:] - d[:, :1]) / _NORMAL_STEP
+    return n / np.linalg.norm(n, axis=1, keepdims=True)
+
+
+def crossing_loading_of_lines(basis, zone, x_axis, wave_number, hkl_a, hkl_b, t_mrad):
+    """The loading of :func:`crossing_loading` for crossings named by their reflections.
+
+    Lines are numbered by their distinct (h k l); the normals are those of
+    the exact loci at the crossing points (:func:`locus_normals`), in the
+    disk frame.  A fit working in detector pixels applies the detector's
+    rotation and mirror to the two rows of each crossing (a line offset and
+    the displacement it causes both scale by the camera scale, which
+    cancels); with an affine distortion it passes normals mapped into
+    pixels to :func:`crossing_loading` instead.
+
+    Parameters
+    ----------
+    basis : ndarray (3, 3)
+    zone, x_axis : sequence of 3 int
+    wave_number : float
+    hkl_a, hkl_b : ndarray (p, 3)
+    t_mrad : ndarray (p, 2)
+        The crossing points.
+
+    Returns
+    -------
+    loading : ndarray (2 p, m)
+    lines : ndarray (m, 3) of int
+        The reflection of each column.
+    """
+    hkl_a = np.asarray(hkl_a).reshape(-1, 3)
+    hkl_b = np.asarray(hkl_b).reshape(-1, 3)
+    lines, index = np.unique(np.concatenate([hkl_a, hkl_b]), axis=0, return_inverse=True)
+    index = index.ravel()
+    normals = locus_normals(basis, zone, x_axis, wave_number,
+                            np.concatenate([hkl_a, hkl_b]), np.concatenate([t_mrad, t_mrad]))
+    p = len(hkl_a)
+    loading = crossing_loading(normals[:p], normals[p:], index[:p], index[p:], len(lines))
+    return loading, lines
 
 
 def line_point_loading(line_index, n_lines=None):
