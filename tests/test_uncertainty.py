@@ -36,12 +36,12 @@ def test_woodbury_solve_and_determinant_match_dense():
     # Reference: numpy's dense solve and slogdet of the same matrix built
     # explicitly (Woodbury identity and determinant lemma are exact).
     rng = np.random.default_rng(1)
-    normals, la, lb = _random_crossings(rng, 200, 40)
-    loading = crossing_loading(normals[la], normals[lb], la, lb, 40)
-    point = rng.uniform(0.3, 0.6, 400)
-    cov = residual_covariance(loading, point, rng.uniform(0, 0.4, 40))
+    normals, la, lb = _random_crossings(rng, 100, 20)
+    loading = crossing_loading(normals[la], normals[lb], la, lb, 20)
+    point = rng.uniform(0.3, 0.6, 200)
+    cov = residual_covariance(loading, point, rng.uniform(0, 0.4, 20))
     dense = cov.dense()
-    b = rng.normal(size=(400, 3))
+    b = rng.normal(size=(200, 3))
     # tolerance: rounding of a condition number up to ~1e6 (near-parallel pairs)
     np.testing.assert_allclose(cov.solve(b), np.linalg.solve(dense, b), rtol=1e-7, atol=1e-9)
     assert cov.logdet() == pytest.approx(np.linalg.slogdet(dense)[1], rel=1e-10)
