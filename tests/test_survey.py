@@ -183,8 +183,9 @@ def test_sample_frame_shows_the_best_member(si):
     assert old[(0, 2, 3)] == pytest.approx(10.5e-5, abs=0.05e-5)
     # Every member evaluated directly (its own predict), against the member
     # the survey picks by rotating the representative's covariance.
-    members, _, _ = family_members(si, (3, 2, 0))
+    members, _, x_axes = family_members(si, (3, 2, 0), (0, 0, 4))
     assert len(members) == 12   # 48 operations of m-3m over |stabiliser| 4 / +-
+    assert np.all(np.sum(members * x_axes, axis=1) == 0)   # each x axis in its zone
     direct = {tuple(m): survey_axis(si, m, axes=axes, component="ezz",
                                     members=False).sigma_strain for m in members}
     shown = survey_axis(si, (3, 2, 0), axes=axes, component="ezz")

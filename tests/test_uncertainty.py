@@ -70,6 +70,14 @@ def test_points_along_lines_share_the_offset():
     assert cov[1, 2] == 0 and cov[2, 2] == pytest.approx(0.01 + 0.09)
 
 
+def test_extra_factor_adds_its_outer_product():
+    loading = line_point_loading([0, 0, 1])
+    base = residual_covariance(loading, 0.1, 0.2)
+    extra = np.array([[1.0], [2.0], [0.0]])
+    np.testing.assert_allclose(base.with_factor(extra).dense(),
+                               base.dense() + extra @ extra.T, rtol=1e-12)
+
+
 def test_combined_observations_correlate_through_shared_lines():
     na = np.array([[1.0, 0.0]])
     nb = np.array([[0.0, 1.0]])

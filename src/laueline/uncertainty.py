@@ -52,6 +52,18 @@ The line sigma is estimated from the residuals grouped by line
 Both are exact for balanced one-way data; REML is the more efficient when
 the lines carry few observations each.
 
+In a fit (sketch)::
+
+    loading, lines = crossing_loading_of_lines(basis, zone, x_axis, K,
+                                               hkl_a, hkl_b, t_mrad)
+    V = residual_covariance(loading, point_sigma, line_sigma)
+    step, cov = gls_solve(J, r, V)            # each Gauss-Newton iteration
+    est = estimate_line_sigma(r, loading, point_sigma, J)   # when not given
+    parts = add_systematic(cov_strain, systematic_strain)   # stat, sys, total
+
+and the survey evaluates ``predicted_covariance(J, loading, point_sigma,
+line_sigma)`` on the planned crossings: the same two functions.
+
 Units are the caller's: residuals, point sigma and line sigma share one
 length unit (mrad in the survey, pixels in a fit); the loading is unit-free.
 
@@ -285,6 +297,19 @@ class ResidualCovariance:
     def n(self):
         """Number of residuals."""
         return len(self.point_variance)
+
+    def with_factor(self, extra):
+        """V + extra @ extra.T: further correlated terms, still in structured form.
+
+        For example a line detection's own covariance of each line's offset
+        and angle: with C_l = L_l L_l^T per line and the loading of those
+        two line parameters on the residuals, ``extra`` holds the loading
+        times L_l, two columns per line.
+        """
+        extra = np.asarray(extra, dtype=float)
+        if extra.ndim != 2 or extra.shape[0] != self.n:
+            raise InputError(f"extra must have {self.n} rows, one per residual")
+        return ResidualCovariance(self.point_variance, np.concatenate([self.factor, extra], 1))
 
     def dense(self):
         """The full n x n matrix (for small problems, tests and reports)."""
