@@ -306,9 +306,15 @@ def survey_axis(crystal, zone, *, kv=200.0, disk_mrad=6.0, gmax=4.0, min_strengt
     disk_used = min(float(disk_mrad), float(pattern.max_convergence_mrad))
     gmax_used = max(float(gmax), _needed_gmax(pattern, disk_used))
     if overlap or gmax_used > gmax:
-        pattern = predict(crystal, zone, kv, disk_used, gmax=gmax_used,
-                          min_strength=min_strength, min_angle_deg=min_angle_deg,
-                          x_axis=pattern.x_axis)
+        try:
+            pattern = predict(crystal, zone, kv, disk_used, gmax=gmax_used,
+                              min_strength=min_strength, min_angle_deg=min_angle_deg,
+                              x_axis=pattern.x_axis)
+        except InputError:  # too many reflections to enumerate: keep the limit given
+            gmax_used = float(gmax)
+            pattern = predict(crystal, zone, kv, disk_used, gmax=gmax,
+                              min_strength=min_strength, min_angle_deg=min_angle_deg,
+                              x_axis=pattern.x_axis)
     depth = np.asarray(contrast(pattern, thickness_nm), dtype=float)
     if depth.shape != (pattern.n_lines,):
         raise InputError(f"the contrast model returned shape {depth.shape} for "
@@ -533,13 +539,13 @@ def survey(crystal, *, kv=200.0, disk_mrad=6.0, max_index=7, near=None, max_tilt
     raised = [r for r in results if r.gmax > gmax * (1 + 1e-9)]
     if raised:
         warnings.append(f"the reflection limit was raised above {gmax:g} 1/A for "
-                        f"{len(raised)} axes (up to {max(r.gmax for r in raised):.2f} 1/A) "
-                        "to reach their first HOLZ ring")
+                        f"{_count(raised, 'axis', 'axes')} (up to "
+                        f"{max(r.gmax for r in raised):.2f} 1/A) to reach the first HOLZ ring")
     reduced = [r for r in results if r.overlap]
     if reduced:
-        warnings.append(f"{len(reduced)} axes overlap their zero-layer disks at "
-                        f"{disk_mrad:g} mrad: they are evaluated at the largest convergence "
-                        "they allow (marked *)")
+        warnings.append(f"{_count(reduced, 'axis overlaps its', 'axes overlap their')} "
+                        f"zero-layer disks at {disk_mrad:g} mrad: evaluated at the largest "
+                        "convergence allowed (marked *)")
     is_cubic = 195 <= crystal.space_group_number <= 230
     return SurveyResult(
         structure=crystal.summary(), kv=float(kv), disk_mrad=float(disk_mrad),
@@ -552,6 +558,10 @@ def survey(crystal, *, kv=200.0, disk_mrad=6.0, max_index=7, near=None, max_tilt
         contrast_model="kinematic two-beam" if contrast is None
         else getattr(contrast, "__name__", "user-supplied"),
         sample_axes=axes)
+
+
+def _count(items, one, many):
+    return f"{len(items)} {one if len(items) == 1 else many}"
 
 
 def _bucket(score):
