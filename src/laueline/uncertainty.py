@@ -87,6 +87,7 @@ from __future__ import annotations
 
 import math
 from dataclasses import dataclass
+from functools import cached_property
 
 import numpy as np
 
@@ -315,6 +316,7 @@ class ResidualCovariance:
         """The full n x n matrix (for small problems, tests and reports)."""
         return np.diag(self.point_variance) + self.factor @ self.factor.T
 
+    @cached_property
     def _capacitance(self):
         u = self.factor / self.point_variance[:, None]          # D^-1 U
         cap = np.eye(self.factor.shape[1]) + self.factor.T @ u  # I + U^T D^-1 U
@@ -326,7 +328,7 @@ class ResidualCovariance:
         d_inv_b = b / (self.point_variance if b.ndim == 1 else self.point_variance[:, None])
         if self.factor.shape[1] == 0:
             return d_inv_b
-        u, chol = self._capacitance()
+        u, chol = self._capacitance
         inner = _cho_solve(chol, self.factor.T @ d_inv_b)
         return d_inv_b - u @ inner
 
@@ -334,7 +336,7 @@ class ResidualCovariance:
         """log det V (matrix determinant lemma)."""
         value = float(np.sum(np.log(self.point_variance)))
         if self.factor.shape[1]:
-            _, chol = self._capacitance()
+            _, chol = self._capacitance
             value += 2.0 * float(np.sum(np.log(np.diag(chol))))
         return value
 
@@ -650,9 +652,12 @@ def estimate_line_sigma(residuals, loading, point_sigma, jacobian=None, *, metho
         else:
             sigma = brentq(excess, 0.0, top, xtol=1e-9 * top)
     else:
-        res = minimize_scalar(lambda s: _reml_objective(jac, r, cov(s)), bounds=(0.0, top),
-                              method="bounded", options={"xatol": 1e-6 * top})
-        sigma = float(res.x)
+        # over log(sigma): the likelihood is smooth in it across decades
+        floor = 1e-4 * float(np.min(point_sigma))
+        res = minimize_scalar(lambda x: _reml_objective(jac, r, cov(math.exp(x))),
+                              bounds=(math.log(floor), math.log(top)), method="bounded",
+                              options={"xatol": 1e-4})
+        sigma = math.exp(float(res.x))
         if _reml_objective(jac, r, cov(0.0)) <= res.fun:
             sigma = 0.0
     return LineSigmaEstimate(line_sigma=float(sigma), method=method,
