@@ -249,3 +249,47 @@ def test_robust_colour_scale():
     # one nearly degenerate axis does not stretch the scale
     low, high = robust_log_limits(np.append(scores, 1e2))
     assert low == pytest.approx(1e-4) and high < 2e-3
+
+
+def test_tilt_map_in_the_sample_frame(si):
+    from types import SimpleNamespace
+
+    from laueline.plot import survey_figure, survey_map_coordinates
+
+    # x' = [1 1 0], z' = [0 0 1]: stereographic projection about z' (x' to
+    # the right) puts [0 0 1] at the centre, [1 1 0] at (1, 0), [-1 1 0] (the
+    # sample y) at (0, 1), and [1 1 1] at tan(54.74 deg / 2) = 0.5176 along x
+    axes = sample_axes(si.basis, (1, 1, 0), (0, 0, 1))
+    expected = {(0, 0, 1): (0, 0), (1, 1, 0): (1, 0), (-1, 1, 0): (0, 1),
+                (1, -1, 0): (0, -1), (1, 1, 1): (np.tan(np.arccos(3 ** -0.5) / 2), 0),
+                (-1, -1, -1): (np.tan(np.arccos(3 ** -0.5) / 2), 0)}  # same axis
+    rows = [SimpleNamespace(zone=m, member=m, score=1e-4, overlap=False) for m in expected]
+    fake = SimpleNamespace(axes=rows, near=None, sample_axes=axes, cubic=True)
+    xy, kind = survey_map_coordinates(fake, si)
+    assert kind == "sample"
+    np.testing.assert_allclose(xy, list(expected.values()), atol=1e-12)
+    # around [0 0 1] in the sample frame: tilts toward the sample x axis;
+    # [1 1 4] lies atan(sqrt(2) / 4) = 19.47 deg from [0 0 1] toward [1 1 0]
+    near = survey(si, max_index=4, near=(0, 0, 1), max_tilt_deg=20, axes=axes)
+    xy, kind = survey_map_coordinates(near, si)
+    assert kind == "tilt"
+    found = [p for a, p in zip(near.axes, xy) if a.zone == (1, 1, 4)]
+    assert len(found) == 1
+    np.testing.assert_allclose(found[0], (np.degrees(np.arctan(2 ** 0.5 / 4)), 0), atol=1e-9)
+    assert survey_figure(near, si) is not None
+    result = survey(si, max_index=2, axes=axes, component="ezz")
+    assert survey_map_coordinates(result, si)[1] == "sample"
+    assert survey_figure(result, si) is not None
+
+
+@pytest.mark.parametrize("argv, message", [
+    (["--thickness-nm", "0"], "thickness_nm"),
+    (["--line-sigma-mrad", "-0.001"], "line_sigma_mrad"),
+    (["--min-contrast", "1"], "min_contrast"),
+    (["--sample-x", "1", "1", "0"], "both"),
+])
+def test_cli_survey_bad_input(capsys, argv, message):
+    from conftest import run_cli
+
+    code, out, err = run_cli(capsys, "survey", "Si", "--max-index", "1", *argv)
+    assert code == 2 and message in err and len(err.strip().splitlines()) == 1

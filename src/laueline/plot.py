@@ -11,6 +11,7 @@ import numpy as np
 
 
 __all__ = ["pattern_figure", "fit_figure", "thickness_figure", "survey_figure", "robust_log_limits",
+           "survey_map_coordinates",
            "detection_figure", "save_figure", "draw_disk_lines", "hkl_label"]
 
 _DISK_FILL = "#f4f1ea"
@@ -293,6 +294,47 @@ def robust_log_limits(scores):
     return low, max(high, low * 1.05)
 
 
+def survey_map_coordinates(result, crystal):
+    """Plot coordinates of the survey's axes and the kind of map.
+
+    Returns
+    -------
+    xy : ndarray (n, 2)
+        One point per axis of ``result.axes`` (its shown member).
+    kind : str
+        "tilt" (degrees toward e1, e2 about ``near``; e1 the sample x axis
+        projected normal to ``near`` when a sample frame is given),
+        "sample" (stereographic, upper hemisphere about the sample z axis,
+        sample x to the right), "triangle" (cubic standard triangle) or
+        "hemisphere" (stereographic, z along c*).
+    """
+    sample = getattr(result, "sample_axes", None)
+    shown = np.array([a.member if len(getattr(a, "member", ())) else a.zone
+                      for a in result.axes], dtype=float).reshape(-1, 3)
+    d = shown @ crystal.basis.T          # Cartesian directions
+    if result.near is not None:
+        ref = crystal.basis @ np.asarray(result.near, dtype=float)
+        e3 = ref / np.linalg.norm(ref)
+        e1 = np.zeros(3)
+        if sample is not None:
+            e1 = sample[0] - (sample[0] @ e3) * e3
+        if np.linalg.norm(e1) < 1e-6:
+            e1 = np.cross(e3, [0, 0, 1.0]) if abs(e3[2]) < 0.9 else np.cross(e3, [1.0, 0, 0])
+        e1 /= np.linalg.norm(e1)
+        e2 = np.cross(e3, e1)
+        xy = np.degrees(np.stack([np.arctan2(d @ e1, d @ e3), np.arctan2(d @ e2, d @ e3)], 1))
+        return xy, "tilt"
+    if sample is not None:
+        d = d @ np.asarray(sample).T      # sample-frame components
+        d[d[:, 2] < 0] *= -1              # an axis and its opposite give the same precision
+        return _stereo(d), "sample"
+    if result.cubic:
+        s = -np.sort(-np.abs(shown), axis=1)
+        return _stereo(np.stack([s[:, 1], s[:, 2], s[:, 0]], axis=1)), "triangle"
+    d[d[:, 2] < 0] *= -1  # Friedel: the opposite axis is equivalent
+    return _stereo(d), "hemisphere"
+
+
 def survey_figure(result, crystal, n_labels=8):
     """Stereographic map of the candidate axes coloured by predicted precision.
 
@@ -312,32 +354,16 @@ def survey_figure(result, crystal, n_labels=8):
     fig = _new_figure(6.6, 5.6)
     ax = fig.subplots()
     sample = getattr(result, "sample_axes", None)
-    shown = np.array([a.member if len(getattr(a, "member", ())) else a.zone
-                      for a in result.axes], dtype=float)
     scores = np.array([a.score for a in result.axes])
-    if result.near is not None:
-        ref = crystal.basis @ np.asarray(result.near)
-        e3 = ref / np.linalg.norm(ref)
-        toward = sample[0] if sample is not None else np.array([0, 0, 1.0])
-        e1 = toward - (toward @ e3) * e3
-        if np.linalg.norm(e1) < 1e-6:
-            e1 = np.cross(e3, [0, 0, 1.0]) if abs(e3[2]) < 0.9 else np.cross(e3, [1.0, 0, 0])
-        if sample is None:
-            e1 = np.cross(e3, [0, 0, 1.0]) if abs(e3[2]) < 0.9 else np.cross(e3, [1.0, 0, 0])
-        e1 /= np.linalg.norm(e1)
-        e2 = np.cross(e3, e1)
-        d = shown @ crystal.basis.T
-        xy = np.degrees(np.stack([np.arctan2(d @ e1, d @ e3), np.arctan2(d @ e2, d @ e3)], 1))
+    xy, kind = survey_map_coordinates(result, crystal)
+    if kind == "tilt":
         t = np.linspace(0, 2 * np.pi, 200)
         ax.plot(result.max_tilt_deg * np.cos(t), result.max_tilt_deg * np.sin(t),
                 color=_DISK_EDGE, linewidth=0.8)
         ax.set_xlabel("tilt toward sample x (deg)" if sample is not None else "tilt x (deg)")
         ax.set_ylabel("tilt toward sample y (deg)" if sample is not None else "tilt y (deg)")
         title = f"axes within {result.max_tilt_deg:g} deg of [{' '.join(f'{v:g}' for v in result.near)}]"
-    elif sample is not None:
-        d = shown @ crystal.basis.T @ np.asarray(sample).T   # sample-frame components
-        d[d[:, 2] < 0] *= -1  # an axis and its opposite give the same precision
-        xy = _stereo(d)
+    elif kind == "sample":
         t = np.linspace(0, 2 * np.pi, 200)
         ax.plot(np.cos(t), np.sin(t), color=_DISK_EDGE, linewidth=0.8)
         for label, v in [("x", (1.0, 0, 0)), ("y", (0, 1.0, 0))]:
@@ -347,9 +373,7 @@ def survey_figure(result, crystal, n_labels=8):
         ax.plot([0], [0], marker="+", color=_DISK_EDGE)
         ax.set_axis_off()
         title = "sample frame, upper hemisphere about z"
-    elif result.cubic:
-        s = -np.sort(-np.abs(shown), axis=1)
-        xy = _stereo(np.stack([s[:, 1], s[:, 2], s[:, 0]], axis=1))
+    elif kind == "triangle":
         u = np.linspace(0, 1, 100)
         edge = np.concatenate([_stereo(np.stack([u, 0 * u, 1 + 0 * u], 1)),
                                _stereo(np.stack([1 + 0 * u, u, 1 + 0 * u], 1)),
@@ -362,9 +386,6 @@ def survey_figure(result, crystal, n_labels=8):
         ax.set_axis_off()
         title = "standard triangle"
     else:
-        d = shown @ crystal.basis.T
-        d[d[:, 2] < 0] *= -1  # Friedel: the opposite axis is equivalent
-        xy = _stereo(d)
         t = np.linspace(0, 2 * np.pi, 200)
         ax.plot(np.cos(t), np.sin(t), color=_DISK_EDGE, linewidth=0.8)
         ax.set_axis_off()
