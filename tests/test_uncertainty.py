@@ -217,15 +217,16 @@ def _voigt_unit(k, step):
     return e
 
 
-def test_survey_prediction_matches_monte_carlo_of_a_gls_fit(si):
-    # Si [2 3 0] at 200 kV, 6 mrad, 200 nm: the crossings of the lines whose
+@pytest.mark.parametrize("zone", [(2, 3, 0), (3, 2, 2)])
+def test_survey_prediction_matches_monte_carlo_of_a_gls_fit(si, zone):
+    # Si [2 3 0] and [3 2 2] at 200 kV, 6 mrad, 200 nm: the crossings of the lines whose
     # two-beam dip exceeds 2 %.  Data: crossings of lines each shifted by a
     # random offset (sigma_l) plus point noise (sigma_p), found by Newton on
     # the excitation errors (not lines.py).  Fit: Gauss-Newton GLS of six
     # strains, centre and rotation with this test's own Jacobian and dense
     # covariance.  The survey's predicted sigma must match the fit's scatter.
     sigma_p, sigma_l, thickness = 0.005, 0.008, 200.0
-    pattern = predict(si, (2, 3, 0), 200, 6.0)
+    pattern = predict(si, zone, 200, 6.0)
     # visibility by the closed form sin^2(pi t / xi) of the two-beam rocking
     # curve at the Bragg condition (Hirsch et al. 1965), valid while t < xi/2
     xi = np.array([kinematic_extinction_distance_nm(si, h, 200) for h in pattern.hkl])
@@ -239,7 +240,7 @@ def test_survey_prediction_matches_monte_carlo_of_a_gls_fit(si):
     ib = np.array([col[int(b)] for b in pairs[:, 1]])
     hkl_a, hkl_b = pattern.hkl[pairs[:, 0]].astype(float), pattern.hkl[pairs[:, 1]].astype(float)
     start = pattern.crossing_mrad[keep]
-    zone, x_axis, K, A = (2, 3, 0), pattern.x_axis, pattern.beam.wave_number, si.basis
+    x_axis, K, A = pattern.x_axis, pattern.beam.wave_number, si.basis
     n_p, n_l = len(pairs), len(lines)
     zero = np.zeros(n_p)
 
@@ -271,7 +272,7 @@ def test_survey_prediction_matches_monte_carlo_of_a_gls_fit(si):
     v_inv = np.linalg.inv(dense_v)
     crb = np.linalg.inv(jac.T @ v_inv @ jac)[:6, :6]          # this test's own bound
 
-    predicted = survey_axis(si, (2, 3, 0), sigma_mrad=sigma_p, line_sigma_mrad=sigma_l,
+    predicted = survey_axis(si, zone, sigma_mrad=sigma_p, line_sigma_mrad=sigma_l,
                             thickness_nm=thickness, members=False)
     assert predicted.n_crossings == n_p
     # two numerical routes to one bound: finite-difference steps, ~1e-3
@@ -296,7 +297,7 @@ def test_survey_prediction_matches_monte_carlo_of_a_gls_fit(si):
     # acceptance the error model is held to
     np.testing.assert_allclose(predicted.sigma_strain / scatter, 1.0, atol=0.2)
     # the independent-crossing model would be far too optimistic here
-    naive = survey_axis(si, (2, 3, 0), sigma_mrad=sigma_p, line_sigma_mrad=0.0,
+    naive = survey_axis(si, zone, sigma_mrad=sigma_p, line_sigma_mrad=0.0,
                         thickness_nm=thickness, members=False).sigma_strain
     assert np.all(scatter / naive > 1.5)
 
