@@ -538,8 +538,8 @@ class LineSigmaEstimate:
         the line term explains.
     determined : bool
         Whether the data can separate a line offset from point noise: at
-        least two lines, each observed at least twice, and more degrees of
-        freedom than lines.  When false the estimate is returned but should
+        least two lines, each loading at least two residuals, and more
+        degrees of freedom than lines.  When false the estimate is returned but should
         be replaced by a value the user gives.
     """
 
@@ -580,7 +580,7 @@ def _reml_objective(jacobian, residuals, cov):
     r = residuals
     if jacobian is not None and jacobian.shape[1]:
         info, v_inv_j = _information(jacobian, cov)
-        sign, logdet_info = np.linalg.slogdet(info)
+        _, logdet_info = np.linalg.slogdet(info)
         value += logdet_info
         step = np.linalg.lstsq(info, v_inv_j.T @ residuals, rcond=None)[0]
         r = residuals - jacobian @ step
