@@ -83,9 +83,10 @@ class ScanPlan:
         The predicted lines that are sampled.
     point_line : ndarray (n_points,)
         Index into ``hkl`` of each sample point.
-    coords : ndarray (2, n_points * n_steps), float32
-        Row and column of every profile sample (for
-        :func:`scipy.ndimage.map_coordinates`).
+    band : dict of ndarray
+        The pixels of a short band across the line at each point, and the
+        profile bin each falls into by its exact distance from the locus
+        (see :func:`_band_pixels`).
     steps_mrad : ndarray (n_steps,)
         Positions along the profile, mrad, 0 at the calibrated locus.
     window_mrad : ndarray (n_points,)
@@ -114,7 +115,7 @@ class ScanPlan:
 
     hkl: np.ndarray
     point_line: np.ndarray
-    coords: np.ndarray
+    band: dict
     steps_mrad: np.ndarray
     offset0_mrad: np.ndarray
     jacobian: np.ndarray
@@ -124,6 +125,7 @@ class ScanPlan:
     refine_window_mrad: float
     window_mrad: np.ndarray
     smooth_samples: float
+    fit_half_width_mrad: float
     systematic_covariance: np.ndarray
     sample_rotation: np.ndarray | None
     settings: dict = field(default_factory=dict)
@@ -140,7 +142,7 @@ class ScanPlan:
     def fingerprint(self):
         """A short hash of everything that decides the per-pattern result."""
         h = hashlib.sha256()
-        for a in (self.hkl, self.point_line, self.coords, self.jacobian, self.offset0_mrad,
+        for a in (self.hkl, self.point_line, self.band["pixel"], self.jacobian, self.offset0_mrad,
                   self.systematic_covariance):
             h.update(np.ascontiguousarray(a).tobytes())
         h.update(json.dumps(self.settings, sort_keys=True, default=str).encode())
@@ -172,7 +174,8 @@ def _voigt_rotation(axes):
 
 def plan_scan(crystal, zone, calibration, shape, *, disk_mrad, x_axis=None,
               min_strength=0.1, points_per_line=12, search_mrad=0.3, line_width_mrad=0.06,
-              inner_potential=False, systematic_covariance=None, sample_axes=None):
+              inner_potential=False, systematic_covariance=None, sample_axes=None,
+              reference=None):
     """Prepare the per-pattern fit of a zone axis with a calibration held.
 
     Parameters
@@ -205,6 +208,15 @@ def plan_scan(crystal, zone, calibration, shape, *, disk_mrad, x_axis=None,
         estimate); zero when not given.
     sample_axes : ndarray (3, 3), optional
         Rows of a sample frame (:func:`laueline.strain.sample_axes`).
+    reference : ndarray (rows, cols), optional
+        A pattern of the unstrained reference region (for example the one
+        the calibration was made on).  Its measured line positions replace
+        the predicted ones as the zero of every profile, so strain is
+        measured relative to it and whatever shifts a line in the same way
+        in both (dynamical shifts at a similar thickness, a neighbour's
+        tail, detection bias) cancels.  The reference's own measurement
+        noise is common to every pattern: its covariance is added to the
+        systematic part.
 
     Returns
     -------
@@ -254,8 +266,8 @@ def plan_scan(crystal, zone, calibration, shape, *, disk_mrad, x_axis=None,
     dist_all = dist_all.reshape(n_lines, n_lines, n_cand)
     dist_all[np.arange(n_lines), np.arange(n_lines)] = np.inf
     clearance_mrad = dist_all.min(axis=0) * 1e3
-    narrow = max(1.5 * line_width_mrad, 0.3 / float(det.scale_px_per_mrad))
-    clear = ((clearance_mrad > narrow + 2 * line_width_mrad)
+    narrow = max(0.75 * line_width_mrad, 1.5 / float(det.scale_px_per_mrad))
+    clear = ((clearance_mrad > narrow + line_width_mrad)
              & (np.hypot(t[..., 0], t[..., 1]) < radius))
     keep_line = clear.sum(axis=1) >= 3
     if keep_line.sum() < 4:
@@ -270,7 +282,7 @@ def plan_scan(crystal, zone, calibration, shape, *, disk_mrad, x_axis=None,
     chosen = np.array(chosen)
     line_old = chosen[:, 0]
     t0 = t[chosen[:, 0], chosen[:, 1]]
-    window = np.minimum(clearance_mrad[chosen[:, 0], chosen[:, 1]] - 2 * line_width_mrad,
+    window = np.minimum(clearance_mrad[chosen[:, 0], chosen[:, 1]] - line_width_mrad,
                         search_mrad)
     kept_lines = np.unique(line_old)
     point_line = np.searchsorted(kept_lines, line_old)
@@ -289,18 +301,18 @@ def plan_scan(crystal, zone, calibration, shape, *, disk_mrad, x_axis=None,
     t_mrad = t0 * 1e3
     prof = t_mrad[:, None, :] + steps[None, :, None] * nvec[:, None, :]
     px = det.to_pixels(prof)  # (n_points, n_steps, 2) as (x, y)
-    coords = np.stack([px[..., 1].ravel(), px[..., 0].ravel()]).astype(np.float32)
-    inside = ((coords[0] >= 0) & (coords[0] <= rows - 1) & (coords[1] >= 0)
-              & (coords[1] <= cols - 1))
-    if not np.all(inside):
-        keep = inside.reshape(len(t0), -1).all(axis=1)
-        if keep.sum() < 12:
-            raise InputError("the disk of the calibration lies mostly outside a pattern of "
-                             f"{cols} x {rows} px")
-        point_line, t_mrad, nvec, px = point_line[keep], t_mrad[keep], nvec[keep], px[keep]
-        window = window[keep]
-        coords = np.stack([px[..., 1].ravel(), px[..., 0].ravel()]).astype(np.float32)
+    inside = ((px[..., 0] >= 0) & (px[..., 0] <= cols - 1) & (px[..., 1] >= 0)
+              & (px[..., 1] <= rows - 1)).all(axis=1)
+    if inside.sum() < 12:
+        raise InputError("the disk of the calibration lies mostly outside a pattern of "
+                         f"{cols} x {rows} px")
+    point_line, t_mrad, nvec, px = (point_line[inside], t_mrad[inside], nvec[inside],
+                                    px[inside])
+    window = window[inside]
     along_px = np.linalg.norm(px[:, 1] - px[:, 0], axis=1) / step
+    point_params = type(params)(params.g_perp[point_line], params.g_perp_norm[point_line],
+                                params.gz[point_line], params.c[point_line])
+    band = _band_pixels(t_mrad, nvec, point_params, det, steps, (rows, cols), half_length_px=4)
 
     # line positions along the fixed profiles as functions of the parameters:
     # the pixel of the calibrated point and of one a little further along the
@@ -342,12 +354,63 @@ def plan_scan(crystal, zone, calibration, shape, *, disk_mrad, x_axis=None,
         "shape": [rows, cols],
         "sample_axes": None if sample_axes is None else np.asarray(sample_axes).tolist(),
     }
-    return ScanPlan(
-        hkl=hkl, point_line=point_line, coords=coords, steps_mrad=steps,
+    plan = ScanPlan(
+        hkl=hkl, point_line=point_line, band=band, steps_mrad=steps,
         offset0_mrad=offset0, jacobian=jac, px_per_mrad_along=along_px, shape=(rows, cols),
         search_mrad=float(search_mrad), refine_window_mrad=narrow, window_mrad=window,
         smooth_samples=max(0.5, 0.25 * line_width_mrad / step),
+        fit_half_width_mrad=max(0.5 * line_width_mrad, 1.0 / scale),
         systematic_covariance=systematic, sample_rotation=rotation, settings=settings)
+    if reference is not None:
+        plan = _relative_to_reference(plan, reference)
+    return plan
+
+
+def _relative_to_reference(plan, reference):
+    """The plan with the reference pattern's measured positions as profile zeros."""
+    from dataclasses import replace
+
+    reference = np.asarray(reference, dtype=np.float32)
+    if reference.shape != tuple(plan.shape):
+        raise InputError(f"the reference pattern is {reference.shape[1]} x {reference.shape[0]}"
+                         f" px, the scan's patterns {plan.shape[1]} x {plan.shape[0]} px")
+    measured = _measure(reference, plan, 4.0)
+    if isinstance(measured, str):
+        raise InputError(f"the reference pattern cannot be measured: {measured}")
+    fit = fit_pattern(reference, plan)
+    if not fit.ok:
+        raise InputError(f"the reference pattern does not fit the calibration: {fit.message}")
+    pos, _, use, _ = measured
+    keep = np.flatnonzero(use)
+    n_steps = len(plan.steps_mrad)
+    new_index = np.full(plan.n_points, -1)
+    new_index[keep] = np.arange(len(keep))
+    band = plan.band
+    pixel_kept = new_index[band["point"]] >= 0
+    point = new_index[band["point"][pixel_kept]]
+    flat_bin = point * n_steps + band["bin"][pixel_kept] % n_steps
+    rows = np.arange(plan.n_points * n_steps).reshape(plan.n_points, n_steps)[keep].ravel()
+    empty_old = np.zeros(plan.n_points * n_steps, bool)
+    empty_old[band["empty"]] = True
+    remap = np.full(plan.n_points * n_steps, -1)
+    remap[rows] = np.arange(len(rows))
+    empty_kept = empty_old[rows]
+    old_empty_rows = rows[empty_kept]
+    order = np.searchsorted(band["empty"], old_empty_rows)
+    new_band = {"pixel": band["pixel"][pixel_kept], "bin": flat_bin, "s": band["s"][pixel_kept],
+                "point": point, "inverse_count": band["inverse_count"][rows],
+                "empty": remap[old_empty_rows], "left": remap[band["left"][order]],
+                "right": remap[band["right"][order]],
+                "weight_right": band["weight_right"][order]}
+    used_lines = np.unique(plan.point_line[keep])
+    settings = dict(plan.settings, reference="measured")
+    return replace(plan, hkl=plan.hkl[used_lines],
+                   point_line=np.searchsorted(used_lines, plan.point_line[keep]),
+                   band=new_band, offset0_mrad=pos[keep], jacobian=plan.jacobian[keep],
+                   px_per_mrad_along=plan.px_per_mrad_along[keep],
+                   window_mrad=plan.window_mrad[keep],
+                   systematic_covariance=plan.systematic_covariance
+                   + fit.covariance_statistical, settings=settings)
 
 
 # ---------------------------------------------------------------------------
@@ -393,6 +456,129 @@ class PatternFit:
     @property
     def sigma(self):
         return np.sqrt(np.diag(self.covariance))
+
+
+def _band_pixels(t_mrad, nvec, params, det, steps, shape, half_length_px=4):
+    """Pixels of a band across the locus at each point, binned by distance.
+
+    Every pixel centre within ``half_length_px`` of the normal through a
+    point, along the line, and within the profile's reach across it is
+    given the bin of its signed distance from the exact (curved) locus
+    (:func:`laueline.lines.locus_distances`, through the detector mapping).  A line crossing the pixel grid at an angle samples
+    every sub-pixel distance, so the binned profile is finer than the
+    pixels and free of the pull towards pixel centres that interpolating a
+    narrow line suffers (the slanted-edge principle).  Bins no pixel falls
+    into are filled by linear interpolation from their neighbours.
+    """
+    rows, cols = shape
+    n_points, n_steps = len(t_mrad), len(steps)
+    step = steps[1] - steps[0]
+    centre_px = det.to_pixels(t_mrad)
+    normal_px = det.to_pixels(t_mrad + nvec) - centre_px
+    normal_px /= np.linalg.norm(normal_px, axis=1)[:, None]
+    along_px = np.stack([-normal_px[:, 1], normal_px[:, 0]], axis=1)
+    reach_px = float(np.max(np.abs(steps))) * float(det.scale_px_per_mrad) * 1.05
+    radius = int(math.ceil(math.hypot(reach_px, half_length_px))) + 1
+    grid = np.arange(-radius, radius + 1)
+    gx, gy = np.meshgrid(grid, grid)
+    base = np.round(centre_px)
+    pix = base[:, None, :] + np.stack([gx.ravel(), gy.ravel()], axis=1)[None]
+    rel = pix - centre_px[:, None, :]
+    u = np.sum(rel * along_px[:, None, :], axis=2)
+    from .lines import locus_distances
+
+    s = locus_distances(det.to_mrad(pix) * 1e-3, params) * 1e3
+    s *= np.sign(np.sum(params.g_perp * nvec, axis=1))[:, None]
+    b = np.round((s - steps[0]) / step).astype(np.int64)
+    keep = ((np.abs(u) <= half_length_px) & (b >= 0) & (b < n_steps)
+            & (pix[..., 0] >= 0) & (pix[..., 0] <= cols - 1)
+            & (pix[..., 1] >= 0) & (pix[..., 1] <= rows - 1))
+    point = np.broadcast_to(np.arange(n_points)[:, None], keep.shape)[keep]
+    flat_bin = point * n_steps + b[keep]
+    pixel = (pix[..., 1][keep] * cols + pix[..., 0][keep]).astype(np.int64)
+    count = np.bincount(flat_bin, minlength=n_points * n_steps).astype(float)
+    filled = count > 0
+    index = np.arange(n_points * n_steps)
+    # nearest filled bins to the left and right within the same profile
+    left = np.maximum.accumulate(np.where(filled, index, -1))
+    right = np.minimum.accumulate(np.where(filled, index, n_points * n_steps)[::-1])[::-1]
+    same_row = lambda j: (j >= 0) & (j < n_points * n_steps) & (  # noqa: E731
+        np.clip(j, 0, n_points * n_steps - 1) // n_steps == index // n_steps)
+    ok_left, ok_right = same_row(left), same_row(right)
+    left = np.where(ok_left, left, np.where(ok_right, right, index))
+    right = np.where(ok_right, right, left)
+    span = np.maximum(right - left, 1)
+    weight_right = np.where(right > left, (index - left) / span, 0.0)
+    return {"pixel": pixel, "bin": flat_bin, "s": s[keep], "point": point.astype(np.int64), "inverse_count": np.where(filled, 1 / np.maximum(count, 1), 0.0),
+            "empty": np.flatnonzero(~filled), "left": left[~filled], "right": right[~filled],
+            "weight_right": weight_right[~filled]}
+
+
+def _band_profiles(image, band, n_points, n_steps):
+    """Mean intensity in every distance bin of every band, (n_points, n_steps)."""
+    values = image.ravel()[band["pixel"]]
+    profile = np.bincount(band["bin"], weights=values, minlength=n_points * n_steps)
+    profile *= band["inverse_count"]
+    if len(band["empty"]):
+        w = band["weight_right"]
+        profile[band["empty"]] = (profile[band["left"]] * (1 - w) + profile[band["right"]] * w)
+    return profile.reshape(n_points, n_steps)
+
+
+def _pixel_minima(band, values, level, coarse, half_width, n_points):
+    """Deficit minima refined on the pixels themselves.
+
+    A parabola in the exact distance s is fitted by least squares to the
+    relative intensities of the pixels of each band within ``half_width``
+    of the current estimate, re-centred three times.  Working on pixels at
+    their true distances (rather than on binned or interpolated profiles)
+    avoids any pull of the minimum towards pixel centres or bin centres.
+
+    Returns position (mrad) and its 1-sigma from the scatter of the pixels
+    about the parabola; NaN where the fit fails.
+    """
+    point, s = band["point"], band["s"]
+    y = values / level[point]
+    centre = np.where(np.isfinite(coarse), coarse, 0.0)
+    # a smooth background sloping across the line pulls its minimum sideways:
+    # divide by the straight line through the wings (beyond three half-widths)
+    d = s - centre[point]
+    wing = np.abs(d) > 3 * half_width
+    n_w = np.bincount(point[wing], minlength=n_points).astype(float)
+    m_d = np.bincount(point[wing], d[wing], n_points) / np.maximum(n_w, 1)
+    m_y = np.bincount(point[wing], y[wing], n_points) / np.maximum(n_w, 1)
+    dd = d[wing] - m_d[point[wing]]
+    var_d = np.bincount(point[wing], dd ** 2, n_points)
+    cov_dy = np.bincount(point[wing], dd * (y[wing] - m_y[point[wing]]), n_points)
+    slope = np.where((n_w >= 8) & (var_d > 0), cov_dy / np.where(var_d > 0, var_d, 1.0), 0.0)
+    base = np.where(n_w >= 8, m_y - slope * m_d, 1.0)
+    base = np.where(base > 0, base, 1.0)
+    y = y / (base[point] + slope[point] * d) * base[point]
+    ok = np.isfinite(coarse)
+    sigma = np.full(n_points, np.nan)
+    for _ in range(3):
+        x = (s - centre[point]) / half_width
+        inside = np.abs(x) <= 1.0
+        p_in, x_in, y_in = point[inside], x[inside], y[inside]
+        sums = np.stack([np.bincount(p_in, x_in ** k, n_points) for k in range(5)])
+        rhs = np.stack([np.bincount(p_in, y_in * x_in ** k, n_points) for k in range(3)])
+        normal = np.stack([sums[0:3], sums[1:4], sums[2:5]], axis=0).transpose(2, 0, 1)
+        enough = sums[0] >= 6
+        normal[~enough] = np.eye(3)
+        coef = np.linalg.solve(normal, rhs.T[..., None])[..., 0]
+        b, c = coef[:, 1], coef[:, 2]
+        good = enough & (c > 0)
+        shift = np.where(good, np.clip(-b / (2 * np.where(good, c, 1.0)), -0.5, 0.5), 0.0)
+        centre = centre + shift * half_width
+        ok &= good
+    resid = y_in - (coef[p_in, 0] + coef[p_in, 1] * x_in + coef[p_in, 2] * x_in ** 2)
+    dof = np.maximum(sums[0] - 3, 1)
+    var = np.bincount(p_in, resid ** 2, n_points) / dof
+    inv = np.linalg.inv(normal)
+    with np.errstate(divide="ignore", invalid="ignore"):
+        sigma = np.sqrt(var * inv[:, 1, 1]) / (2 * np.abs(c)) * half_width
+    ok &= (np.abs(shift) < 0.05) & np.isfinite(sigma)
+    return np.where(ok, centre, np.nan), np.where(ok, sigma, np.nan)
 
 
 def _sample_rows(values, index):
@@ -520,6 +706,59 @@ def _robust_linear_fit(J, y, sigma, use, floor):
     return theta, cov, use
 
 
+def _measure(image, plan, min_snr):
+    """Line positions along every profile of one pattern.
+
+    Returns (positions, sigmas, used, theta) with positions and sigmas in
+    mrad along the profiles, ``used`` the points that passed every check,
+    and theta the linear-fit parameters; or a message (str) on failure.
+    """
+    n_par = len(_PARAMETERS)
+    profiles = _band_profiles(image, plan.band, plan.n_points, len(plan.steps_mrad))
+    pixels = image.ravel()[plan.band["pixel"]].astype(float)
+    level = np.median(profiles, axis=1)
+    level = np.where(level > 0, level, 1.0)
+    steps = plan.steps_mrad
+    J, s0 = plan.jacobian, plan.offset0_mrad
+
+    floor = 2.0 * (steps[1] - steps[0])
+    # first stage: one shift per line from the line's profiles averaged (a
+    # strain of 1e-3 moves a line nearly rigidly; neighbours that cross some
+    # of its profiles are smeared out by the average), searched widely
+    counts = np.bincount(plan.point_line, minlength=plan.n_lines).astype(float)
+    incidence = np.zeros((plan.n_lines, plan.n_points))
+    incidence[plan.point_line, np.arange(plan.n_points)] = 1.0 / counts[plan.point_line]
+    line_profiles = incidence @ (profiles / level[:, None])
+    J_line, s0_line = incidence @ J, incidence @ s0
+    pos, sig, snr = _locate_minima(line_profiles, steps, s0_line, plan.search_mrad,
+                                   plan.smooth_samples)
+    use = np.isfinite(pos) & (snr >= min_snr)
+    theta, cov_theta, use = _robust_linear_fit(J_line, pos - s0_line, sig, use, floor)
+    if theta is None:
+        return f"only {int(use.sum())} lines found in the first search"
+    line_found = use  # a point counts only on a line whose averaged profile shows it
+    predicted = s0 + J @ theta
+    predicted_sigma = np.sqrt(np.maximum(np.sum((J @ cov_theta) * J, axis=1), 0))
+    use = np.zeros(plan.n_points, bool)
+    for _ in range(4):
+        eligible = 3.0 * predicted_sigma + 0.5 * floor <= plan.window_mrad
+        pos, sig, snr = _locate_minima(profiles, steps, predicted, plan.window_mrad,
+                                       plan.smooth_samples)
+        pos, sig = _pixel_minima(plan.band, pixels, level, pos, plan.fit_half_width_mrad,
+                                 plan.n_points)
+        previous = use
+        use = (eligible & line_found[plan.point_line] & np.isfinite(pos)
+               & (snr >= 0.5 * min_snr))
+        theta, cov_theta, use = _robust_linear_fit(J, pos - s0, sig, use, floor)
+        if theta is None:
+            return f"only {int(use.sum())} line points found"
+        predicted = s0 + J @ theta
+        predicted_sigma = np.sqrt(np.maximum(np.sum((J @ cov_theta) * J, axis=1), 0))
+        if np.array_equal(use, previous):
+            break
+    return pos, sig, use, theta
+
+
 def fit_pattern(image, plan, *, min_snr=4.0):
     """Strain of one pattern with the calibration held.
 
@@ -534,8 +773,6 @@ def fit_pattern(image, plan, *, min_snr=4.0):
     -------
     PatternFit
     """
-    from scipy.ndimage import map_coordinates
-
     image = np.asarray(image, dtype=np.float32)
     n_par = len(_PARAMETERS)
     failed = PatternFit(np.full(6, np.nan), np.full((6, 6), np.nan), plan.systematic_covariance,
@@ -545,47 +782,12 @@ def fit_pattern(image, plan, *, min_snr=4.0):
         return failed
     if not np.all(np.isfinite(image)):
         image = np.nan_to_num(image, nan=0.0, posinf=0.0, neginf=0.0)
-    samples = map_coordinates(image, plan.coords, order=3, mode="nearest")
-    profiles = samples.reshape(plan.n_points, -1).astype(float)
-    steps = plan.steps_mrad
-    J, s0 = plan.jacobian, plan.offset0_mrad
-
-    floor = 2.0 * (steps[1] - steps[0])
-    # first stage: one shift per line from the line's profiles averaged (a
-    # strain of 1e-3 moves a line nearly rigidly; neighbours that cross some
-    # of its profiles are smeared out by the average), searched widely
-    counts = np.bincount(plan.point_line, minlength=plan.n_lines).astype(float)
-    incidence = np.zeros((plan.n_lines, plan.n_points))
-    incidence[plan.point_line, np.arange(plan.n_points)] = 1.0 / counts[plan.point_line]
-    line_profiles = incidence @ (profiles / np.median(profiles, axis=1, keepdims=True))
-    J_line, s0_line = incidence @ J, incidence @ s0
-    pos, sig, snr = _locate_minima(line_profiles, steps, s0_line, plan.search_mrad,
-                                   plan.smooth_samples)
-    use = np.isfinite(pos) & (snr >= min_snr)
-    theta, cov_theta, use = _robust_linear_fit(J_line, pos - s0_line, sig, use, floor)
-    if theta is None:
-        failed.message = f"only {int(use.sum())} lines found in the first search"
+    measured = _measure(image, plan, min_snr)
+    if isinstance(measured, str):
+        failed.message = measured
         return failed
-    line_found = use  # a point counts only on a line whose averaged profile shows it
-    predicted = s0 + J @ theta
-    predicted_sigma = np.sqrt(np.maximum(np.sum((J @ cov_theta) * J, axis=1), 0))
-    use = np.zeros(plan.n_points, bool)
-    for _ in range(4):
-        eligible = 3.0 * predicted_sigma + 0.5 * floor <= plan.window_mrad
-        pos, sig, snr = _locate_minima(profiles, steps, predicted, plan.window_mrad,
-                                       plan.smooth_samples)
-        previous = use
-        use = (eligible & line_found[plan.point_line] & np.isfinite(pos)
-               & (snr >= 0.5 * min_snr))
-        theta, cov_theta, use = _robust_linear_fit(J, pos - s0, sig, use, floor)
-        if theta is None:
-            failed.message = f"only {int(use.sum())} line points found"
-            return failed
-        predicted = s0 + J @ theta
-        predicted_sigma = np.sqrt(np.maximum(np.sum((J @ cov_theta) * J, axis=1), 0))
-        if np.array_equal(use, previous):
-            break
-
+    pos, sig, use, theta = measured
+    J, s0 = plan.jacobian, plan.offset0_mrad
     lines_used = np.unique(plan.point_line[use])
     if len(lines_used) < 4:
         failed.message = f"only {len(lines_used)} lines found"
@@ -1098,7 +1300,17 @@ def _prepare_store(store, scan, plan, fingerprint, regions, force):
 
         shutil.rmtree(path) if path.is_dir() else path.unlink()
     template = _template(scan, plan, _attributes(scan, plan, fingerprint))
-    template.to_zarr(store, mode="w-", compute=False, consolidated=False)
+    # laid out beside the final name and renamed into place, so that a run
+    # killed while creating it leaves no half-made store behind
+    staging = path.with_name(f".{path.name}.{os.getpid()}.part")
+    try:
+        template.to_zarr(str(staging), mode="w", compute=False, consolidated=False)
+        os.rename(staging, path)
+    finally:
+        if staging.exists():
+            import shutil
+
+            shutil.rmtree(staging, ignore_errors=True)
     return regions
 
 
