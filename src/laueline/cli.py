@@ -370,10 +370,16 @@ def _cmd_map(args):
     x_axis = args.x_axis if args.x_axis is not None else doc.get("x_axis")
     axes, frame_text = _sample_frame(args, crystal)
     scan = open_scan(args.scan, chunk_patterns=args.chunk_patterns, step_nm=args.step_nm)
+    reference = _map_reference(args, scan)
     plan = plan_scan(crystal, args.zone, (kv, detector), scan.pattern_shape,
                      disk_mrad=float(disk_mrad), x_axis=x_axis, min_strength=args.min_strength,
-                     search_mrad=args.search_mrad, inner_potential=args.inner_potential,
-                     sample_axes=axes)
+                     search_mrad=args.search_mrad, line_width_mrad=args.line_width_mrad,
+                     inner_potential=args.inner_potential, sample_axes=axes,
+                     reference=reference)
+    if reference is None:
+        print("caution: no --reference pattern: line positions are measured against the "
+              "kinematic prediction, so every line's dynamical shift enters the strain; "
+              "give the unstrained reference pattern to measure relative to it")
     print(f"scan {scan.source}: {scan.n_patterns} patterns of {scan.pattern_shape[1]} x "
           f"{scan.pattern_shape[0]} px, {' x '.join(map(str, scan.nav_shape))} "
           f"({', '.join(scan.nav_dims)}); {plan.n_lines} lines, {plan.n_points} profiles per "
@@ -389,6 +395,26 @@ def _cmd_map(args):
         written.append(args.figure)
     print("\nwrote " + ", ".join(str(p) for p in written))
     return 0
+
+
+def _map_reference(args, scan):
+    """The reference pattern asked for, as an array, or None."""
+    import numpy as np
+
+    if args.reference is not None and args.reference_index is not None:
+        raise InputError("give either --reference or --reference-index, not both")
+    if args.reference is not None:
+        from .images.io import read_image
+
+        return read_image(args.reference)[0]
+    if args.reference_index is not None:
+        index = tuple(args.reference_index)
+        if len(index) != len(scan.nav_shape) or any(
+                not 0 <= i < n for i, n in zip(index, scan.nav_shape)):
+            raise InputError(f"--reference-index {' '.join(map(str, index))} is not a pattern "
+                             f"of a scan of {' x '.join(map(str, scan.nav_shape))}")
+        return np.asarray(scan.data[index].compute(), dtype=np.float32)
+    return None
 
 
 def _check_calibration_matches(doc, crystal, args):
@@ -638,6 +664,14 @@ def build_parser():
                    help="convergence semi-angle in mrad (default: the calibration's)")
     p.add_argument("--min-strength", type=float, default=0.1,
                    help="weakest line sampled, relative to the strongest (0.1)")
+    p.add_argument("--reference", metavar="PATTERN",
+                   help="image of the unstrained reference region (the calibration's "
+                        "pattern): strain is measured relative to its line positions")
+    p.add_argument("--reference-index", type=int, nargs="+", metavar="I",
+                   help="use this pattern of the scan as the reference (one index for a "
+                        "line scan, row and column for a map)")
+    p.add_argument("--line-width-mrad", type=float, default=0.06,
+                   help="typical full width of a line at half depth, mrad (0.06)")
     p.add_argument("--search-mrad", type=float, default=0.3,
                    help="largest line shift searched for, mrad (0.3, about a strain of 2e-3)")
     p.add_argument("--step-nm", type=float, help="scan step in nm (overrides the file's)")

@@ -312,7 +312,11 @@ def plan_scan(crystal, zone, calibration, shape, *, disk_mrad, x_axis=None,
     along_px = np.linalg.norm(px[:, 1] - px[:, 0], axis=1) / step
     point_params = type(params)(params.g_perp[point_line], params.g_perp_norm[point_line],
                                 params.gz[point_line], params.c[point_line])
-    band = _band_pixels(t_mrad, nvec, point_params, det, steps, (rows, cols), half_length_px=4)
+    # bands along the line cover about half the gap between neighbouring points
+    spacing_px = 2 * 0.9 * disk_mrad * float(det.scale_px_per_mrad) / int(points_per_line)
+    half_length = float(np.clip(0.25 * spacing_px, 4.0, 12.0))
+    band = _band_pixels(t_mrad, nvec, point_params, det, steps, (rows, cols),
+                        half_length_px=half_length)
 
     # line positions along the fixed profiles as functions of the parameters:
     # the pixel of the calibrated point and of one a little further along the
@@ -556,12 +560,18 @@ def _pixel_minima(band, values, level, coarse, half_width, n_points):
     y = y / (base[point] + slope[point] * d) * base[point]
     ok = np.isfinite(coarse)
     sigma = np.full(n_points, np.nan)
+    near = np.abs(d) <= 1.6 * half_width  # the pixels any re-centred window can reach
+    point, s, y = point[near], s[near], y[near]
     for _ in range(3):
         x = (s - centre[point]) / half_width
         inside = np.abs(x) <= 1.0
         p_in, x_in, y_in = point[inside], x[inside], y[inside]
-        sums = np.stack([np.bincount(p_in, x_in ** k, n_points) for k in range(5)])
-        rhs = np.stack([np.bincount(p_in, y_in * x_in ** k, n_points) for k in range(3)])
+        x2 = x_in * x_in
+        sums = np.stack([np.bincount(p_in, None, n_points), np.bincount(p_in, x_in, n_points),
+                         np.bincount(p_in, x2, n_points), np.bincount(p_in, x2 * x_in, n_points),
+                         np.bincount(p_in, x2 * x2, n_points)])
+        rhs = np.stack([np.bincount(p_in, y_in, n_points), np.bincount(p_in, y_in * x_in, n_points),
+                        np.bincount(p_in, y_in * x2, n_points)])
         normal = np.stack([sums[0:3], sums[1:4], sums[2:5]], axis=0).transpose(2, 0, 1)
         enough = sums[0] >= 6
         normal[~enough] = np.eye(3)
@@ -571,6 +581,8 @@ def _pixel_minima(band, values, level, coarse, half_width, n_points):
         shift = np.where(good, np.clip(-b / (2 * np.where(good, c, 1.0)), -0.5, 0.5), 0.0)
         centre = centre + shift * half_width
         ok &= good
+        if np.all(np.abs(shift[ok]) < 0.01):
+            break
     resid = y_in - (coef[p_in, 0] + coef[p_in, 1] * x_in + coef[p_in, 2] * x_in ** 2)
     dof = np.maximum(sums[0] - 3, 1)
     var = np.bincount(p_in, resid ** 2, n_points) / dof
