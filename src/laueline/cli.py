@@ -662,8 +662,8 @@ def build_parser():
     p.add_argument("--out", required=True, metavar="RESULT.zarr", help="result store")
     p.add_argument("--disk-mrad", type=float,
                    help="convergence semi-angle in mrad (default: the calibration's)")
-    p.add_argument("--min-strength", type=float, default=0.1,
-                   help="weakest line sampled, relative to the strongest (0.1)")
+    p.add_argument("--min-strength", type=float, default=0.05,
+                   help="weakest line sampled, relative to the strongest (0.05)")
     p.add_argument("--reference", metavar="PATTERN",
                    help="image of the unstrained reference region (the calibration's "
                         "pattern): strain is measured relative to its line positions")

@@ -173,7 +173,7 @@ def _voigt_rotation(axes):
 
 
 def plan_scan(crystal, zone, calibration, shape, *, disk_mrad, x_axis=None,
-              min_strength=0.1, points_per_line=12, search_mrad=0.3, line_width_mrad=0.06,
+              min_strength=0.05, points_per_line=12, search_mrad=0.3, line_width_mrad=0.06,
               inner_potential=False, systematic_covariance=None, sample_axes=None,
               reference=None):
     """Prepare the per-pattern fit of a zone axis with a calibration held.
