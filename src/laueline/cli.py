@@ -361,6 +361,95 @@ def _cmd_detect(args):
     return 0
 
 
+def _cmd_map(args):
+    import json
+    from pathlib import Path
+
+    from . import report
+    from .maps import map_summary_text, open_scan, plan_scan, map_strain
+    from .refine import calibration_from_document
+
+    report.check_outputs([], args.force, args.figure)
+    if Path(args.out).suffix.lower() != ".zarr":
+        raise InputError(f"--out {args.out}: the result store must end in .zarr")
+    if Path(args.out).exists() and not Path(args.out).is_dir():
+        raise InputError(f"--out {args.out} exists and is not a zarr store")
+    crystal = _load_crystal(args)
+    try:
+        doc = json.loads(Path(args.calibration).read_text(encoding="utf-8"))
+    except (OSError, UnicodeDecodeError, ValueError) as exc:
+        raise InputError(f"cannot read the calibration {args.calibration}: "
+                         f"{str(exc).splitlines()[0]}") from None
+    kv, detector = calibration_from_document(doc)
+    _check_calibration_matches(doc, crystal, args)
+    disk_mrad = args.disk_mrad if args.disk_mrad is not None else doc.get("disk_mrad")
+    if disk_mrad is None:
+        raise InputError("the calibration does not record the disk radius; give --disk-mrad")
+    x_axis = args.x_axis if args.x_axis is not None else doc.get("x_axis")
+    axes, frame_text = _sample_frame(args, crystal)
+    scan = open_scan(args.scan, chunk_patterns=args.chunk_patterns, step_nm=args.step_nm)
+    reference = _map_reference(args, scan)
+    plan = plan_scan(crystal, args.zone, (kv, detector), scan.pattern_shape,
+                     disk_mrad=float(disk_mrad), x_axis=x_axis, min_strength=args.min_strength,
+                     search_mrad=args.search_mrad, line_width_mrad=args.line_width_mrad,
+                     inner_potential=args.inner_potential, sample_axes=axes,
+                     reference=reference)
+    if reference is None:
+        print("caution: no --reference pattern: line positions are measured against the "
+              "kinematic prediction, so every line's dynamical shift enters the strain; "
+              "give the unstrained reference pattern to measure relative to it")
+    print(f"scan {scan.source}: {scan.n_patterns} patterns of {scan.pattern_shape[1]} x "
+          f"{scan.pattern_shape[0]} px, {' x '.join(map(str, scan.nav_shape))} "
+          f"({', '.join(scan.nav_dims)}); {plan.n_lines} lines, {plan.n_points} profiles per "
+          f"pattern; calibration {kv:.2f} kV, {detector.scale_px_per_mrad:.3f} px/mrad")
+    ds = map_strain(scan, plan, out=args.out, force=args.force, scheduler=args.scheduler,
+                    n_workers=args.workers, progress=not args.quiet)
+    print(map_summary_text(ds, frame_text))
+    written = [args.out]
+    if args.figure:
+        from .plot import map_figure, save_figure
+
+        save_figure(map_figure(ds), args.figure)
+        written.append(args.figure)
+    print("\nwrote " + ", ".join(str(p) for p in written))
+    return 0
+
+
+def _map_reference(args, scan):
+    """The reference pattern asked for, as an array, or None."""
+    import numpy as np
+
+    if args.reference is not None and args.reference_index is not None:
+        raise InputError("give either --reference or --reference-index, not both")
+    if args.reference is not None:
+        from .images.io import read_image
+
+        return read_image(args.reference)[0]
+    if args.reference_index is not None:
+        index = tuple(args.reference_index)
+        if len(index) != len(scan.nav_shape) or any(
+                not 0 <= i < n for i, n in zip(index, scan.nav_shape)):
+            raise InputError(f"--reference-index {' '.join(map(str, index))} is not a pattern "
+                             f"of a scan of {' x '.join(map(str, scan.nav_shape))}")
+        return np.asarray(scan.data[index].compute(), dtype=np.float32)
+    return None
+
+
+def _check_calibration_matches(doc, crystal, args):
+    """Refuse a calibration made on another structure or zone axis, or not converged."""
+    from .frame import reduce_indices
+
+    name = (doc.get("structure") or {}).get("name")
+    if name and crystal.name and name != crystal.name:
+        raise InputError(f"the calibration was made on {name}, not on {crystal.name}")
+    zone = doc.get("zone")
+    if zone is not None and tuple(reduce_indices(zone)[0]) != tuple(reduce_indices(args.zone)[0]):
+        raise InputError(f"the calibration was made at zone [{' '.join(map(str, zone))}], not "
+                         f"at [{' '.join(map(str, args.zone))}]")
+    if doc.get("converged") is False or doc.get("success") is False:
+        raise InputError("the calibration fit did not converge; make a new calibration")
+
+
 def _cmd_demo(args):
     from .demo import run_demo
 
@@ -590,6 +679,45 @@ def build_parser():
                    help="smallest angle between crossing lines (5)")
     _add_output_options(p)
     p.set_defaults(run=_cmd_detect)
+
+    p = sub.add_parser("map", help="fit the strain of every pattern of a scan",
+                       description="Fit every pattern of a line scan or a 4D-STEM map with a "
+                                   "calibration held, on all cores or a Dask cluster; results "
+                                   "go into a zarr store written chunk by chunk (a killed run "
+                                   "started again continues where it stopped).")
+    _add_crystal_options(p)
+    p.add_argument("--scan", required=True, metavar="FILE",
+                   help="the scan: .npy or .zarr array (n, rows, cols) or (ny, nx, rows, "
+                        "cols), a folder of pattern images, or a microscope file")
+    p.add_argument("--calibration", required=True, metavar="FIT.json",
+                   help="calibration from 'laueline refine --json' on a reference pattern")
+    p.add_argument("--out", required=True, metavar="RESULT.zarr", help="result store")
+    p.add_argument("--disk-mrad", type=float,
+                   help="convergence semi-angle in mrad (default: the calibration's)")
+    p.add_argument("--min-strength", type=float, default=0.05,
+                   help="weakest line sampled, relative to the strongest (0.05)")
+    p.add_argument("--reference", metavar="PATTERN",
+                   help="image of the unstrained reference region (the calibration's "
+                        "pattern): strain is measured relative to its line positions")
+    p.add_argument("--reference-index", type=int, nargs="+", metavar="I",
+                   help="use this pattern of the scan as the reference (one index for a "
+                        "line scan, row and column for a map)")
+    p.add_argument("--line-width-mrad", type=float, default=0.06,
+                   help="typical full width of a line at half depth, mrad (0.06)")
+    p.add_argument("--search-mrad", type=float, default=0.3,
+                   help="largest line shift searched for, mrad (0.3, about a strain of 2e-3)")
+    p.add_argument("--step-nm", type=float, help="scan step in nm (overrides the file's)")
+    p.add_argument("--chunk-patterns", type=int, default=64,
+                   help="patterns per chunk, the unit of work and of resuming (64)")
+    p.add_argument("--workers", type=int, help="local worker processes (all cores)")
+    p.add_argument("--scheduler", metavar="ADDRESS",
+                   help="address of a running dask.distributed scheduler to run on")
+    _add_sample_frame_options(p)
+    p.add_argument("--figure", metavar="PATH", help="write strain maps or profiles here")
+    p.add_argument("--quiet", action="store_true", help="no progress bar")
+    p.add_argument("--force", action="store_true",
+                   help="start the store afresh and overwrite the figure")
+    p.set_defaults(run=_cmd_map)
 
     p = sub.add_parser("demo", help="run the demonstration on an invented device",
                        description="Render a reference and a strained pattern of an invented "

@@ -110,7 +110,7 @@ def run_demo(out="laueline-demo", force=False, stream=None):
     out.mkdir(parents=True, exist_ok=True)
     outputs = [out / n for n in ("reference.tif", "channel.tif", "calibration.json",
                                  "channel-fit.json", "channel-fit.png",
-                                 "reference-detection.png")]
+                                 "reference-detection.png", "line-scan.zarr", "line-scan.png")]
     report.check_outputs(outputs, force)
     si = read_crystal(SCENARIO["structure"])
     say("laueline demo: an invented test structure (see laueline.demo)")
@@ -174,6 +174,68 @@ def run_demo(out="laueline-demo", force=False, stream=None):
         say(f"   warning: {w}")
     for c in CAUTIONS:
         say(f"   caution: {c}")
+    run_line_scan(out, si, (cal.kv, cal.detector), ref_image, say, force=force)
     say("")
     say(f"   wrote {', '.join(p.name for p in outputs)} in {out}/")
     return cal, fit
+
+
+#: The line scan across the channel (invented): positions along x' in nm, the
+#: channel between -40 and +40 nm, its strain falling off over ~15 nm outside.
+LINE_SCAN = {"step_nm": 10.0, "n": 15, "channel_half_width_nm": 40.0, "edge_nm": 15.0,
+             "seed": 40}
+
+
+def line_scan_strain(position_nm):
+    """Sample-frame strain (n, 6) along the line scan: the channel value inside."""
+    x = np.abs(np.asarray(position_nm, float))
+    inside = 0.5 * (1.0 - np.tanh((x - LINE_SCAN["channel_half_width_nm"])
+                                  / LINE_SCAN["edge_nm"]))
+    return inside[:, None] * np.asarray(SCENARIO["strain_sample"])[None, :]
+
+
+def render_line_scan(crystal, detector_settings=None):
+    """The line scan's patterns (n, 512, 512) and positions (nm), rendered."""
+    from .images.render import RenderSettings, render_pattern
+    from .strain import from_voigt, sample_axes
+
+    n = LINE_SCAN["n"]
+    position = (np.arange(n) - (n - 1) / 2) * LINE_SCAN["step_nm"]
+    axes = sample_axes(crystal.basis, SCENARIO["sample_x"], SCENARIO["sample_z"])
+    images = []
+    for k, sample in enumerate(line_scan_strain(position)):
+        settings = RenderSettings(rotation_deg=SCENARIO["rotation_deg"],
+                                  seed=LINE_SCAN["seed"] + k, **(detector_settings or {}))
+        image, _ = render_pattern(crystal, SCENARIO["zone"], SCENARIO["effective_kv"],
+                                  SCENARIO["disk_mrad"], settings,
+                                  strain=axes.T @ from_voigt(sample) @ axes,
+                                  x_axis=SCENARIO["x_axis"])
+        images.append(image.astype(np.float32))
+    return np.stack(images), position
+
+
+def run_line_scan(out, crystal, calibration, reference_image, say, force=False):
+    """Map the strain along the line scan with the calibration held; figure and store."""
+    from .maps import map_strain, plan_scan, scan_from_array
+    from .plot import map_figure, save_figure
+    from .strain import sample_axes
+
+    images, position = render_line_scan(crystal)
+    axes = sample_axes(crystal.basis, SCENARIO["sample_x"], SCENARIO["sample_z"])
+    plan = plan_scan(crystal, SCENARIO["zone"], calibration, images.shape[1:],
+                     disk_mrad=SCENARIO["disk_mrad"], x_axis=SCENARIO["x_axis"],
+                     sample_axes=axes, reference=reference_image)
+    scan = scan_from_array(images, step_nm=LINE_SCAN["step_nm"], source="demo line scan")
+    scan.nav_coords["scan"] = (position, "nm")
+    ds = map_strain(scan, plan, out=Path(out) / "line-scan.zarr", force=force, progress=False)
+    save_figure(map_figure(ds), Path(out) / "line-scan.png")
+    truth = line_scan_strain(position)
+    value = np.asarray(ds["sample_exx"].values)
+    sigma = np.asarray(ds["sigma_sample_exx"].values)
+    say("")
+    say(f"3. a line scan across the channel: {len(position)} patterns, "
+        f"{LINE_SCAN['step_nm']:g} nm apart, calibration held, relative to the reference")
+    say("   x' (nm)   e'xx fitted           truth")
+    for x, v, s, t in zip(position, value, sigma, truth[:, 0]):
+        say(f"   {x:+7.0f}   {v:+.2e} +- {s:.1e}   {t:+.2e}")
+    return ds

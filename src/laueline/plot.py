@@ -11,8 +11,8 @@ import numpy as np
 
 
 __all__ = ["pattern_figure", "fit_figure", "thickness_figure", "survey_figure", "robust_log_limits",
-           "survey_map_coordinates",
-           "detection_figure", "save_figure", "draw_disk_lines", "hkl_label"]
+           "survey_map_coordinates", "detection_figure", "map_figure", "save_figure",
+           "draw_disk_lines", "hkl_label"]
 
 _DISK_FILL = "#f4f1ea"
 _DISK_EDGE = "#5b5b5b"
@@ -420,6 +420,81 @@ def survey_figure(result, crystal, n_labels=8):
     cb.set_label(f"predicted 1-sigma of {result.ranked_by}")
     ax.set_title(f"{result.structure['name']}, {result.kv:g} kV, {result.disk_mrad:g} mrad: "
                  f"{title}", fontsize=10)
+    return fig
+
+
+def map_figure(ds, *, sample_frame=None):
+    """Strain over a scan: maps (2-D scans) or profiles with error bars (line scans).
+
+    Patterns whose fit failed are masked, not drawn as zero.  Maps of one
+    kind (normal strains, shears, their sigmas) share a colour scale,
+    diverging and centred on zero for strains; the scale is set by the 2nd
+    and 98th percentiles so that a few outliers cannot flatten it.
+    """
+    import matplotlib
+    from matplotlib.colors import TwoSlopeNorm
+
+    diverging = matplotlib.colormaps["RdBu_r"].with_extremes(bad="0.8")
+    sequential = matplotlib.colormaps["viridis"].with_extremes(bad="0.8")
+    prefix = "sample_" if (sample_frame is not False and "sample_exx" in ds) else ""
+    sigma_prefix = "sigma_sample_" if prefix else "sigma_"
+    names = ("exx", "eyy", "ezz", "eyz", "exz", "exy")
+    labels = {n: rf"$\epsilon_{{{n[1:]}}}$" + ("'" if prefix else "") for n in names}
+    ok = np.asarray(ds["ok"].values, bool)
+    frame = "sample frame" if prefix else "crystal frame"
+    dims = [d for d in ds["ok"].dims]
+    if len(dims) == 1:
+        x = np.asarray(ds[dims[0]].values, float)
+        unit = ds[dims[0]].attrs.get("units", "step")
+        fig = _new_figure(9.0, 6.0)
+        axes = fig.subplots(2, 1, sharex=True)
+        for ax, group in zip(axes, (names[:3], names[3:])):
+            for k, n in enumerate(group):
+                v = np.where(ok, np.asarray(ds[prefix + n].values), np.nan) * 1e3
+                s = np.where(ok, np.asarray(ds[sigma_prefix + n].values), np.nan) * 1e3
+                ax.errorbar(x, v, yerr=s, fmt="o-", ms=3, lw=1, capsize=2, label=labels[n])
+            ax.axhline(0, color="0.6", lw=0.8)
+            ax.set_ylabel("strain (10$^{-3}$)")
+            ax.legend(loc="best", ncols=3, fontsize=8)
+        axes[-1].set_xlabel(f"position along the scan ({unit})")
+        axes[0].set_title(f"Strain along the scan ({frame}; error bars: total 1-sigma)")
+        return fig
+    ny, nx = ok.shape
+    fig = _new_figure(11.0, 6.5)
+    grid = fig.subplots(2, 6)
+    extent = None
+    ycoord, xcoord = (np.asarray(ds[d].values, float) for d in dims)
+    if len(xcoord) > 1 and len(ycoord) > 1:
+        extent = (xcoord[0], xcoord[-1], ycoord[-1], ycoord[0])
+    unit = ds[dims[1]].attrs.get("units", "step")
+    for kind, group in (("normal", names[:3]), ("shear", names[3:])):
+        values = {n: np.where(ok, np.asarray(ds[prefix + n].values), np.nan) * 1e3
+                  for n in group}
+        sigmas = {n: np.where(ok, np.asarray(ds[sigma_prefix + n].values), np.nan) * 1e3
+                  for n in group}
+        stacked = np.concatenate([v.ravel() for v in values.values()])
+        limit = np.nanpercentile(np.abs(stacked), 98) if np.isfinite(stacked).any() else 1.0
+        limit = limit if limit > 0 else 1.0
+        slimit = np.nanpercentile(np.concatenate([s.ravel() for s in sigmas.values()]), 98) \
+            if np.isfinite(stacked).any() else 1.0
+        offset = 0 if kind == "normal" else 3
+        for k, n in enumerate(group):
+            ax = grid[0, offset + k]
+            im = ax.imshow(np.ma.masked_invalid(values[n]), cmap=diverging, extent=extent,
+                           norm=TwoSlopeNorm(0.0, -limit, limit), interpolation="nearest")
+            ax.set_title(labels[n] + r" ($10^{-3}$)", fontsize=9)
+            ax_s = grid[1, offset + k]
+            im_s = ax_s.imshow(np.ma.masked_invalid(sigmas[n]), cmap=sequential, extent=extent,
+                               vmin=0, vmax=slimit if slimit > 0 else None,
+                               interpolation="nearest")
+            ax_s.set_title(r"1-$\sigma$ of " + labels[n], fontsize=9)
+            for a in (ax, ax_s):
+                a.set_xlabel(f"x ({unit})", fontsize=8)
+                a.set_ylabel(f"y ({unit})", fontsize=8)
+                a.tick_params(labelsize=7)
+        fig.colorbar(im, ax=list(grid[0, offset:offset + 3]), shrink=0.8)
+        fig.colorbar(im_s, ax=list(grid[1, offset:offset + 3]), shrink=0.8)
+    fig.suptitle(f"Strain map ({frame}, Green-Lagrange; grey: failed patterns)")
     return fig
 
 
