@@ -657,40 +657,29 @@ def _locate_minima(profiles, steps, centre_mrad, half_window_mrad, smooth):
 def _line_model_covariance(jac, y, sigma, line_index, n_lines):
     """GLS solution, covariance and per-line term for points grouped by line.
 
-    Residual covariance V = s^2 diag(sigma^2) + tau^2 Z Z^T (Z: point-to-line
-    incidence).  s >= 1 scales the point noise up when the scatter within
-    lines exceeds it; tau^2 comes from the scatter of the lines' weighted
-    mean residuals beyond what the point noise explains (method of moments).
-    V^-1 is applied through the Woodbury identity, line by line.
+    The error model of :mod:`laueline.uncertainty`: residual covariance
+    V = s^2 diag(sigma^2) + tau^2 Z Z^T (Z: point-to-line incidence).  The
+    point noise is scaled up by s >= 1 when the scatter within lines exceeds
+    what the profiles promise; the line sigma tau is the restricted
+    maximum-likelihood estimate given that point noise.
 
     Returns (theta, covariance, tau) with tau in the units of ``y``.
     """
-    w = 1.0 / sigma ** 2
+    from .uncertainty import (estimate_line_sigma, gls_solve, line_point_loading,
+                              residual_covariance)
+
+    loading = line_point_loading(line_index, n_lines)
     n, p = jac.shape
-
-    def solve(tau2, scale2):
-        wi = w / scale2
-        W_l = np.bincount(line_index, wi, n_lines)
-        shrink = np.zeros(n_lines) if tau2 <= 0 else 1.0 / (1.0 / tau2 + W_l)
-        ZJ = np.zeros((n_lines, p))
-        np.add.at(ZJ, line_index, wi[:, None] * jac)
-        Zy = np.bincount(line_index, wi * y, n_lines)
-        vj = wi[:, None] * jac - wi[:, None] * (shrink[:, None] * ZJ)[line_index]
-        vy = wi * y - wi * (shrink * Zy)[line_index]
-        info = jac.T @ vj
-        cov = np.linalg.pinv(info)
-        return cov @ (jac.T @ vy), cov
-
-    theta, _ = solve(0.0, 1.0)
+    theta, _ = gls_solve(jac, y, residual_covariance(loading, sigma, 0.0))
     r = y - jac @ theta
+    w = 1.0 / sigma ** 2
     W_l = np.bincount(line_index, w, n_lines)
-    mean_l = np.bincount(line_index, w * r, n_lines) / W_l
+    mean_l = np.bincount(line_index, w * r, n_lines) / np.where(W_l > 0, W_l, 1.0)
     within = float(np.sum(w * (r - mean_l[line_index]) ** 2))
-    scale2 = max(1.0, within / max(n - n_lines, 1))
-    excess = mean_l ** 2 - scale2 / W_l
-    tau2 = max(0.0, float(np.sum(excess)) / max(n_lines - p, 1))
-    theta, cov = solve(tau2, scale2)
-    return theta, cov, math.sqrt(tau2)
+    sigma = sigma * math.sqrt(max(1.0, within / max(n - n_lines, 1)))
+    tau = estimate_line_sigma(r, loading, sigma, jac).line_sigma
+    theta, cov = gls_solve(jac, y, residual_covariance(loading, sigma, tau))
+    return theta, cov, tau
 
 
 def _robust_linear_fit(J, y, sigma, use, floor):
