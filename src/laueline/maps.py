@@ -529,7 +529,7 @@ def _band_profiles(image, band, n_points, n_steps):
     return profile.reshape(n_points, n_steps)
 
 
-def _pixel_minima(band, values, level, coarse, half_width, n_points):
+def _pixel_minima(band, values, level, coarse, half_width, n_points, point_line):
     """Deficit minima refined on the pixels themselves.
 
     A parabola in the exact distance s is fitted by least squares to the
@@ -587,9 +587,19 @@ def _pixel_minima(band, values, level, coarse, half_width, n_points):
     dof = np.maximum(sums[0] - 3, 1)
     var = np.bincount(p_in, resid ** 2, n_points) / dof
     inv = np.linalg.inv(normal)
+    # weights from pooled estimates: the pixel noise of the whole pattern and
+    # the curvature of each line (estimates from a few pixels per point
+    # scatter too much to weight with)
+    ok &= (np.abs(shift) < 0.05) & np.isfinite(var) & (var > 0)
+    if not np.any(ok):
+        return np.full(n_points, np.nan), np.full(n_points, np.nan)
+    pooled_var = float(np.median(var[ok]))
+    n_line = np.bincount(point_line[ok], minlength=int(point_line.max()) + 1)
+    c_line = np.bincount(point_line[ok], c[ok], len(n_line)) / np.maximum(n_line, 1)
+    c_point = np.where(n_line[point_line] >= 2, c_line[point_line], c)
     with np.errstate(divide="ignore", invalid="ignore"):
-        sigma = np.sqrt(var * inv[:, 1, 1]) / (2 * np.abs(c)) * half_width
-    ok &= (np.abs(shift) < 0.05) & np.isfinite(sigma)
+        sigma = np.sqrt(pooled_var * inv[:, 1, 1]) / (2 * np.abs(c_point)) * half_width
+    ok &= np.isfinite(sigma) & (c_point > 0)
     return np.where(ok, centre, np.nan), np.where(ok, sigma, np.nan)
 
 
@@ -746,7 +756,7 @@ def _measure(image, plan, min_snr):
         pos, sig, snr = _locate_minima(profiles, steps, predicted, plan.window_mrad,
                                        plan.smooth_samples)
         pos, sig = _pixel_minima(plan.band, pixels, level, pos, plan.fit_half_width_mrad,
-                                 plan.n_points)
+                                 plan.n_points, plan.point_line)
         previous = use
         use = (eligible & line_found[plan.point_line] & np.isfinite(pos)
                & (snr >= 0.5 * min_snr))
