@@ -29,6 +29,28 @@ class _Parser(argparse.ArgumentParser):
         sys.exit(EXIT_INPUT)
 
 
+class _Choices:
+    """Choices of an option read from a library module when first needed.
+
+    Building the parser then imports no fit or survey code: a ``predict``
+    run does not pay for modules it never uses.
+    """
+
+    def __init__(self, module, name):
+        self._module, self._name = module, name
+
+    def _values(self):
+        from importlib import import_module
+
+        return getattr(import_module(self._module, __package__), self._name)
+
+    def __contains__(self, value):
+        return value in self._values()
+
+    def __iter__(self):
+        return iter(self._values())
+
+
 def _add_crystal_options(p):
     p.add_argument("structure", help="CIF file or bundled structure name (see 'laueline structures')")
     p.add_argument("--zone", nargs=3, type=int, required=True, metavar=("U", "V", "W"),
@@ -368,6 +390,10 @@ def build_parser():
     parser = _Parser(prog="laueline",
                      description="HOLZ deficit lines in CBED patterns: predict them, fit strain to "
                                  "them, plan zone axes, measure foil thickness.")
+    from . import __version__
+
+    parser.add_argument("--version", action="version", version=f"laueline {__version__}",
+                        help="print the version and exit")
     sub = parser.add_subparsers(dest="command", metavar="COMMAND", parser_class=_Parser)
     sub.required = True
 
@@ -407,9 +433,7 @@ def build_parser():
                    help="with --image: the disk centre and radius in px instead of finding it")
     p.add_argument("--y-up", action="store_true",
                    help="the points' y grows upward (default: down, as image rows)")
-    from .refine import MODELS
-
-    p.add_argument("--model", choices=MODELS, default="strain",
+    p.add_argument("--model", choices=_Choices(".refine", "MODELS"), default="strain",
                    help="what of the crystal is refined (strain)")
     p.add_argument("--unique-axis", choices=["a", "b", "c"],
                    help="unique axis of a tetragonal (c) or monoclinic (b) cell")
@@ -497,9 +521,7 @@ def build_parser():
                    help="smallest usable crossing angle in degrees (5)")
     p.add_argument("--sigma-mrad", type=float, default=0.005,
                    help="noise of a measured crossing coordinate in mrad (0.005)")
-    from .survey import COMPONENTS
-
-    p.add_argument("--component", choices=COMPONENTS,
+    p.add_argument("--component", choices=_Choices(".survey", "COMPONENTS"),
                    help="rank by this strain component (default: the worst of the six)")
     p.add_argument("--top", type=int, default=15, help="rows printed (15)")
     p.add_argument("--b-iso", type=float, metavar="B",
