@@ -29,6 +29,8 @@ True
 ================================  ==========================================
 """
 
+import sys
+import types
 from importlib import import_module
 
 __version__ = "0.1.0"
@@ -53,6 +55,20 @@ _LAZY = {
 }
 
 __all__ = sorted(_LAZY) + ["__version__"]
+
+# Functions named like the module that defines them (laueline.survey.survey):
+# importing the module must not replace the function on the package.
+_FUNCTION_OVER_MODULE = {name for name, module in _LAZY.items() if module == "." + name}
+
+
+class _Package(types.ModuleType):
+    def __setattr__(self, name, value):
+        if name in _FUNCTION_OVER_MODULE and isinstance(value, types.ModuleType):
+            return  # the module stays reachable in sys.modules and by 'from .x import'
+        super().__setattr__(name, value)
+
+
+sys.modules[__name__].__class__ = _Package
 
 
 def __getattr__(name):

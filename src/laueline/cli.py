@@ -210,9 +210,11 @@ def _cmd_refine(args):
         image, saturation = read_image(args.image)
         detection = detect_lines(image, disk=args.disk_px, saturation=saturation,
                                  min_angle_deg=args.min_angle_deg, source=args.image)
+        # the default radius gives the camera scale when nothing else does
+        scale_known = args.scale_px_per_mrad is not None or calibration is not None
         result = refine_image(crystal, args.zone, detection,
-                              disk_mrad=args.disk_mrad if args.disk_mrad_given else None,
-                              **common)
+                              disk_mrad=None if scale_known and not args.disk_mrad_given
+                              else args.disk_mrad, **common)
     else:
         points = read_points(args.points, y_up=args.y_up)
         result = refine(crystal, args.zone, points, disk_mrad=args.disk_mrad,
@@ -456,10 +458,12 @@ def build_parser():
     p.add_argument("--robust", action="store_true",
                    help="down-weight outliers and list those rejected")
     p.add_argument("--disk-mrad", type=float, default=None,
-                   help="disk radius in mrad for predicting and checking crossings (6; with "
-                        "--image, from the detected radius and the scale)")
-    p.add_argument("--min-strength", type=float, default=0.1,
-                   help="strength threshold of candidate lines for matching (0.1)")
+                   help="disk radius in mrad for predicting and checking crossings (6); with "
+                        "--image it sets the camera scale from the detected radius unless "
+                        "--scale-px-per-mrad or --calibration gives the scale")
+    p.add_argument("--min-strength", type=float, default=0.05,
+                   help="lines weaker than this relative strength are not candidates for "
+                        "matching (0.05, as in predict, survey and render)")
     p.add_argument("--min-angle-deg", type=float, default=5.0,
                    help="smallest crossing angle of candidates in degrees (5)")
     p.add_argument("--match-mrad", type=float, default=0.25,
@@ -539,9 +543,12 @@ def build_parser():
     p.add_argument("--gmax", type=float, default=4.0, help="largest |g| in 1/A (4)")
     state = p.add_mutually_exclusive_group()
     state.add_argument("--strain", nargs=6, type=float,
-                       metavar=("EXX", "EYY", "EZZ", "EYZ", "EXZ", "EXY"))
+                       metavar=("EXX", "EYY", "EZZ", "EYZ", "EXZ", "EXY"),
+                       help="strain of the reference Cartesian frame (tensor components); "
+                            "the pattern is drawn with basis (I + e) A")
     state.add_argument("--cell", nargs=6, type=float,
-                       metavar=("A", "B", "C", "ALPHA", "BETA", "GAMMA"))
+                       metavar=("A", "B", "C", "ALPHA", "BETA", "GAMMA"),
+                       help="cell parameters in A and deg replacing the CIF's")
     p.add_argument("--out", required=True, metavar="PATTERN",
                    help="image file (.tif, .png, .npy); the truth goes to PATTERN.truth.json")
     p.add_argument("--size", nargs=2, type=int, default=[512, 512], metavar=("W", "H"),
@@ -556,8 +563,8 @@ def build_parser():
                    help="full width at half depth of a line (0.06)")
     p.add_argument("--line-depth", type=float, default=0.6,
                    help="relative depth of a line of strength 1 (0.6)")
-    p.add_argument("--min-strength", type=float, default=0.1,
-                   help="weaker lines are not drawn (0.1)")
+    p.add_argument("--min-strength", type=float, default=0.05,
+                   help="lines weaker than this relative strength are not drawn (0.05)")
     p.add_argument("--background-tilt", type=float, default=0.2,
                    help="relative background change across the disk (0.2)")
     p.add_argument("--background-angle-deg", type=float, default=30.0,

@@ -51,11 +51,13 @@ F_UNIT = ("angstrom; kinematic electron structure factor sum_j occ_j f_j exp(-B_
 
 
 def format_hkl(hkl):
-    """Compact Miller-index label: (2, -3, 10) -> '2 -3 10', (1, 1, 1) -> '111'."""
-    values = [int(v) for v in hkl]
-    if all(-9 <= v <= 9 for v in values) and all(v >= 0 for v in values):
-        return "".join(str(v) for v in values)
-    return " ".join(str(v) for v in values)
+    """Miller indices as signed integers with spaces: (2, -3, 10) -> '2 -3 10', (1, 1, 1) -> '1 1 1'.
+
+    One format for every text output (figures draw bars instead of minus signs).
+    """
+    from .results import format_indices
+
+    return format_indices(hkl)
 
 
 def check_outputs(paths, force=False, figure=None):
