@@ -84,3 +84,37 @@ def test_package_names_load_lazily_and_functions_win_over_modules():
                          check=True).stdout.split()
     assert out == ["False", "True", "True"]
     assert set(laueline.__all__) <= set(dir(laueline))
+
+
+def test_fit_figure_explains_itself(si):
+    # Structure of the figure, not numbers: fitted loci drawn thin and half
+    # transparent over the data, a key arrow for the residual magnification,
+    # labelled axes with units on every panel.
+    from matplotlib.collections import LineCollection
+    from matplotlib.quiver import QuiverKey
+
+    from conftest import DETECTOR, synthetic_points
+    from laueline.plot import fit_figure
+    from laueline.refine import refine
+
+    rng = np.random.default_rng(3)
+    points = synthetic_points(si, [2, 3, 0], n=30, noise_px=0.2, rng=rng)
+    fit = refine(si, [2, 3, 0], points, model="fixed", x_axis=(0, 0, 4),
+                 scale_px_per_mrad=DETECTOR.scale_px_per_mrad)
+    fig = fit_figure(fit, si)
+    ax = fig.axes[0]
+    loci = [c for c in ax.collections if isinstance(c, LineCollection)]
+    assert loci and all(c.get_alpha() is not None and c.get_alpha() < 1 for c in loci)
+    keys = [a for a in ax.get_children() if isinstance(a, QuiverKey)]
+    assert len(keys) == 1 and "drawn" in keys[0].text.get_text()
+    assert "px" in ax.get_xlabel() and "px" in ax.get_ylabel()
+
+
+def test_predict_figure_marks_crossings_only_when_asked(pattern):
+    plain = pattern.plot()
+    marked = pattern.plot(show_crossings=True, n_labels=6)
+    count = [sum(len(line.get_xdata()) for line in fig.axes[0].get_lines()
+                 if line.get_marker() not in (None, "None", "")) for fig in (plain, marked)]
+    assert count[0] == 0
+    # and then sparingly: only crossings among the labelled lines (at most 6 choose 2)
+    assert 0 < count[1] <= 15 < pattern.n_crossings
