@@ -33,7 +33,9 @@ class _Choices:
     """Choices of an option read from a library module when first needed.
 
     Building the parser then imports no fit or survey code: a ``predict``
-    run does not pay for modules it never uses.
+    run does not pay for modules it never uses.  Give the option a metavar
+    (argparse would otherwise list the choices while building the parser);
+    ``%(choices)s`` in the help lists them when help is asked for.
     """
 
     def __init__(self, module, name):
@@ -436,7 +438,8 @@ def build_parser():
     p.add_argument("--y-up", action="store_true",
                    help="the points' y grows upward (default: down, as image rows)")
     p.add_argument("--model", choices=_Choices(".refine", "MODELS"), default="strain",
-                   help="what of the crystal is refined (strain)")
+                   metavar="MODEL",
+                   help="what of the crystal is refined: %(choices)s (strain)")
     p.add_argument("--unique-axis", choices=["a", "b", "c"],
                    help="unique axis of a tetragonal (c) or monoclinic (b) cell")
     p.add_argument("--free", nargs="+", action="extend", metavar="NAME",
@@ -526,7 +529,9 @@ def build_parser():
     p.add_argument("--sigma-mrad", type=float, default=0.005,
                    help="noise of a measured crossing coordinate in mrad (0.005)")
     p.add_argument("--component", choices=_Choices(".survey", "COMPONENTS"),
-                   help="rank by this strain component (default: the worst of the six)")
+                   metavar="COMPONENT",
+                   help="rank by this strain component, one of %(choices)s (default: the "
+                        "worst of the six)")
     p.add_argument("--top", type=int, default=15, help="rows printed (15)")
     p.add_argument("--b-iso", type=float, metavar="B",
                    help="one isotropic B in A^2 for all atoms")
