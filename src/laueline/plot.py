@@ -281,7 +281,7 @@ def pattern_figure(pattern, *, n_labels=10, show_crossings=False):
     ax_disk.set_aspect("equal")
     draw_disk_lines(ax_disk, pattern, n_labels=n_labels, show_crossings=show_crossings)
     key = _strength_key(ax_disk, loc="upper left")
-    if show_crossings:
+    if show_crossings and ax_disk.get_legend_handles_labels()[0]:
         ax_disk.add_artist(key)
         ax_disk.legend(loc="lower left", fontsize=7, framealpha=0.92,
                        edgecolor=PALETTE["muted"])
@@ -302,7 +302,7 @@ def pattern_figure(pattern, *, n_labels=10, show_crossings=False):
     near = centres[np.hypot(*centres.T) < extent * 1.5]
     for k, centre in enumerate(near):
         ax_all.add_patch(Circle(tuple(centre), pattern.disk_mrad, facecolor=PALETTE["zero_layer"],
-                                edgecolor="none", zorder=1,
+                                edgecolor=PALETTE["muted"], linewidth=0.4, alpha=0.7, zorder=1,
                                 label="zero-layer disks" if k == 0 else None))
     for k, (n, radius) in enumerate(zip(pattern.ring_layers, pattern.ring_radius_mrad)):
         ax_all.add_patch(Circle((0, 0), radius, fill=False, edgecolor=PALETTE["ring"],
@@ -320,9 +320,11 @@ def pattern_figure(pattern, *, n_labels=10, show_crossings=False):
     ax_all.set_ylabel("t$_y$ (mrad)")
     ax_all.legend(loc="lower left", fontsize=7, framealpha=0.92, edgecolor=PALETTE["muted"])
     rings = ", ".join(f"{r:.1f}" for r in pattern.ring_radius_mrad[:3])
+    rings = f"rings at {rings} mrad" if rings else "no HOLZ ring in view"
+    overlap = ("the disks overlap" if pattern.disk_mrad > pattern.max_convergence_mrad
+               else "disks overlap") + f" above {pattern.max_convergence_mrad:.2f} mrad"
     _heading(ax_all, "overview: zero-layer disks and HOLZ rings",
-             f"disk radius {pattern.disk_mrad:g} mrad; rings at {rings} mrad; disks overlap "
-             f"above {pattern.max_convergence_mrad:.2f} mrad")
+             f"disk radius {pattern.disk_mrad:g} mrad; {rings}; {overlap}")
     return style_figure(fig)
 
 
