@@ -420,7 +420,8 @@ def build_parser():
                        metavar=("A", "B", "C", "ALPHA", "BETA", "GAMMA"),
                        help="cell parameters in A and deg replacing the CIF's")
     _add_output_options(p, csv=True)
-    p.add_argument("--mark-crossings", action="store_true", help="mark crossings in the figure")
+    p.add_argument("--mark-crossings", action="store_true",
+                   help="mark in the figure the crossings among the labelled (strongest) lines")
     p.set_defaults(run=_cmd_predict)
 
     p = sub.add_parser("refine", help="fit cell or strain (and detector, voltage) to crossings "

@@ -201,14 +201,16 @@ def run_demo(out="laueline-demo", force=False, stream=None):
     say("2. the channel (voltage and scale held from the calibration)")
     say(f"   {len(det.good_lines)} lines detected, {fit.n_used} fitted, rms {fit.rms_px:.3f} px")
     say("")
-    say("   strain, sample frame x'=[110] z'=[001]   fitted              truth   (fit-truth)/sigma")
+    say("   strain in the sample frame x' = [1 1 0], z' = [0 0 1]")
+    say("          fitted                  truth   (fit - truth) / sigma")
     for name, f, s, t in zip(("xx", "yy", "zz", "yz", "xz", "xy"), fitted, fitted_sigma,
                              truth_sample):
         say(f"     e{name}  {f:+.2e} +- {s:.1e}   {t:+.2e}   {((f - t) / s):+5.1f}")
     say("")
-    say("   stress (GPa), sample frame               fitted              truth")
+    say("   stress in the sample frame (GPa)")
+    say("          fitted            truth")
     for name, f, s, t in zip(("xx", "yy", "zz", "yz", "xz", "xy"), s_fit, s_sig, truth_stress):
-        say(f"     s{name}  {f:+.3f} +- {s:.3f}      {t:+.3f}")
+        say(f"     s{name}  {f:+.3f} +- {s:.3f}   {round(t, 3) + 0.0:+.3f}")  # no -0.000
     say("")
     say("   The truth is small-strain; the fit reports the Green-Lagrange tensor, which")
     say(f"   differs at second order (~{max(abs(truth_sample)) ** 2 / 2:.0e} here).")
