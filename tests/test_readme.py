@@ -59,7 +59,7 @@ def test_readme_opens_with_the_job_then_setup_then_tests():
         assert any(line.startswith(expected) for line in setup_lines), expected
     assert any("pytest" in " ".join(a) for a in shell_commands(tests))
     # The stated Python version is the one pyproject.toml enforces.
-    assert "Python 3.10 or newer" in text
+    assert "Python 3.10 or newer" in setup
     assert 'requires-python = ">=3.10"' in (ROOT / "pyproject.toml").read_text()
 
 
