@@ -31,14 +31,21 @@ def test_electron_rest_energy_from_literals():
     assert rest_ev == pytest.approx(expected, rel=5e-9)
 
 
-def test_forward_model_does_not_import_scipy_constants():
-    # The reason for the literals: a fresh interpreter predicting a pattern
-    # never imports scipy.constants (run in a subprocess for a clean state).
+def test_predict_command_imports_only_what_it_needs(tmp_path):
+    # The reason for the literals: a fresh interpreter running the predict
+    # command (parser, crystal, forward model, JSON) imports neither
+    # scipy.constants nor the fit, survey or plotting code (run in a
+    # subprocess for a clean module table).
     import subprocess
     import sys
 
-    code = ("import sys, laueline; laueline.predict(laueline.read_crystal('Si'), [1, 1, 0]); "
-            "print('scipy.constants' in sys.modules, 'matplotlib' in sys.modules)")
+    code = ("import io, sys, contextlib; from laueline.cli import main; "
+            "out = io.StringIO(); "
+            "with_ = contextlib.redirect_stdout(out); with_.__enter__(); "
+            f"status = main(['predict', 'Si', '--zone', '1', '1', '0', '--json', "
+            f"{str(tmp_path / 'p.json')!r}]); with_.__exit__(None, None, None); "
+            "print(status, *sorted(m for m in ('scipy', 'scipy.constants', 'matplotlib', "
+            "'laueline.refine', 'laueline.survey', 'skimage', 'pandas') if m in sys.modules))")
     out = subprocess.run([sys.executable, "-c", code], capture_output=True, text=True,
                          check=True).stdout.split()
-    assert out == ["False", "False"]
+    assert out == ["0"]
