@@ -22,7 +22,7 @@ it :meth:`ResultMixin.to_dataframe` says how to get it.
 
 from __future__ import annotations
 
-__all__ = ["ResultMixin", "format_indices", "short_list"]
+__all__ = ["ResultMixin", "format_indices"]
 
 
 def format_indices(values):
@@ -32,14 +32,6 @@ def format_indices(values):
     indices instead (:func:`laueline.plot.hkl_label`).
     """
     return " ".join(str(int(v)) for v in values)
-
-
-def short_list(items, limit=4):
-    """``'a, b, c'``, or ``'a, b, c, ... (12)'`` when longer than ``limit``."""
-    items = [str(v) for v in items]
-    if len(items) <= limit:
-        return ", ".join(items)
-    return ", ".join(items[:limit - 1]) + f", ... ({len(items)})"
 
 
 class ResultMixin:
