@@ -125,9 +125,10 @@ def _halo(width=2.4):
 
 
 def _heading(ax, title, subtitle=None):
-    """A serif heading on the left, with an optional grey line of key numbers below."""
+    """A serif heading on the left, with grey lines of key numbers below (``\\n`` splits)."""
+    n_lines = subtitle.count("\n") + 1 if subtitle else 0
     ax.set_title(title, loc="left", fontsize=10, fontfamily=_HEADING_FONT,
-                 color=PALETTE["ink"], pad=16 if subtitle else 6)
+                 color=PALETTE["ink"], pad=6 + 10 * n_lines)
     if subtitle:
         ax.annotate(subtitle, xy=(0, 1), xycoords="axes fraction", xytext=(0, 4),
                     textcoords="offset points", ha="left", va="bottom", fontsize=8,
@@ -289,10 +290,12 @@ def pattern_figure(pattern, *, n_labels=10, show_crossings=False):
     ax_disk.set_ylabel("t$_y$ (mrad)")
     cr = pattern.crystal
     n_holz = int(np.sum(pattern.laue_zone >= 1))
-    _heading(ax_disk, f"{cr.name} {hkl_label(pattern.zone, '[]')}  central disk",
+    strained = ", strained" if pattern.strain is not None else ""
+    _heading(ax_disk, f"{cr.name} {hkl_label(pattern.zone, '[]')}{strained}  central disk",
              f"{pattern.beam.kv:g} kV, {pattern.disk_mrad:g} mrad; {pattern.n_lines} lines "
-             f"({n_holz} HOLZ), {pattern.n_crossings} crossings; the {min(n_labels, pattern.n_lines)} "
-             "strongest labelled")
+             f"({n_holz} HOLZ), {pattern.n_crossings} crossings; the "
+             f"{min(n_labels, pattern.n_lines)} strongest labelled\n"
+             "kinematic loci: dynamical line shifts are not included")
 
     extent = max([pattern.disk_mrad * 4] + list(pattern.ring_radius_mrad * 1.1))
     ax_all.add_patch(Circle((0, 0), pattern.disk_mrad, facecolor=PALETTE["disk"],
@@ -431,7 +434,8 @@ def fit_figure(result, crystal, *, image=None, magnify=None):
     _heading(ax, f"{result.structure['name']} {hkl_label(result.zone, '[]')}  fit of the "
                  f"{result.model} model",
              f"{result.n_used} {what} used, rms {result.rms_px:.3g} px; amber: fitted loci, "
-             "blue: measured")
+             "blue: measured\nkinematic model; the strain is that of the thin foil, which "
+             "relaxes at its surfaces")
     return style_figure(fig)
 
 
