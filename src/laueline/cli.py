@@ -393,7 +393,10 @@ def _cmd_structures(args):
 def build_parser():
     parser = _Parser(prog="laueline",
                      description="HOLZ deficit lines in CBED patterns: predict them, fit strain to "
-                                 "them, plan zone axes, measure foil thickness.")
+                                 "them, plan zone axes, measure foil thickness.",
+                     epilog="New here? 'laueline demo --out laueline-demo' runs the whole job "
+                            "on an invented device; 'laueline COMMAND --help' lists a "
+                            "command's options.")
     from . import __version__
 
     parser.add_argument("--version", action="version", version=f"laueline {__version__}",
