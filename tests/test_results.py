@@ -118,3 +118,17 @@ def test_predict_figure_marks_crossings_only_when_asked(pattern):
     assert count[0] == 0
     # and then sparingly: only crossings among the labelled lines (at most 6 choose 2)
     assert 0 < count[1] <= 15 < pattern.n_crossings
+
+
+def test_labels_sit_on_their_lines(pattern):
+    # Every index label of the disk panel is placed on a vertex of the locus
+    # it names (the label is the line's, not a neighbour's).
+    from laueline.plot import hkl_label
+
+    fig = pattern.plot(n_labels=8)
+    texts = {t.get_text(): t.get_position() for t in fig.axes[0].texts}
+    strongest = np.argsort(-pattern.strength, kind="stable")[:8]
+    for i in strongest:
+        position = np.array(texts[hkl_label(pattern.hkl[i])])
+        distance = np.min(np.linalg.norm(pattern.points_mrad[i] - position, axis=1))
+        assert distance < 1e-9  # a vertex of the polyline, exactly
