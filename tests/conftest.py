@@ -50,3 +50,9 @@ def run_cli(capsys, *argv):
         code = exc.code
     out, err = capsys.readouterr()
     return code, out, err
+
+
+def pytest_configure(config):
+    config.addinivalue_line(
+        "markers", "slow: runs whole workflows (the README, the walkthrough); CI runs them "
+                   "in a second step, deselect with -m 'not slow'")

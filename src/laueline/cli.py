@@ -29,6 +29,30 @@ class _Parser(argparse.ArgumentParser):
         sys.exit(EXIT_INPUT)
 
 
+class _Choices:
+    """Choices of an option read from a library module when first needed.
+
+    Building the parser then imports no fit or survey code: a ``predict``
+    run does not pay for modules it never uses.  Give the option a metavar
+    (argparse would otherwise list the choices while building the parser);
+    ``%(choices)s`` in the help lists them when help is asked for.
+    """
+
+    def __init__(self, module, name):
+        self._module, self._name = module, name
+
+    def _values(self):
+        from importlib import import_module
+
+        return getattr(import_module(self._module, __package__), self._name)
+
+    def __contains__(self, value):
+        return value in self._values()
+
+    def __iter__(self):
+        return iter(self._values())
+
+
 def _add_crystal_options(p):
     p.add_argument("structure", help="CIF file or bundled structure name (see 'laueline structures')")
     p.add_argument("--zone", nargs=3, type=int, required=True, metavar=("U", "V", "W"),
@@ -204,9 +228,11 @@ def _cmd_refine(args):
         image, saturation = read_image(args.image)
         detection = detect_lines(image, disk=args.disk_px, saturation=saturation,
                                  min_angle_deg=args.min_angle_deg, source=args.image)
+        # the default radius gives the camera scale when nothing else does
+        scale_known = args.scale_px_per_mrad is not None or calibration is not None
         result = refine_image(crystal, args.zone, detection,
-                              disk_mrad=args.disk_mrad if args.disk_mrad_given else None,
-                              **common)
+                              disk_mrad=None if scale_known and not args.disk_mrad_given
+                              else args.disk_mrad, **common)
     else:
         points = read_points(args.points, y_up=args.y_up)
         result = refine(crystal, args.zone, points, disk_mrad=args.disk_mrad,
@@ -474,7 +500,14 @@ def _cmd_structures(args):
 def build_parser():
     parser = _Parser(prog="laueline",
                      description="HOLZ deficit lines in CBED patterns: predict them, fit strain to "
-                                 "them, plan zone axes, measure foil thickness.")
+                                 "them, plan zone axes, measure foil thickness.",
+                     epilog="New here? 'laueline demo --out laueline-demo' runs the whole job "
+                            "on an invented device; 'laueline COMMAND --help' lists a "
+                            "command's options.")
+    from . import __version__
+
+    parser.add_argument("--version", action="version", version=f"laueline {__version__}",
+                        help="print the version and exit")
     sub = parser.add_subparsers(dest="command", metavar="COMMAND", parser_class=_Parser)
     sub.required = True
 
@@ -497,7 +530,8 @@ def build_parser():
                        metavar=("A", "B", "C", "ALPHA", "BETA", "GAMMA"),
                        help="cell parameters in A and deg replacing the CIF's")
     _add_output_options(p, csv=True)
-    p.add_argument("--mark-crossings", action="store_true", help="mark crossings in the figure")
+    p.add_argument("--mark-crossings", action="store_true",
+                   help="mark in the figure the crossings among the labelled (strongest) lines")
     p.set_defaults(run=_cmd_predict)
 
     p = sub.add_parser("refine", help="fit cell or strain (and detector, voltage) to crossings "
@@ -514,10 +548,9 @@ def build_parser():
                    help="with --image: the disk centre and radius in px instead of finding it")
     p.add_argument("--y-up", action="store_true",
                    help="the points' y grows upward (default: down, as image rows)")
-    from .refine import MODELS
-
-    p.add_argument("--model", choices=MODELS, default="strain",
-                   help="what of the crystal is refined (strain)")
+    p.add_argument("--model", choices=_Choices(".refine", "MODELS"), default="strain",
+                   metavar="MODEL",
+                   help="what of the crystal is refined: %(choices)s (strain)")
     p.add_argument("--unique-axis", choices=["a", "b", "c"],
                    help="unique axis of a tetragonal (c) or monoclinic (b) cell")
     p.add_argument("--free", nargs="+", action="extend", metavar="NAME",
@@ -539,10 +572,12 @@ def build_parser():
     p.add_argument("--robust", action="store_true",
                    help="down-weight outliers and list those rejected")
     p.add_argument("--disk-mrad", type=float, default=None,
-                   help="disk radius in mrad for predicting and checking crossings (6; with "
-                        "--image, from the detected radius and the scale)")
-    p.add_argument("--min-strength", type=float, default=0.1,
-                   help="strength threshold of candidate lines for matching (0.1)")
+                   help="disk radius in mrad for predicting and checking crossings (6); with "
+                        "--image it sets the camera scale from the detected radius unless "
+                        "--scale-px-per-mrad or --calibration gives the scale")
+    p.add_argument("--min-strength", type=float, default=0.05,
+                   help="lines weaker than this relative strength are not candidates for "
+                        "matching (0.05, as in predict, survey and render)")
     p.add_argument("--min-angle-deg", type=float, default=5.0,
                    help="smallest crossing angle of candidates in degrees (5)")
     p.add_argument("--match-mrad", type=float, default=0.25,
@@ -604,8 +639,9 @@ def build_parser():
                    help="lines weaker than this are not considered (0.05)")
     p.add_argument("--min-angle-deg", type=float, default=5.0,
                    help="smallest usable crossing angle in degrees (5)")
-    from .survey import (COMPONENTS, DEFAULT_LINE_SIGMA_MRAD, DEFAULT_MIN_CONTRAST,
-                         DEFAULT_THICKNESS_NM)
+    # the survey's defaults, repeated so that building the parser imports nothing
+    # heavy (tests/test_survey.py checks they agree)
+    DEFAULT_LINE_SIGMA_MRAD, DEFAULT_THICKNESS_NM, DEFAULT_MIN_CONTRAST = 0.002, 200.0, 0.02
 
     p.add_argument("--sigma-mrad", type=float, default=0.005,
                    help="independent noise of a measured crossing coordinate in mrad (0.005)")
@@ -620,8 +656,10 @@ def build_parser():
                    help="lines with a shallower estimated dip are not seen "
                         f"({DEFAULT_MIN_CONTRAST:g})")
 
-    p.add_argument("--component", choices=COMPONENTS,
-                   help="rank by this strain component (default: the worst of the six)")
+    p.add_argument("--component", choices=_Choices(".survey", "COMPONENTS"),
+                   metavar="COMPONENT",
+                   help="rank by this strain component, one of %(choices)s (default: the "
+                        "worst of the six)")
     p.add_argument("--top", type=int, default=15, help="rows printed (15)")
     p.add_argument("--b-iso", type=float, metavar="B",
                    help="one isotropic B in A^2 for all atoms")
@@ -638,9 +676,12 @@ def build_parser():
     p.add_argument("--gmax", type=float, default=4.0, help="largest |g| in 1/A (4)")
     state = p.add_mutually_exclusive_group()
     state.add_argument("--strain", nargs=6, type=float,
-                       metavar=("EXX", "EYY", "EZZ", "EYZ", "EXZ", "EXY"))
+                       metavar=("EXX", "EYY", "EZZ", "EYZ", "EXZ", "EXY"),
+                       help="strain of the reference Cartesian frame (tensor components); "
+                            "the pattern is drawn with basis (I + e) A")
     state.add_argument("--cell", nargs=6, type=float,
-                       metavar=("A", "B", "C", "ALPHA", "BETA", "GAMMA"))
+                       metavar=("A", "B", "C", "ALPHA", "BETA", "GAMMA"),
+                       help="cell parameters in A and deg replacing the CIF's")
     p.add_argument("--out", required=True, metavar="PATTERN",
                    help="image file (.tif, .png, .npy); the truth goes to PATTERN.truth.json")
     p.add_argument("--size", nargs=2, type=int, default=[512, 512], metavar=("W", "H"),
@@ -655,8 +696,8 @@ def build_parser():
                    help="full width at half depth of a line (0.06)")
     p.add_argument("--line-depth", type=float, default=0.6,
                    help="relative depth of a line of strength 1 (0.6)")
-    p.add_argument("--min-strength", type=float, default=0.1,
-                   help="weaker lines are not drawn (0.1)")
+    p.add_argument("--min-strength", type=float, default=0.05,
+                   help="lines weaker than this relative strength are not drawn (0.05)")
     p.add_argument("--background-tilt", type=float, default=0.2,
                    help="relative background change across the disk (0.2)")
     p.add_argument("--background-angle-deg", type=float, default=30.0,

@@ -27,7 +27,8 @@ from pathlib import Path
 
 import numpy as np
 
-__all__ = ["SCENARIO", "scenario_strain", "render_scenario", "run_demo"]
+__all__ = ["SCENARIO", "scenario_strain", "render_scenario", "scenario_points",
+           "write_scenario_points", "run_demo"]
 
 SCENARIO = {
     "structure": "Si",
@@ -84,6 +85,43 @@ def render_scenario(folder, force=False):
     return paths
 
 
+def scenario_points(truth, n=30, noise_px=0.25, seed=0):
+    """Crossings of a rendered scenario pattern as a person would digitise them.
+
+    The ``n`` crossings of strong lines meeting at 25 deg or more, inside 90 %
+    of the disk radius, from the truth document of :func:`render_scenario`,
+    with Gaussian pointing noise of ``noise_px`` and a 0.1 px reading
+    resolution.  Returns (xy_px, hkl_a, hkl_b).
+    """
+    strength = {tuple(ln["hkl"]): ln["strength"] for ln in truth["lines"]}
+    centre = np.asarray(truth["detector"]["center_px"])
+    rows = [c for c in truth["crossings"] if c["angle_deg"] >= 25.0
+            and np.hypot(*(np.asarray(c["xy_px"]) - centre)) < 0.9 * truth["disk_radius_px"]]
+    rows.sort(key=lambda c: -min(strength[tuple(c["hkl_a"])], strength[tuple(c["hkl_b"])]))
+    rows = rows[:n]
+    xy = np.array([c["xy_px"] for c in rows])
+    xy = np.round(xy + np.random.default_rng(seed).normal(0.0, noise_px, xy.shape), 1)
+    return (xy, np.array([c["hkl_a"] for c in rows]), np.array([c["hkl_b"] for c in rows]))
+
+
+def write_scenario_points(folder, force=False):
+    """Write ``reference.csv`` and ``channel.csv``, digitised crossings of both patterns.
+
+    Needs the truth files of :func:`render_scenario` in ``folder``.
+    """
+    from . import report
+    from .points import write_points
+
+    folder = Path(folder)
+    paths = {}
+    for name in ("reference", "channel"):
+        truth = report.read_json(folder / f"{name}.truth.json", "laueline.truth")
+        xy, hkl_a, hkl_b = scenario_points(truth, seed=SCENARIO["seeds"][name])
+        paths[name] = folder / f"{name}.csv"
+        write_points(paths[name], xy, hkl_a, hkl_b, force=force)
+    return paths
+
+
 def run_demo(out="laueline-demo", force=False, stream=None):
     """Run the whole demonstration, writing images, JSON and figures into ``out``.
 
@@ -108,17 +146,21 @@ def run_demo(out="laueline-demo", force=False, stream=None):
 
     out = Path(out)
     out.mkdir(parents=True, exist_ok=True)
-    outputs = [out / n for n in ("reference.tif", "channel.tif", "calibration.json",
+    outputs = [out / n for n in ("reference.tif", "channel.tif", "reference.csv", "channel.csv",
+                                 "calibration.json",
                                  "channel-fit.json", "channel-fit.png",
                                  "reference-detection.png", "line-scan.zarr", "line-scan.png")]
     report.check_outputs(outputs, force)
     si = read_crystal(SCENARIO["structure"])
-    say("laueline demo: an invented test structure (see laueline.demo)")
+    say("laueline demo: an invented test structure (described in examples/README.md)")
     say(f"  Si [2 3 0], nominal {SCENARIO['nominal_kv']:g} kV, disk "
         f"{SCENARIO['disk_mrad']:g} mrad; reference in the substrate, measurement in the "
         "channel")
     paths = render_scenario(out, force=force)
-    say(f"  rendered {paths['reference'].name} and {paths['channel'].name} in {out}/")
+    points = write_scenario_points(out, force=force)
+    say(f"  rendered {paths['reference'].name} and {paths['channel'].name} in {out}/, with "
+        f"their crossings digitised by hand in {points['reference'].name} and "
+        f"{points['channel'].name}")
 
     ref_image, sat = read_image(paths["reference"])
     ref_det = detect_lines(ref_image, saturation=sat, source=str(paths["reference"]))
@@ -159,14 +201,16 @@ def run_demo(out="laueline-demo", force=False, stream=None):
     say("2. the channel (voltage and scale held from the calibration)")
     say(f"   {len(det.good_lines)} lines detected, {fit.n_used} fitted, rms {fit.rms_px:.3f} px")
     say("")
-    say("   strain, sample frame x'=[110] z'=[001]   fitted              truth   (fit-truth)/sigma")
+    say("   strain in the sample frame x' = [1 1 0], z' = [0 0 1]")
+    say("          fitted                  truth   (fit - truth) / sigma")
     for name, f, s, t in zip(("xx", "yy", "zz", "yz", "xz", "xy"), fitted, fitted_sigma,
                              truth_sample):
         say(f"     e{name}  {f:+.2e} +- {s:.1e}   {t:+.2e}   {((f - t) / s):+5.1f}")
     say("")
-    say("   stress (GPa), sample frame               fitted              truth")
+    say("   stress in the sample frame (GPa)")
+    say("          fitted            truth")
     for name, f, s, t in zip(("xx", "yy", "zz", "yz", "xz", "xy"), s_fit, s_sig, truth_stress):
-        say(f"     s{name}  {f:+.3f} +- {s:.3f}      {t:+.3f}")
+        say(f"     s{name}  {f:+.3f} +- {s:.3f}   {round(t, 3) + 0.0:+.3f}")  # no -0.000
     say("")
     say("   The truth is small-strain; the fit reports the Green-Lagrange tensor, which")
     say(f"   differs at second order (~{max(abs(truth_sample)) ** 2 / 2:.0e} here).")

@@ -43,6 +43,7 @@ from .crystal import MAX_REFLECTIONS, Crystal
 from .errors import InputError
 from .frame import ZoneFrame, default_x_axis, frame_rotations, reduce_indices, zone_frame
 from .optics import Beam, make_beam
+from .results import ResultMixin, format_indices
 
 __all__ = [
     "Pattern",
@@ -372,12 +373,17 @@ def enumerate_reflections(basis, zone, gmax, *, near_disk=None):
     return hkl, hkl @ recip.T
 
 
-@dataclass
-class Pattern:
+@dataclass(repr=False)
+class Pattern(ResultMixin):
     """Predicted deficit lines and crossings of one central disk.
 
     Arrays have one row per line (``hkl`` ... ``points_mrad``) or per
     crossing (``crossing_*``).  ``crossing_lines`` indexes the line arrays.
+
+    In a notebook: ``repr`` is a one-line summary, :meth:`to_dict` the
+    ``laueline.pattern/1`` document of ``laueline predict --json``,
+    ``to_dataframe("lines")`` / ``to_dataframe("crossings")`` the CSV tables
+    as pandas DataFrames, and :meth:`plot` the figure of ``--figure``.
     """
 
     crystal: Crystal
@@ -424,6 +430,30 @@ class Pattern:
     def crossing_hkl(self):
         """(hkl_a, hkl_b), each of shape (p, 3), for the crossings."""
         return self.hkl[self.crossing_lines[:, 0]], self.hkl[self.crossing_lines[:, 1]]
+
+    def _summary(self):
+        n_holz = int(np.sum(self.laue_zone >= 1))
+        strained = ", strained" if self.strain is not None else ""
+        return (f"{self.crystal.name} [{format_indices(self.zone)}]{strained}, "
+                f"{self.beam.kv:g} kV, disk {self.disk_mrad:g} mrad, x along "
+                f"({format_indices(self.x_axis)}): {self.n_lines} lines ({n_holz} HOLZ), "
+                f"{self.n_crossings} crossings")
+
+    def _document(self):
+        from .report import pattern_document
+
+        return pattern_document(self)
+
+    def _tables(self):
+        from .report import pattern_tables
+
+        (lh, lr), (ch, cr) = pattern_tables(self)
+        return {"lines": (lh, lr), "crossings": (ch, cr)}
+
+    def _figure(self, **kwargs):
+        from .plot import pattern_figure
+
+        return pattern_figure(self, **kwargs)
 
 
 def predict(crystal, zone, kv=200.0, disk_mrad=6.0, *, x_axis=None, gmax=4.0,

@@ -6,7 +6,7 @@ The relativistic wavelength is
 
     lambda = h / sqrt(2 m0 e V (1 + e V / (2 m0 c^2)))
 
-with CODATA constants from :mod:`scipy.constants` (see for example Williams
+with the CODATA constants of :mod:`laueline.constants` (see for example Williams
 and Carter, *Transmission Electron Microscopy*, 2nd ed., 2009, ch. 1).
 
 Inside a crystal the mean inner potential V0 raises the wave number to
@@ -27,8 +27,10 @@ from __future__ import annotations
 import math
 from dataclasses import dataclass
 
-from scipy import constants as _c
-
+from .constants import ELECTRON_MASS_KG as _M0
+from .constants import ELEMENTARY_CHARGE_C as _E
+from .constants import PLANCK_J_S as _H
+from .constants import SPEED_OF_LIGHT_M_S as _C
 from .errors import InputError
 
 __all__ = [
@@ -40,7 +42,7 @@ __all__ = [
     "make_beam",
 ]
 
-_H2_OVER_2PI_M0_E_VA2 = _c.h ** 2 / (2 * math.pi * _c.m_e * _c.e) * 1e20  # V angstrom^2
+_H2_OVER_2PI_M0_E_VA2 = _H ** 2 / (2 * math.pi * _M0 * _E) * 1e20  # V angstrom^2
 
 
 def _check_kv(kv):
@@ -64,9 +66,9 @@ def wavelength_A(kv):
     0.02508
     """
     volts = _check_kv(kv) * 1e3
-    energy = _c.e * volts
-    momentum = math.sqrt(2 * _c.m_e * energy * (1 + energy / (2 * _c.m_e * _c.c ** 2)))
-    return _c.h / momentum * 1e10
+    energy = _E * volts
+    momentum = math.sqrt(2 * _M0 * energy * (1 + energy / (2 * _M0 * _C ** 2)))
+    return _H / momentum * 1e10
 
 
 def wave_number(kv):
@@ -76,7 +78,7 @@ def wave_number(kv):
 
 def relativistic_factor(kv):
     """gamma = 1 + e V / (m0 c^2)."""
-    return 1.0 + _c.e * _check_kv(kv) * 1e3 / (_c.m_e * _c.c ** 2)
+    return 1.0 + _E * _check_kv(kv) * 1e3 / (_M0 * _C ** 2)
 
 
 def mean_inner_potential_V(crystal):

@@ -3,6 +3,18 @@
 Figures are built on :class:`matplotlib.figure.Figure` directly, so no
 pyplot state or interactive backend is involved; notebooks display the
 returned figure, the command line saves it by suffix (PNG, SVG or PDF).
+
+The look of laueline
+--------------------
+Warm paper, slate ink.  Measured things are petrol blue, model things amber
+(thin and half transparent, so the data stay visible underneath), residuals
+raspberry, Laue-zone rings plum.  Headings are set in a serif and aligned
+left, with the key numbers in a grey second line; frames keep only the left
+and bottom spines.  Every encoded quantity has a key: line width for the
+relative strength, an arrow for the residual magnification.
+:func:`style_figure` applies the frame, text and heading rules to any
+figure and :func:`save_figure` calls it, so every command's figure shares
+the look.
 """
 
 from __future__ import annotations
@@ -12,75 +24,237 @@ import numpy as np
 
 __all__ = ["pattern_figure", "fit_figure", "thickness_figure", "survey_figure", "robust_log_limits",
            "survey_map_coordinates", "detection_figure", "map_figure", "save_figure",
-           "draw_disk_lines", "hkl_label"]
+           "style_figure", "draw_disk_lines", "hkl_label", "PALETTE"]
 
-_DISK_FILL = "#f4f1ea"
-_DISK_EDGE = "#5b5b5b"
-_LINE = "#1f2d4a"
-_CROSSING = "#c0532f"
-_RING = "#7a4f9a"
-_ZOLZ_FILL = "#dbe6ea"
+PALETTE = {
+    "paper": "#fbf9f4",      # figure background
+    "ink": "#22303c",        # text, predicted loci
+    "soft": "#6f7a84",       # frames, secondary text
+    "disk": "#eaf0ee",       # central disk fill
+    "zero_layer": "#d7e1e6",  # zero-layer disks of the overview
+    "measured": "#11708a",   # data: points, detected lines
+    "model": "#e3891b",      # fitted loci and other model curves
+    "residual": "#c0295f",   # residual arrows
+    "ring": "#7d5aa6",       # HOLZ rings
+    "muted": "#a3a9ae",      # flagged or left-out data
+}
+
+# names the thickness and survey figures use
+_DISK_FILL = PALETTE["disk"]
+_DISK_EDGE = PALETTE["soft"]
+_LINE = PALETTE["ink"]
+_CROSSING = PALETTE["residual"]
+_RING = PALETTE["ring"]
+_ZOLZ_FILL = PALETTE["zero_layer"]
+
+_HEADING_FONT = "DejaVu Serif"   # ships with matplotlib, so every installation has it
+_TEXT_FONT = "DejaVu Sans"
 
 
-def hkl_label(hkl):
-    """Miller indices in mathtext with bars over negative indices."""
+def hkl_label(hkl, brackets=""):
+    """Miller indices in mathtext, bars over negative indices, thin spaces between.
+
+    ``brackets`` is ``""``, ``"()"`` or ``"[]"``: ``hkl_label((2, -3, 0), "[]")``
+    draws [2 3̄ 0].
+    """
     values = [int(v) for v in hkl]
     parts = [rf"\bar{{{-v}}}" if v < 0 else str(v) for v in values]
-    sep = r"\," if any(abs(v) >= 10 for v in values) else ""
-    return "$" + sep.join(parts) + "$"
+    body = r"\,".join(parts)
+    if brackets:
+        body = brackets[0] + body + brackets[1]
+    return "$" + body + "$"
 
 
 def _new_figure(width, height):
     from matplotlib.figure import Figure
 
-    return Figure(figsize=(width, height), layout="constrained")
+    return Figure(figsize=(width, height), layout="constrained",
+                  facecolor=PALETTE["paper"])
+
+
+def style_figure(fig):
+    """Apply laueline's frame, text and heading rules to every panel of ``fig``.
+
+    Left and bottom spines only (all four around images), slate text, serif
+    headings aligned left.  Safe to call more than once; returns ``fig``.
+    """
+    from matplotlib.text import Text
+
+    fig.set_facecolor(PALETTE["paper"])
+    for ax in fig.axes:
+        is_image = bool(ax.images)
+        if ax.get_label() == "<colorbar>":
+            ax.tick_params(which="both", colors=PALETTE["soft"], labelcolor=PALETTE["ink"],
+                           labelsize=8)
+            for label in (ax.xaxis.label, ax.yaxis.label):
+                label.set_fontsize(9)
+                label.set_color(PALETTE["ink"])
+            continue
+        ax.set_facecolor(PALETTE["paper"] if not is_image else "white")
+        for side, spine in ax.spines.items():
+            spine.set_color(PALETTE["soft"])
+            spine.set_linewidth(0.7)
+            spine.set_visible(is_image or side in ("left", "bottom"))
+        ax.tick_params(which="both", colors=PALETTE["soft"], labelcolor=PALETTE["ink"],
+                       labelsize=8, direction="out", width=0.7)
+        for label in (ax.xaxis.label, ax.yaxis.label):
+            label.set_color(PALETTE["ink"])
+            label.set_fontsize(9)
+        centre = ax.title.get_text()
+        if centre:  # headings go to the left, in the heading face
+            ax.set_title(centre, loc="left")
+            ax.set_title("", loc="center")
+        ax._left_title.set_fontfamily(_HEADING_FONT)
+        ax._left_title.set_fontsize(10)
+        ax._left_title.set_color(PALETTE["ink"])
+    for text in fig.findobj(Text):
+        if text.get_fontfamily() != [_HEADING_FONT]:
+            text.set_fontfamily(_TEXT_FONT)
+    return fig
 
 
 def save_figure(fig, path):
-    """Save a figure; the format follows the file suffix."""
-    fig.savefig(path, dpi=150)
+    """Save a figure in laueline's style; the format follows the file suffix."""
+    style_figure(fig).savefig(path, dpi=150, facecolor=fig.get_facecolor())
 
 
-def _halo():
+def _halo(width=2.4):
     from matplotlib import patheffects
 
-    return [patheffects.withStroke(linewidth=2.2, foreground="white")]
+    return [patheffects.withStroke(linewidth=width, foreground="white")]
 
 
-def draw_disk_lines(ax, pattern, *, n_labels=10, show_crossings=True, to_plot=None,
-                    fill=True):
+def _heading(ax, title, subtitle=None):
+    """A serif heading on the left, with grey lines of key numbers below (``\\n`` splits)."""
+    n_lines = subtitle.count("\n") + 1 if subtitle else 0
+    ax.set_title(title, loc="left", fontsize=10, fontfamily=_HEADING_FONT,
+                 color=PALETTE["ink"], pad=6 + 10 * n_lines)
+    if subtitle:
+        ax.annotate(subtitle, xy=(0, 1), xycoords="axes fraction", xytext=(0, 4),
+                    textcoords="offset points", ha="left", va="bottom", fontsize=8,
+                    color=PALETTE["soft"], annotation_clip=False)
+
+
+def _line_width(strength):
+    """Line width in points for a relative strength (the key shows the mapping)."""
+    return 0.45 + 2.0 * np.clip(strength, 0.0, 1.0)
+
+
+def _strength_key(ax, loc="lower left", title="relative strength"):
+    from matplotlib.lines import Line2D
+
+    handles = [Line2D([], [], color=PALETTE["ink"], linewidth=_line_width(s),
+                      alpha=0.35 + 0.65 * s, label=f"{s:g}") for s in (1.0, 0.5, 0.1)]
+    return ax.legend(handles=handles, title=title, loc=loc, fontsize=7, title_fontsize=7,
+                     framealpha=0.92, edgecolor=PALETTE["muted"], handlelength=2.2)
+
+
+def _label_positions(polylines, *, separation):
+    """A point on each polyline for its label, as far as possible from earlier labels.
+
+    Candidates run from 15 % to 85 % of each polyline; the first label goes
+    at 30 %, each later one where it is farthest from those already placed.
+    Returns (positions (n, 2), indices into each polyline).
+    """
+    placed, where = [], []
+    for xy in polylines:
+        n = len(xy)
+        cand = np.arange(int(0.15 * (n - 1)), int(0.85 * (n - 1)) + 1)
+        if not placed:
+            k = cand[int(0.2 * len(cand))]
+        else:
+            d = np.min(np.linalg.norm(xy[cand, None, :] - np.array(placed)[None], axis=2),
+                       axis=1)
+            k = cand[int(np.argmax(np.minimum(d, separation * 4)))] if d.max() > 0 else cand[0]
+        placed.append(xy[k])
+        where.append(k)
+    return np.array(placed).reshape(-1, 2), where
+
+
+def _label_lines(ax, polylines, texts, *, colour, fontsize=7, separation=None):
+    """Write each text on its polyline, in a small white box that keeps it readable."""
+    if not polylines:
+        return
+    if separation is None:
+        span = np.ptp(np.concatenate(polylines), axis=0).max()
+        separation = 0.08 * span
+    positions, _ = _label_positions(polylines, separation=separation)
+    for pos, text in zip(positions, texts):
+        ax.text(pos[0], pos[1], text, fontsize=fontsize, color=colour, ha="center",
+                va="center", zorder=6,
+                bbox=dict(boxstyle="round,pad=0.18", facecolor="white", edgecolor=colour,
+                          linewidth=0.4, alpha=0.88))
+
+
+def draw_disk_lines(ax, pattern, *, n_labels=10, show_crossings=False, to_plot=None,
+                    fill=True, style="predicted"):
     """Draw the central disk with the exact loci on ``ax``.
 
     Parameters
     ----------
+    n_labels : int
+        Label the strongest lines with their indices, on the lines.
+    show_crossings : bool
+        Mark the crossings of the labelled lines with one another (all
+        crossings would bury the lines).
     to_plot : callable, optional
         Maps (m, 2) mrad points to plot coordinates (for example pixels);
         identity by default.
+    fill : bool
+        Fill the disk (off when an image is underneath).
+    style : {"predicted", "fitted"}
+        Predicted loci in ink, width and opacity by strength; fitted loci thin
+        and half transparent in the model colour, so data beneath stay visible.
     """
+    from matplotlib.collections import LineCollection
     from matplotlib.patches import Polygon
 
     convert = to_plot or (lambda xy: xy)
     angle = np.linspace(0, 2 * np.pi, 361)
     rim = pattern.disk_mrad * np.stack([np.cos(angle), np.sin(angle)], axis=1)
-    ax.add_patch(Polygon(convert(rim), closed=True, facecolor=_DISK_FILL if fill else "none",
-                         edgecolor=_DISK_EDGE, linewidth=1.0, zorder=0 if fill else 3))
-    order = np.argsort(pattern.strength)  # weak first, strong drawn on top
-    for i in order:
-        s = float(min(pattern.strength[i], 1.0))
-        xy = convert(pattern.points_mrad[i])
-        ax.plot(xy[:, 0], xy[:, 1], color=_LINE, linewidth=0.4 + 1.8 * s,
-                alpha=0.25 + 0.75 * s, solid_capstyle="butt", zorder=2)
-    halo = _halo()
-    for i in np.argsort(-pattern.strength, kind="stable")[:n_labels]:
-        xy = convert(pattern.points_mrad[i])
-        end = xy[-6]
-        ax.text(end[0], end[1], hkl_label(pattern.hkl[i]), fontsize=7, color=_LINE,
-                ha="center", va="center", path_effects=halo, zorder=4)
+    ax.add_patch(Polygon(convert(rim), closed=True,
+                         facecolor=PALETTE["disk"] if fill else "none",
+                         edgecolor=PALETTE["soft"], linewidth=0.9, zorder=0 if fill else 3))
+    order = np.argsort(pattern.strength, kind="stable")  # weak first, strong on top
+    segments = [convert(pattern.points_mrad[i]) for i in order]
+    s = np.clip(pattern.strength[order], 0.0, 1.0)
+    if style == "fitted":
+        ax.add_collection(LineCollection(segments, colors=PALETTE["model"], linewidths=0.9,
+                                         alpha=0.6, zorder=4, label="fitted loci"))
+        label_colour = PALETTE["ink"]
+    else:
+        colours = np.zeros((len(s), 4))
+        colours[:] = _rgba(PALETTE["ink"])
+        colours[:, 3] = 0.35 + 0.65 * s
+        ax.add_collection(LineCollection(segments, colors=colours, linewidths=_line_width(s),
+                                         capstyle="butt", zorder=2))
+        label_colour = PALETTE["ink"]
+    strongest = np.argsort(-pattern.strength, kind="stable")[:n_labels]
+    _label_lines(ax, [convert(pattern.points_mrad[i]) for i in strongest],
+                 [hkl_label(pattern.hkl[i]) for i in strongest], colour=label_colour)
     if show_crossings and pattern.n_crossings:
-        xy = convert(pattern.crossing_mrad)
-        ax.plot(xy[:, 0], xy[:, 1], linestyle="none", marker="o", markersize=2.6,
-                markerfacecolor="none", markeredgecolor=_CROSSING, markeredgewidth=0.7,
-                zorder=3)
+        chosen = np.isin(pattern.crossing_lines, strongest).all(axis=1)
+        xy = convert(pattern.crossing_mrad[chosen]).reshape(-1, 2)
+        ax.plot(xy[:, 0], xy[:, 1], linestyle="none", marker="D", markersize=3.2,
+                markerfacecolor="white", markeredgecolor=PALETTE["residual"],
+                markeredgewidth=0.8, zorder=5,
+                label=f"crossings of labelled lines ({len(xy)} of {pattern.n_crossings})")
+
+
+def _rgba(colour):
+    from matplotlib.colors import to_rgba
+
+    return np.array(to_rgba(colour))
+
+
+def _ring_label_angle(radius, centres, disk):
+    """Angle (rad) on a ring of ``radius`` farthest from every zero-layer disk."""
+    theta = np.radians(np.arange(20.0, 70.0, 1.0))  # upper right, clear of the axes
+    pts = radius * np.stack([np.cos(theta), np.sin(theta)], axis=1)
+    if len(centres) == 0:
+        return theta[len(theta) // 2]
+    gap = np.min(np.linalg.norm(pts[:, None] - centres[None], axis=2), axis=1) - disk
+    return theta[int(np.argmax(gap))]
 
 
 def pattern_figure(pattern, *, n_labels=10, show_crossings=False):
@@ -90,9 +264,9 @@ def pattern_figure(pattern, *, n_labels=10, show_crossings=False):
     ----------
     pattern : laueline.lines.Pattern
     n_labels : int
-        Number of strongest lines labelled with their indices.
+        Number of strongest lines labelled with their indices, on the lines.
     show_crossings : bool
-        Mark the crossings.
+        Mark the crossings of the labelled lines.
 
     Returns
     -------
@@ -100,40 +274,61 @@ def pattern_figure(pattern, *, n_labels=10, show_crossings=False):
     """
     from matplotlib.patches import Circle
 
-    fig = _new_figure(10.5, 5.2)
+    fig = _new_figure(11.0, 6.2)
     ax_disk, ax_all = fig.subplots(1, 2, width_ratios=[1.15, 1])
-    draw_disk_lines(ax_disk, pattern, n_labels=n_labels, show_crossings=show_crossings)
     r = pattern.disk_mrad * 1.06
     ax_disk.set_xlim(-r, r)
     ax_disk.set_ylim(-r, r)
     ax_disk.set_aspect("equal")
-    ax_disk.set_xlabel(f"t$_x$ (mrad), along ({hkl_label(pattern.x_axis)})")
+    draw_disk_lines(ax_disk, pattern, n_labels=n_labels, show_crossings=show_crossings)
+    key = _strength_key(ax_disk, loc="upper left")
+    if show_crossings and ax_disk.get_legend_handles_labels()[0]:
+        ax_disk.add_artist(key)
+        ax_disk.legend(loc="lower left", fontsize=7, framealpha=0.92,
+                       edgecolor=PALETTE["muted"])
+    ax_disk.set_xlabel(f"t$_x$ (mrad), along {hkl_label(pattern.x_axis, '()')}")
     ax_disk.set_ylabel("t$_y$ (mrad)")
     cr = pattern.crystal
-    ax_disk.set_title(f"{cr.name} [{hkl_label(pattern.zone)}], {pattern.beam.kv:g} kV: "
-                      f"{pattern.n_lines} lines, {pattern.n_crossings} crossings",
-                      fontsize=10)
+    n_holz = int(np.sum(pattern.laue_zone >= 1))
+    strained = ", strained" if pattern.strain is not None else ""
+    _heading(ax_disk, f"{cr.name} {hkl_label(pattern.zone, '[]')}{strained}  central disk",
+             f"{pattern.beam.kv:g} kV, {pattern.disk_mrad:g} mrad; {pattern.n_lines} lines "
+             f"({n_holz} HOLZ), {pattern.n_crossings} crossings; the "
+             f"{min(n_labels, pattern.n_lines)} strongest labelled\n"
+             "kinematic loci: dynamical line shifts are not included")
 
-    extent = max([pattern.disk_mrad * 4] + list(pattern.ring_radius_mrad * 1.08))
-    ax_all.add_patch(Circle((0, 0), pattern.disk_mrad, facecolor=_DISK_FILL,
-                            edgecolor=_DISK_EDGE, linewidth=1.0, zorder=2))
-    for centre in pattern.zero_layer_mrad:
-        if np.hypot(*centre) < extent:
-            ax_all.add_patch(Circle(tuple(centre), pattern.disk_mrad, facecolor=_ZOLZ_FILL,
-                                    edgecolor="#8aa1ab", linewidth=0.5, zorder=1))
-    halo = _halo()
-    for n, radius in zip(pattern.ring_layers, pattern.ring_radius_mrad):
-        ax_all.add_patch(Circle((0, 0), radius, fill=False, edgecolor=_RING,
-                                linestyle=(0, (4, 3)), linewidth=1.0, zorder=3))
-        ax_all.text(radius * 0.707, radius * 0.707, f"n={n}", color=_RING, fontsize=7,
-                    path_effects=halo, zorder=4)
+    extent = max([pattern.disk_mrad * 4] + list(pattern.ring_radius_mrad * 1.1))
+    ax_all.add_patch(Circle((0, 0), pattern.disk_mrad, facecolor=PALETTE["disk"],
+                            edgecolor=PALETTE["ink"], linewidth=1.0, zorder=2,
+                            label="central disk"))
+    centres = np.asarray(pattern.zero_layer_mrad).reshape(-1, 2)
+    near = centres[np.hypot(*centres.T) < extent * 1.5]
+    for k, centre in enumerate(near):
+        ax_all.add_patch(Circle(tuple(centre), pattern.disk_mrad, facecolor=PALETTE["zero_layer"],
+                                edgecolor=PALETTE["muted"], linewidth=0.4, alpha=0.7, zorder=1,
+                                label="zero-layer disks" if k == 0 else None))
+    for k, (n, radius) in enumerate(zip(pattern.ring_layers, pattern.ring_radius_mrad)):
+        ax_all.add_patch(Circle((0, 0), radius, fill=False, edgecolor=PALETTE["ring"],
+                                linestyle=(0, (5, 3)), linewidth=1.0, zorder=3,
+                                label="HOLZ rings (Laue zone n)" if k == 0 else None))
+        theta = _ring_label_angle(radius, near, pattern.disk_mrad)
+        ax_all.text(radius * np.cos(theta), radius * np.sin(theta), f"n = {n}",
+                    color=PALETTE["ring"], fontsize=8, ha="center", va="center", zorder=4,
+                    bbox=dict(boxstyle="round,pad=0.2", facecolor=PALETTE["paper"],
+                              edgecolor="none"))
     ax_all.set_xlim(-extent, extent)
     ax_all.set_ylim(-extent, extent)
     ax_all.set_aspect("equal")
-    ax_all.set_xlabel("mrad")
-    ax_all.set_title(f"zero-layer disks (radius {pattern.disk_mrad:g} mrad) and HOLZ rings",
-                     fontsize=10)
-    return fig
+    ax_all.set_xlabel("t$_x$ (mrad)")
+    ax_all.set_ylabel("t$_y$ (mrad)")
+    ax_all.legend(loc="lower left", fontsize=7, framealpha=0.92, edgecolor=PALETTE["muted"])
+    rings = ", ".join(f"{r:.1f}" for r in pattern.ring_radius_mrad[:3])
+    rings = f"rings at {rings} mrad" if rings else "no HOLZ ring in view"
+    overlap = ("the disks overlap" if pattern.disk_mrad > pattern.max_convergence_mrad
+               else "disks overlap") + f" above {pattern.max_convergence_mrad:.2f} mrad"
+    _heading(ax_all, "overview: zero-layer disks and HOLZ rings",
+             f"disk radius {pattern.disk_mrad:g} mrad; {rings}; {overlap}")
+    return style_figure(fig)
 
 
 def _nice_factor(raw):
@@ -147,8 +342,17 @@ def _nice_factor(raw):
     return float(10 ** k)
 
 
+def _nice_length(raw):
+    """A 1-2-5 value near ``raw`` (for a key arrow)."""
+    if not np.isfinite(raw) or raw <= 0:
+        return 1.0
+    k = np.floor(np.log10(raw))
+    m = raw / 10 ** k
+    return float((1 if m < 1.5 else 2 if m < 3.5 else 5 if m < 7.5 else 10) * 10 ** k)
+
+
 def fit_figure(result, crystal, *, image=None, magnify=None):
-    """Measured points over the fitted loci, with magnified residual vectors.
+    """Measured data with the fitted loci drawn thinly over them, and magnified residuals.
 
     Parameters
     ----------
@@ -159,19 +363,26 @@ def fit_figure(result, crystal, *, image=None, magnify=None):
         The pattern, drawn underneath in pixel coordinates (row = y down).
     magnify : float, optional
         Residual magnification; by default a 1-2-5 value drawing the rms
-        residual at about 8 % of the disk radius.
+        residual at about 8 % of the disk radius.  A key arrow gives the scale.
     """
     from .refine import fitted_pattern
 
     pattern = fitted_pattern(result, crystal)
     det = result.detector
-    fig = _new_figure(7.2, 7.0)
+    fig = _new_figure(7.4, 7.6)
     ax = fig.subplots()
     if image is not None:
-        ax.imshow(image, cmap="gray", origin="upper", interpolation="nearest")
-    draw_disk_lines(ax, pattern, n_labels=8, show_crossings=False, to_plot=det.to_pixels,
-                    fill=image is None)
+        lo, hi = np.percentile(image, [1, 99.7])
+        ax.imshow(image, cmap="gray", origin="upper", interpolation="nearest", vmin=lo,
+                  vmax=hi)
     radius_px = result.disk_mrad * det.scale_px_per_mrad
+    c = np.asarray(det.center_px)
+    pad = 1.08 * radius_px
+    ax.set_xlim(c[0] - pad, c[0] + pad)
+    ax.set_ylim(c[1] + pad, c[1] - pad)  # rows grow downward
+    ax.set_aspect("equal")
+    draw_disk_lines(ax, pattern, n_labels=8, to_plot=det.to_pixels, fill=image is None,
+                    style="fitted")
     if magnify is None:
         rms = result.rms_px if np.isfinite(result.rms_px) and result.rms_px > 0 else 1.0
         magnify = _nice_factor(0.08 * radius_px / rms)
@@ -190,40 +401,42 @@ def fit_figure(result, crystal, *, image=None, magnify=None):
         xy, res = np.array(pts).reshape(-1, 2), np.array(vec).reshape(-1, 2)
         fitted, ok = xy, np.all(np.isfinite(res), axis=1)
         used = np.ones(len(xy), bool)
-        label = "detected line points"
+        label = "points on the detected lines"
         left = np.array(left).reshape(-1, 2)
     else:
-        xy = np.array([[p["x_px"], p["y_px"]] for p in result.points])
-        res = np.array([p["residual_px"] for p in result.points], dtype=float)
-        used = np.array([p["used"] for p in result.points])
+        xy = np.array([[p["x_px"], p["y_px"]] for p in result.points]).reshape(-1, 2)
+        res = np.array([p["residual_px"] for p in result.points], dtype=float).reshape(-1, 2)
+        used = np.array([p["used"] for p in result.points], dtype=bool)
         ok = used & np.all(np.isfinite(res), axis=1)
         fitted = xy - res
-        label = "measured, used"
+        label = "measured crossings"
         left = xy[~used]
-    ax.quiver(fitted[ok, 0], fitted[ok, 1], magnify * res[ok, 0], magnify * res[ok, 1],
-              angles="xy", scale_units="xy", scale=1, color=_CROSSING, width=0.004,
-              zorder=5)
-    ax.plot(xy[used, 0], xy[used, 1], linestyle="none", marker="o", markersize=3.5,
-            markerfacecolor="#2a9d8f", markeredgecolor="white", markeredgewidth=0.4,
-            zorder=6, label=label)
+    arrows = ax.quiver(fitted[ok, 0], fitted[ok, 1], magnify * res[ok, 0],
+                       magnify * res[ok, 1], angles="xy", scale_units="xy", scale=1,
+                       color=PALETTE["residual"], width=0.0035, headwidth=4, zorder=7)
+    ax.plot(xy[used, 0], xy[used, 1], linestyle="none", marker="o", markersize=3.6,
+            markerfacecolor=PALETTE["measured"], markeredgecolor="white",
+            markeredgewidth=0.5, zorder=8, label=label)
     if len(left):
         ax.plot(left[:, 0], left[:, 1], linestyle="none", marker="x", markersize=5,
-                color="#6c6c6c", zorder=6, label="left out")
-    c = np.asarray(det.center_px)
-    pad = 1.08 * radius_px
-    ax.set_xlim(c[0] - pad, c[0] + pad)
-    ax.set_ylim(c[1] + pad, c[1] - pad)  # rows grow downward
-    ax.set_aspect("equal")
+                color=PALETTE["muted"], zorder=8, label="left out of the fit")
+    key_px = _nice_length(result.rms_px if np.isfinite(result.rms_px) else 1.0)
+    key = ax.quiverkey(arrows, 0.04, 0.035, magnify * key_px,
+                       f"residual of {key_px:g} px, drawn {magnify:g} times longer",
+                       labelpos="E", coordinates="axes", fontproperties={"size": 7},
+                       color=PALETTE["residual"], labelcolor=PALETTE["ink"], zorder=9)
+    key.text.set_bbox(dict(boxstyle="round,pad=0.3", facecolor="white", alpha=0.92,
+                           edgecolor=PALETTE["muted"], linewidth=0.5))
+    ax.legend(loc="upper right", fontsize=7, framealpha=0.92, edgecolor=PALETTE["muted"])
     ax.set_xlabel("x (px)")
     ax.set_ylabel("y (px, down)")
-    zone = "".join(str(v) for v in result.zone) if all(0 <= v < 10 for v in result.zone) \
-        else " ".join(str(v) for v in result.zone)
     what = "points" if result.lines is None else "lines"
-    ax.set_title(f"{result.structure['name']} [{zone}], model {result.model}: "
-                 f"{result.n_used} {what}, rms {result.rms_px:.3g} px\n"
-                 f"residuals drawn {magnify:g} x", fontsize=10)
-    ax.legend(loc="lower right", fontsize=8, framealpha=0.9)
-    return fig
+    _heading(ax, f"{result.structure['name']} {hkl_label(result.zone, '[]')}  fit of the "
+                 f"{result.model} model",
+             f"{result.n_used} {what} used, rms {result.rms_px:.3g} px; amber: fitted loci, "
+             "blue: measured\nkinematic model; the strain is that of the thin foil, which "
+             "relaxes at its surfaces")
+    return style_figure(fig)
 
 
 def thickness_figure(result):
@@ -498,33 +711,56 @@ def map_figure(ds, *, sample_frame=None):
     return fig
 
 
-def detection_figure(det, image):
-    """The pattern with the detected disk, lines (flagged ones dashed) and crossings."""
+def detection_figure(det, image, *, show_crossings=True):
+    """The pattern with the detected disk, lines (flagged ones dashed) and crossings.
+
+    Each line carries its index in the detection (the ``lines`` list of the
+    JSON and the report's table), written on the line itself.
+    """
+    from matplotlib.lines import Line2D
     from matplotlib.patches import Circle
 
-    fig = _new_figure(7.0, 7.0)
+    fig = _new_figure(7.4, 7.6)
     ax = fig.subplots()
-    ax.imshow(image, cmap="gray", origin="upper", interpolation="nearest")
-    d = det.disk
-    ax.add_patch(Circle(d.center_px, d.radius_px, fill=False, edgecolor="#e9c46a",
-                        linewidth=0.8, linestyle=(0, (3, 2))))
-    for i, ln in enumerate(det.lines):
-        pts = ln.points_px
-        style = (0, (4, 3)) if ln.flag else "-"
-        colour = "#9b9b9b" if ln.flag else "#2a9d8f"
-        ax.plot(pts[:, 0], pts[:, 1], color=colour, linewidth=0.9, linestyle=style, alpha=0.9)
-        mid = pts[len(pts) // 2]
-        ax.text(mid[0], mid[1], str(i), fontsize=6, color="#f4f1ea", ha="center",
-                va="center", zorder=5)
-    if len(det.crossing_px):
-        ax.plot(det.crossing_px[:, 0], det.crossing_px[:, 1], linestyle="none", marker="o",
-                markersize=2.2, markerfacecolor="none", markeredgecolor=_CROSSING,
-                markeredgewidth=0.6)
+    lo, hi = np.percentile(image, [1, 99.7])
+    ax.imshow(image, cmap="gray", origin="upper", interpolation="nearest", vmin=lo, vmax=hi)
     ax.set_xlim(-0.5, image.shape[1] - 0.5)
     ax.set_ylim(image.shape[0] - 0.5, -0.5)
-    ax.set_title(f"{len(det.good_lines)} lines, {len(det.crossing_px)} crossings"
-                 + (f", {len(det.lines) - len(det.good_lines)} flagged" if
-                    len(det.lines) != len(det.good_lines) else ""), fontsize=10)
+    ax.set_aspect("equal")
+    d = det.disk
+    ax.add_patch(Circle(d.center_px, d.radius_px, fill=False, edgecolor=PALETTE["model"],
+                        linewidth=1.0, linestyle=(0, (4, 3)), zorder=3))
+    good = [i for i, ln in enumerate(det.lines) if not ln.flag]
+    flagged = [i for i, ln in enumerate(det.lines) if ln.flag]
+    for i in good:
+        pts = det.lines[i].points_px
+        ax.plot(pts[:, 0], pts[:, 1], color=PALETTE["measured"], linewidth=0.8, alpha=0.6,
+                zorder=4)
+    for i in flagged:
+        pts = det.lines[i].points_px
+        ax.plot(pts[:, 0], pts[:, 1], color=PALETTE["muted"], linewidth=1.0,
+                linestyle=(0, (4, 3)), zorder=4)
+    _label_lines(ax, [det.lines[i].points_px for i in good + flagged],
+                 [str(i) for i in good + flagged], colour=PALETTE["ink"], fontsize=7,
+                 separation=0.06 * d.radius_px * 2)
+    handles = [Line2D([], [], color=PALETTE["measured"], linewidth=1.0,
+                      label=f"lines ({len(good)}), index on the line"),
+               Line2D([], [], color=PALETTE["model"], linewidth=1.0, linestyle=(0, (4, 3)),
+                      label="disk edge fitted")]
+    if flagged:
+        handles.append(Line2D([], [], color=PALETTE["muted"], linestyle=(0, (4, 3)),
+                              label=f"flagged, left out ({len(flagged)})"))
+    if show_crossings and len(det.crossing_px):
+        ax.plot(det.crossing_px[:, 0], det.crossing_px[:, 1], linestyle="none", marker="o",
+                markersize=1.5, color=PALETTE["residual"], alpha=0.8, zorder=5)
+        handles.append(Line2D([], [], linestyle="none", marker="o", markersize=3,
+                              color=PALETTE["residual"],
+                              label=f"crossings ({len(det.crossing_px)})"))
+    ax.legend(handles=handles, loc="upper right", fontsize=7, framealpha=0.92,
+              edgecolor=PALETTE["muted"])
     ax.set_xlabel("x (px)")
     ax.set_ylabel("y (px, down)")
-    return fig
+    _heading(ax, "detected disk and lines",
+             f"disk r = {d.radius_px:.1f} px at ({d.center_px[0]:.1f}, "
+             f"{d.center_px[1]:.1f}); {len(good)} lines, {len(det.crossing_px)} crossings")
+    return style_figure(fig)

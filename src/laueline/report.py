@@ -51,11 +51,13 @@ F_UNIT = ("angstrom; kinematic electron structure factor sum_j occ_j f_j exp(-B_
 
 
 def format_hkl(hkl):
-    """Compact Miller-index label: (2, -3, 10) -> '2 -3 10', (1, 1, 1) -> '111'."""
-    values = [int(v) for v in hkl]
-    if all(-9 <= v <= 9 for v in values) and all(v >= 0 for v in values):
-        return "".join(str(v) for v in values)
-    return " ".join(str(v) for v in values)
+    """Miller indices as signed integers with spaces: (2, -3, 10) -> '2 -3 10', (1, 1, 1) -> '1 1 1'.
+
+    One format for every text output (figures draw bars instead of minus signs).
+    """
+    from .results import format_indices
+
+    return format_indices(hkl)
 
 
 def check_outputs(paths, force=False, figure=None):
@@ -88,11 +90,36 @@ def _clean(value):
     return value
 
 
+def _json_default(value):
+    if isinstance(value, np.ndarray):
+        return value.tolist()
+    if isinstance(value, np.integer):
+        return int(value)
+    if isinstance(value, np.floating):
+        return float(value)
+    if isinstance(value, np.bool_):
+        return bool(value)
+    raise TypeError(f"{type(value).__name__} is not JSON serialisable")
+
+
+def json_text(document):
+    """JSON text of a document: numpy values converted, non-finite numbers as null.
+
+    One pass through the C encoder, compact separators; only a document
+    holding a NaN or an infinity is cleaned first (a second pass).
+    """
+    try:
+        return json.dumps(document, separators=(",", ":"), allow_nan=False,
+                          default=_json_default)
+    except ValueError:
+        return json.dumps(_clean(document), separators=(",", ":"), allow_nan=False)
+
+
 def write_json(document, path, force=False):
     """Write a JSON document (numpy values converted, non-finite -> null)."""
     path = Path(path)
     check_outputs([path], force)
-    text = json.dumps(_clean(document), indent=1)
+    text = json_text(document)
     tmp = path.with_name(path.name + ".part")
     tmp.write_text(text + "\n", encoding="utf-8")
     os.replace(tmp, path)
@@ -135,42 +162,44 @@ def read_json(path, schema_prefix):
 # ---------------------------------------------------------------------------
 
 def pattern_document(pattern):
-    """The ``laueline.pattern/1`` document of a :class:`~laueline.lines.Pattern`."""
-    lines = []
-    for i in range(pattern.n_lines):
-        lines.append({
-            "hkl": pattern.hkl[i], "laue_zone": pattern.laue_zone[i],
-            "g_inv_A": pattern.g_inv_A[i], "f_abs": pattern.f_abs[i],
-            "strength": pattern.strength[i], "normal": pattern.normal[i],
-            "offset_mrad": pattern.offset_mrad[i], "points_mrad": pattern.points_mrad[i],
-        })
-    crossings = [{"lines": pattern.crossing_lines[k], "xy_mrad": pattern.crossing_mrad[k],
-                  "angle_deg": pattern.crossing_angle_deg[k]}
-                 for k in range(pattern.n_crossings)]
+    """The ``laueline.pattern/1`` document of a :class:`~laueline.lines.Pattern`.
+
+    Built from plain Python values (arrays converted once with ``tolist``),
+    so it is ready for :func:`json_text` without another pass.
+    """
+    keys = ("hkl", "laue_zone", "g_inv_A", "f_abs", "strength", "normal", "offset_mrad",
+            "points_mrad")
+    columns = [getattr(pattern, k).tolist() for k in keys]
+    lines = [dict(zip(keys, row)) for row in zip(*columns)]
+    crossings = [{"lines": ab, "xy_mrad": xy, "angle_deg": angle}
+                 for ab, xy, angle in zip(pattern.crossing_lines.tolist(),
+                                          pattern.crossing_mrad.tolist(),
+                                          pattern.crossing_angle_deg.tolist())]
     frame = pattern.frame
-    return _clean({
+    rotation = np.asarray(frame.rotation, dtype=float).tolist()
+    return {
         "schema": PATTERN_SCHEMA,
-        "structure": pattern.crystal.summary(),
-        "beam": {"kv": pattern.beam.kv, "wavelength_A": pattern.beam.wavelength_A,
-                 "disk_mrad": pattern.disk_mrad,
-                 "inner_potential_V": pattern.beam.inner_potential_V,
-                 "wave_number_inv_A": pattern.beam.wave_number},
-        "zone": list(frame.zone),
-        "x_axis": list(frame.x_axis),
-        "x_axis_chosen": frame.x_axis_chosen,
-        "frame_cartesian": {"x": frame.rotation[0], "y": frame.rotation[1],
-                            "beam_direction": frame.rotation[2]},
-        "strain": pattern.strain,
-        "gmax_inv_A": pattern.gmax,
+        "structure": _clean(pattern.crystal.summary()),
+        "beam": {"kv": float(pattern.beam.kv), "wavelength_A": float(pattern.beam.wavelength_A),
+                 "disk_mrad": float(pattern.disk_mrad),
+                 "inner_potential_V": _clean(pattern.beam.inner_potential_V),
+                 "wave_number_inv_A": float(pattern.beam.wave_number)},
+        "zone": [int(v) for v in frame.zone],
+        "x_axis": [int(v) for v in frame.x_axis],
+        "x_axis_chosen": bool(frame.x_axis_chosen),
+        "frame_cartesian": {"x": rotation[0], "y": rotation[1], "beam_direction": rotation[2]},
+        "strain": None if pattern.strain is None else np.asarray(pattern.strain).tolist(),
+        "gmax_inv_A": float(pattern.gmax),
         "f_unit": F_UNIT,
         "lines": lines,
         "crossings": crossings,
-        "rings": [{"laue_zone": int(n), "radius_mrad": r}
-                  for n, r in zip(pattern.ring_layers, pattern.ring_radius_mrad)],
-        "max_convergence_mrad": pattern.max_convergence_mrad,
-        "overlap_hkl": list(pattern.overlap_hkl),
+        "rings": [{"laue_zone": n, "radius_mrad": r}
+                  for n, r in zip(np.asarray(pattern.ring_layers).tolist(),
+                                  np.asarray(pattern.ring_radius_mrad).tolist())],
+        "max_convergence_mrad": _clean(pattern.max_convergence_mrad),
+        "overlap_hkl": [int(v) for v in pattern.overlap_hkl],
         "warnings": list(pattern.warnings),
-    })
+    }
 
 
 def pattern_tables(pattern):
