@@ -1,0 +1,1004 @@
+"""The one fit engine: assignment and least squares for every kind of observation.
+
+One loop serves crossings (labelled or not) and detected lines, for one
+pattern or several of the same region:
+
+1. each pattern's detector is started (from labels by a similarity fit, or
+   by a search over rotation and mirror) -- :mod:`laueline.fit.observations`;
+2. every pattern assigns its observations to predicted features; if no
+   assignment changed since the last round the loop ends;
+3. one least-squares fit of all patterns together (one crystal, one
+   strain; a detector and voltage per pattern), whitened by each
+   observation's residual covariance;
+4. the assignment gates shrink toward the achieved precision; back to 2.
+
+Then, optionally, outliers are rejected (robust fit, 4-sigma level) and the
+fit is repeated; the covariance of the parameters comes from
+:func:`parameter_covariance`, fed by the residual covariance of each
+observation type.
+
+What is refined: the crystal by ``model`` (``strain``: the six Green-Lagrange
+components, optionally reduced by exact constraints; ``fixed``: the
+reference cell, for calibration; or a cell of given symmetry), the detector
+centre, scale and rotation of each pattern (the mirror is chosen, not
+refined; the elliptical distortion only when freed), and optionally the
+voltage.  Voltage and hydrostatic strain shift HOLZ lines identically, so
+they are never freed together.
+
+References
+----------
+Zuo, J. M. (1992). Automated lattice parameter measurement from HOLZ lines
+and their use for the measurement of oxygen content in YBa2Cu3O7-d from
+nanometer-sized region. Ultramicroscopy 41, 211-223.
+"""
+
+from __future__ import annotations
+
+import math
+from dataclasses import dataclass, field, replace
+
+import numpy as np
+
+from ..crystal import cell_from_basis
+from ..errors import InputError
+from ..frame import default_x_axis, reduce_indices
+from ..optics import make_beam
+from ..strain import green_lagrange, green_lagrange_report, propagate, voigt, voigt_rotation
+from .calibration import Calibration, PixelFrame
+from .constraints import STRAIN_COMPONENTS, strain_constraints
+from .indices import is_hexagonal, parse_direction, parse_plane
+from .observations import CrossingData, LineData
+from .orientation import orientation_from_tilts, pattern_rotations_deg
+from .parameters import CELL_NAMES, ParameterModel
+from .result import (Check, FitResult, LineRecord, LineResidual, PatternResult, PointRecord)
+
+__all__ = ["PatternSpec", "refine", "refine_image", "refine_patterns", "parameter_covariance"]
+
+_JAC_STEP = 1e-6
+_MAX_ROUNDS = 12
+
+
+@dataclass
+class PatternSpec:
+    """One pattern of a fit: what was measured and how it was recorded.
+
+    Attributes
+    ----------
+    zone : sequence of int
+        Zone axis [u v w] (or [U V T W] for a hexagonal crystal).
+    points : laueline.points.Points, optional
+        Measured crossings, internal y-down pixels (see ``pixel_frame``).
+    detection : laueline.images.detect.Detection, optional
+        Lines detected in an image (give ``points`` or ``detection``).
+    x_axis : sequence of int, optional
+        Disk x axis; the default of :func:`laueline.frame.default_x_axis`.
+    calibration : Calibration or (kv, Detector), optional
+        Its voltage, scale and distortion are held; its centre, rotation
+        and mirror are start values.
+    pixel_frame : PixelFrame
+        The convention the user's coordinates (``center_px``) and reports use.
+    tilt_deg : (first, second), optional
+        Holder tilt readings (see :mod:`laueline.fit.orientation`).
+    center_px, scale_px_per_mrad, rotation_deg, mirror :
+        Detector start values (``center_px`` in the user's convention).
+    disk_mrad : float, optional
+        Disk radius (6 for points; from the detected radius for images).
+    min_strength, min_angle_deg, match_mrad, match_px :
+        Candidate features and gates for assignment.
+    source : str
+        File the observations came from.
+    structure : str, optional
+        Structure named for this pattern (must be the fitted one).
+    """
+
+    zone: tuple
+    points: object = None
+    detection: object = None
+    x_axis: tuple | None = None
+    calibration: object = None
+    pixel_frame: PixelFrame = field(default_factory=PixelFrame)
+    tilt_deg: tuple | None = None
+    center_px: tuple | None = None
+    scale_px_per_mrad: float | None = None
+    rotation_deg: float | None = None
+    mirror: bool | None = None
+    disk_mrad: float | None = None
+    min_strength: float = 0.1
+    min_angle_deg: float = 5.0
+    match_mrad: float = 0.25
+    match_px: float | None = None
+    source: str = ""
+    structure: str | None = None
+    label: str = ""
+
+
+# ---------------------------------------------------------------------------
+# covariance
+# ---------------------------------------------------------------------------
+
+def parameter_covariance(jacobian, residual_covariance):
+    """Covariance of least-squares parameters, (J^T S^-1 J)^-1.
+
+    Parameters
+    ----------
+    jacobian : ndarray (n, p)
+        Derivatives of the residuals (not whitened) with respect to the
+        parameters.
+    residual_covariance : ndarray (n, n)
+        Covariance S of the measured values.  Any symmetric positive-definite
+        matrix: correlated errors (such as one random offset per line that
+        moves all of its crossings together) enter here.
+
+    Returns
+    -------
+    ndarray (p, p)
+        In the units of the Jacobian's columns; columns are scaled to unit
+        length before the pseudo-inverse so that the result does not depend
+        on the parameters' units.
+    """
+    from scipy.linalg import cholesky, solve_triangular
+
+    J = np.asarray(jacobian, float)
+    lower = cholesky(np.asarray(residual_covariance, float), lower=True)
+    Jw = solve_triangular(lower, J, lower=True)
+    scale = np.linalg.norm(Jw, axis=0)
+    scale[scale == 0] = 1.0
+    _, sv, vt = np.linalg.svd(Jw / scale, full_matrices=False)
+    inv = np.where(sv > sv[0] * 1e-14, 1.0 / sv ** 2, 0.0) if sv.size else sv
+    return (vt.T * inv) @ vt / np.outer(scale, scale)
+
+
+def _whitener(cov):
+    from scipy.linalg import cholesky, solve_triangular
+
+    lower = cholesky(cov, lower=True)
+    return solve_triangular(lower, np.eye(len(cov)), lower=True)
+
+
+# ---------------------------------------------------------------------------
+# the problem: parameters, patterns and their observations
+# ---------------------------------------------------------------------------
+
+class _Problem:
+    """Everything fixed for one fit, and the residuals of all patterns."""
+
+    def __init__(self, parameters, specs, data):
+        self.parameters = parameters
+        self.specs = specs
+        self.data = data
+
+    def actives(self):
+        return [d.active(self, j) for j, d in enumerate(self.data)]
+
+    def prepare(self):
+        """Active observations, their whiteners and the Jacobian columns of each pattern."""
+        pm = self.parameters
+        self._obs = self.actives()
+        self._cov = [o.residual_covariance() for o in self._obs]
+        self._white = [_whitener(c) if len(c) else np.zeros((0, 0)) for c in self._cov]
+        self._cols = [pm.columns_of_pattern(j) for j in range(len(self.specs))]
+        sizes = [len(o) * o.group_size for o in self._obs]
+        self._rows = np.cumsum([0] + sizes)
+        n_obs, p = int(self._rows[-1]), len(pm.free)
+        if n_obs < p:
+            kinds = " and ".join(sorted({o.kind for o in self._obs}))
+            n_groups = sum(len(o) for o in self._obs)
+            raise InputError(f"{n_groups} {kinds} give {n_obs} observations for {p} free "
+                             "parameters; measure more or hold parameters")
+        for j, o in enumerate(self._obs):
+            if len(o) == 0:
+                raise InputError(f"{self.specs[j].label}no observation of this pattern is "
+                                 "assigned: check its zone axis and detector")
+
+    def raw(self, x, with_jacobian=False):
+        """Residuals (px, fitted minus measured) and, optionally, their Jacobian."""
+        pm = self.parameters
+        p = len(pm.free)
+        r = np.empty(self._rows[-1])
+        J = np.zeros((self._rows[-1], p)) if with_jacobian else None
+        for j, obs in enumerate(self._obs):
+            lo, hi = self._rows[j], self._rows[j + 1]
+            cols = self._cols[j] if with_jacobian else []
+            X = np.repeat(x[None], 1 + len(cols), axis=0)
+            X[1 + np.arange(len(cols)), cols] += _JAC_STEP
+            res = obs.residuals(pm.geometry(pm.full(X), j)).reshape(len(X), -1)
+            r[lo:hi] = res[0]
+            if with_jacobian:
+                J[lo:hi][:, cols] = ((res[1:] - res[0]) / _JAC_STEP).T
+        return r, J
+
+    def whiten(self, v):
+        out = np.empty_like(v)
+        for j in range(len(self._obs)):
+            lo, hi = self._rows[j], self._rows[j + 1]
+            out[lo:hi] = self._white[j] @ v[lo:hi]
+        return out
+
+    def residual_covariance(self):
+        from scipy.linalg import block_diag
+
+        return block_diag(*self._cov)
+
+    def group_norms(self, x):
+        """Whitened residual length of every group, per pattern."""
+        r = self.whiten(self.raw(x)[0])
+        return [np.linalg.norm(r[self._rows[j]:self._rows[j + 1]].reshape(len(o), -1), axis=1)
+                for j, o in enumerate(self._obs)]
+
+
+def _solve(problem, x0, robust):
+    """One least-squares fit of all patterns; returns (x, converged, message)."""
+    import scipy.optimize
+
+    problem.prepare()
+    p = len(problem.parameters.free)
+    if p == 0:
+        return x0, True, "nothing to refine"
+
+    def fun(x):
+        return problem.whiten(problem.raw(x)[0])
+
+    def jac(x):
+        _, J = problem.raw(x, with_jacobian=True)
+        return np.concatenate([problem._white[j] @ J[problem._rows[j]:problem._rows[j + 1]]
+                               for j in range(len(problem._obs))])
+
+    if robust:
+        sizes = {o.group_size for o in problem._obs}
+        norms = np.concatenate(problem.group_norms(x0))
+        f_scale = max(np.median(norms) / _median_norm(max(sizes)), 1e-3)
+        res = scipy.optimize.least_squares(fun, x0, jac=jac, method="trf", loss="soft_l1",
+                                           f_scale=f_scale, x_scale=1.0,
+                                           max_nfev=100 * (p + 1))
+    else:
+        res = scipy.optimize.least_squares(fun, x0, jac=jac, method="lm", x_scale=1.0,
+                                           max_nfev=100 * (p + 1))
+    converged = bool(res.status > 0 and np.all(np.isfinite(res.x)))
+    message = "" if converged else f"the least-squares fit stopped without converging " \
+                                   f"({res.message})"
+    return res.x, converged, message
+
+
+def _median_norm(k):
+    """Median of the length of a k-dimensional standard Gaussian vector."""
+    from scipy.stats import chi2
+
+    return math.sqrt(chi2.ppf(0.5, k))
+
+
+def _reject_outliers(problem, x):
+    """Drop groups beyond the 4-sigma level (robust scale) and refit by least squares.
+
+    For one crossing (k = 2) the level is a residual 4 robust sigmas long
+    (tail probability exp(-8)); other group sizes use the same probability.
+    """
+    from scipy.stats import chi2
+
+    norms = problem.group_norms(x)
+    k = problem._obs[0].group_size
+    sigma = max(np.median(np.concatenate(norms)) / _median_norm(k), 1e-9)
+    for j, r in enumerate(norms):
+        level = math.sqrt(chi2.isf(math.exp(-8.0), problem._obs[j].group_size))
+        keep = r <= level * sigma
+        problem.data[j].set_used(keep, [f"outlier: residual {ri / sigma:.1f} robust sigmas"
+                                        for ri in r])
+    return _solve(problem, x, robust=False)
+
+
+def _rms_px(problem, x):
+    """Rms residual of each pattern's active observations: per crossing, or per line point."""
+    raw = problem.raw(x)[0]
+    out = []
+    for j, obs in enumerate(problem._obs):
+        part = raw[problem._rows[j]:problem._rows[j + 1]].reshape(len(obs), -1)
+        if obs.kind == "crossings":
+            out.append(float(np.sqrt(np.mean(np.sum(part ** 2, axis=1)))))
+        else:
+            out.append(float(np.sqrt(np.mean(part ** 2))))
+    return out
+
+
+def _fit_loop(problem, robust):
+    """Assign and fit until no assignment changes; returns (x, converged, messages)."""
+    pm = problem.parameters
+    x = np.zeros(len(pm.free))
+    previous = None
+    converged, message = False, ""
+    warnings = []
+    searching = any(d.needs_assignment for d in problem.data)
+    for round_ in range(_MAX_ROUNDS):
+        full = pm.full(x)
+        keys = [d.assign(problem, j, full, round_) for j, d in enumerate(problem.data)]
+        if keys == previous:
+            break
+        previous = keys
+        # the first round starts from the reference and may hold wrong matches: a
+        # robust loss keeps them from dragging the fit away
+        x, converged, message = _solve(problem, x, robust or (searching and round_ == 0))
+        full = pm.full(x)
+        for j, (d, rms) in enumerate(zip(problem.data, _rms_px(problem, x))):
+            d.after_round(problem, j, full, rms)
+    else:
+        warnings.append(f"the assignment did not settle in {_MAX_ROUNDS} rounds")
+        converged, message = False, "the assignment did not settle"
+    full = pm.full(x)
+    for j, (d, rms) in enumerate(zip(problem.data, _rms_px(problem, x))):
+        n = d.ambiguity(problem, j, full, rms)
+        if n:
+            warnings.append(f"{problem.specs[j].label}{n} point(s) lie as near to a second "
+                            "predicted crossing (lines meeting almost at one point); their "
+                            "assignment is ambiguous (see the points table)")
+    if robust:
+        x, converged, message = _reject_outliers(problem, x)
+    else:
+        problem.prepare()
+    return x, converged, message, warnings
+
+
+# ---------------------------------------------------------------------------
+# setting up
+# ---------------------------------------------------------------------------
+
+def _resolve_specs(crystal, specs, kv):
+    hexagonal = is_hexagonal(crystal.cell)
+    out = []
+    for j, spec in enumerate(specs):
+        label = f"pattern {j + 1}: " if len(specs) > 1 else ""
+        if spec.structure is not None and spec.structure not in (crystal.name, crystal.formula):
+            raise InputError(f"{label}the pattern is of structure '{spec.structure}', the fit "
+                             f"of '{crystal.name}': all patterns of a joint fit show one "
+                             "crystal")
+        zone, _ = reduce_indices(parse_direction(spec.zone, hexagonal, "zone"))
+        if spec.x_axis is None:
+            x_axis = default_x_axis(crystal, zone)
+        else:
+            x_axis = parse_plane(spec.x_axis, hexagonal, "x_axis")
+            if np.dot(x_axis, zone) != 0:
+                raise InputError(f"{label}x_axis: the x axis {x_axis} is not normal to the "
+                                 f"zone {zone}")
+        cal = Calibration.coerce(spec.calibration)
+        if cal is not None and cal.structure and cal.structure != crystal.name:
+            pass  # a calibration of another structure still gives voltage and camera
+        scale = spec.scale_px_per_mrad
+        if scale is None and cal is not None:
+            scale = cal.detector.scale_px_per_mrad
+        if scale is not None and not scale > 0:
+            raise InputError(f"{label}scale_px_per_mrad: the detector scale must be positive")
+        center = spec.pixel_frame.to_internal(spec.center_px)
+        if center is None and cal is not None:
+            center = np.asarray(cal.detector.center_px, float)
+        rotation = spec.rotation_deg
+        if rotation is None and cal is not None:
+            rotation = cal.detector.rotation_deg
+        mirror = spec.mirror
+        if mirror is None and cal is not None:
+            mirror = cal.detector.mirror
+        disk = spec.disk_mrad
+        if spec.detection is not None:
+            radius = spec.detection.disk.radius_px
+            if scale is None:
+                if disk is None:
+                    raise InputError(f"{label}fitting an image needs the camera scale: give "
+                                     "scale_px_per_mrad, a calibration or disk_mrad")
+                scale = radius / float(disk)
+            if disk is None:
+                disk = radius / scale
+            # the pattern centre moves between regions; the disk centre is the better start
+            if spec.center_px is None:
+                center = np.asarray(spec.detection.disk.center_px, float)
+        elif spec.points is None:
+            raise InputError(f"{label}give points or a detection for every pattern")
+        out.append(replace(spec, zone=zone, x_axis=tuple(int(v) for v in x_axis),
+                           calibration=cal, scale_px_per_mrad=scale,
+                           center_px=None if center is None else tuple(center),
+                           rotation_deg=rotation, mirror=mirror,
+                           disk_mrad=6.0 if disk is None else float(disk), label=label))
+    return out, hexagonal
+
+
+def _parse_exclusions(exclude_lines, hexagonal):
+    out = set()
+    for item in exclude_lines or ():
+        out.add(tuple(parse_plane(item, hexagonal, "exclude_lines")))
+    return out
+
+
+def _build(crystal, specs, *, kv, model, free, hold, unique_axis, robust, inner_potential,
+           hold_strain, biaxial, zero_normal_stress, foil_normal, stiffness, sample_axes,
+           exclude_lines, tilt_tolerance_deg):
+    if unique_axis not in (None, "a", "b", "c"):
+        raise InputError(f"unique_axis: the unique axis is a, b or c, got '{unique_axis}'")
+    specs, hexagonal = _resolve_specs(crystal, specs, kv)
+    n = len(specs)
+    constraints = None
+    wants_constraints = hold_strain or biaxial or zero_normal_stress
+    strain_holds = [h for h in hold if h in STRAIN_COMPONENTS]
+    if model == "strain":
+        constraints = strain_constraints(
+            crystal.basis, hold=hold_strain, hold_crystal=strain_holds,
+            sample_axes=sample_axes if (hold_strain or biaxial) else None, biaxial=biaxial,
+            zero_normal_stress=zero_normal_stress,
+            foil_normal=foil_normal,
+            stiffness=stiffness) if (wants_constraints or strain_holds) else \
+            strain_constraints()
+        if zero_normal_stress and foil_normal is None and sample_axes is not None and \
+                not (hold_strain or biaxial):
+            constraints = strain_constraints(
+                crystal.basis, hold_crystal=strain_holds, sample_axes=sample_axes,
+                zero_normal_stress=True, stiffness=stiffness)
+    elif wants_constraints:
+        raise InputError("hold_strain, biaxial and zero_normal_stress constrain the strain "
+                         "model; choose model='strain'")
+    pm = ParameterModel(crystal, model, n, constraints=constraints, unique_axis=unique_axis,
+                        inner_potential=inner_potential)
+    crystal_names = set(pm.names) if model != "strain" else set(STRAIN_COMPONENTS)
+    allowed = crystal_names | {"kv", "scale", "center", "rotation", "distortion"}
+    free_set, hold_set = set(), set()
+    for word, target in [(w, free_set) for w in free] + [(w, hold_set) for w in hold]:
+        if word not in allowed:
+            action = "free" if target is free_set else "hold"
+            raise InputError(f"cannot {action} '{word}' with model {model}; choose from "
+                             f"{', '.join(sorted(allowed))}")
+        target.add(word)
+    if model != "strain":
+        pm.free = [f for f in pm.free if f.name not in hold_set]
+    exclude = _parse_exclusions(exclude_lines, hexagonal)
+    warnings = list(crystal.notes)
+    if model not in ("strain", "fixed"):
+        if np.any(np.abs(pm.full0[:6] - crystal.cell) > 1e-4 * np.maximum(np.abs(crystal.cell),
+                                                                           1)):
+            warnings.append(f"the reference cell does not have {model} symmetry; the fit "
+                            f"starts from {np.round(pm.full0[:6], 5).tolist()}")
+    for j, spec in enumerate(specs):
+        cal = spec.calibration
+        kv_j = cal.kv if cal is not None else float(kv)
+        make_beam(kv_j)  # validates the voltage
+        pm.set_start("kv", j, kv_j)
+        if cal is not None:
+            pm.set_start("e1", j, cal.detector.distortion[0])
+            pm.set_start("e2", j, cal.detector.distortion[1])
+            if cal.structure and cal.structure != crystal.name:
+                warnings.append(f"{spec.label}the calibration was made on {cal.structure}, "
+                                f"not {crystal.name}")
+            if not cal.converged:
+                warnings.append(f"{spec.label}the calibration's own fit did not converge")
+        if spec.scale_px_per_mrad is not None:
+            pm.set_start("scale", j, spec.scale_px_per_mrad)
+        if spec.center_px is not None:
+            pm.set_start("center_x", j, spec.center_px[0])
+            pm.set_start("center_y", j, spec.center_px[1])
+    data = []
+    for spec in specs:
+        if spec.detection is not None:
+            d = LineData(spec.detection, exclude)
+            d.gate = spec.match_px if spec.match_px is not None else \
+                max(3.0, 0.5 * spec.scale_px_per_mrad)
+            warnings += [spec.label + w for w in spec.detection.warnings]
+        else:
+            d = CrossingData(spec.points, exclude)
+        data.append(d)
+    problem = _Problem(pm, specs, data)
+    for j, d in enumerate(data):
+        d.check(problem, j)
+        if isinstance(d, CrossingData) and specs[j].center_px is not None and \
+                specs[j].scale_px_per_mrad is not None:
+            d.check_inside_disk(specs[j], specs[j].center_px, specs[j].scale_px_per_mrad)
+
+    # -- tilts: relative orientation fixed ------------------------------------------
+    tilts = [s.tilt_deg for s in specs]
+    phi = None
+    if any(t is not None for t in tilts):
+        if any(t is None for t in tilts):
+            raise InputError("tilt_deg: give the tilt readings for every pattern or for none")
+        U, _ = orientation_from_tilts(crystal.basis, [s.zone for s in specs], tilts,
+                                      tolerance_deg=tilt_tolerance_deg)
+        phi = pattern_rotations_deg(crystal.basis, [s.zone for s in specs],
+                                    [s.x_axis for s in specs], tilts, U)
+
+    # -- detector starts ------------------------------------------------------------
+    for j, d in enumerate(data):
+        if phi is not None and j > 0:
+            # one camera: the first pattern's orientation and the tilts give the others'
+            sign = -1.0 if pm.mirror[0] else 1.0
+            theta0 = pm.start("rotation", 0) - sign * phi[0]
+            specs[j] = replace(specs[j], mirror=pm.mirror[0],
+                               rotation_deg=(theta0 + sign * phi[j]) % 360.0)
+        warnings += d.start(problem, j)
+        if isinstance(d, CrossingData):
+            d.check_inside_disk(specs[j], (pm.start("center_x", j), pm.start("center_y", j)),
+                                pm.start("scale", j))
+
+    # -- free detector parameters ---------------------------------------------------
+    for j, spec in enumerate(specs):
+        defaults = {"center", "rotation"} | ({"scale"} if spec.calibration is None else set())
+        chosen = (defaults | free_set) - hold_set
+        if "center" in chosen:
+            pm.add_free("center_x", [j], _name("center_x", j, n))
+            pm.add_free("center_y", [j], _name("center_y", j, n))
+        if "scale" in chosen:
+            pm.add_free("scale", [j], _name("scale", j, n))
+        if "rotation" in chosen and phi is None:
+            pm.add_free("rotation", [j], _name("rotation", j, n))
+        if "kv" in chosen:
+            pm.add_free("kv", [j], _name("kv", j, n))
+        if "distortion" in chosen:
+            pm.add_free("e1", [j], _name("e1", j, n))
+            pm.add_free("e2", [j], _name("e2", j, n))
+    if phi is not None and "rotation" not in hold_set:
+        # one camera rotation; each pattern turned by its tilts (theta0 +- phi_j)
+        pm.add_free("rotation", list(range(n)), "rotation")
+    if "kv" in free_set and _has_dilatation(pm):
+        raise InputError(
+            "voltage and hydrostatic strain shift HOLZ lines in exactly the same way, so they "
+            "cannot be freed together: calibrate the voltage on an unstrained reference "
+            "(model='fixed', free=['kv']) and hold it, or hold a normal strain component")
+    return problem, warnings, exclude, hexagonal, phi
+
+
+def _name(field_, j, n):
+    return field_ if n == 1 else f"{field_}[{j + 1}]"
+
+
+def _has_dilatation(pm):
+    if pm.model == "fixed":
+        return False
+    if pm.model == "strain":
+        return pm.constraints.contains_dilatation()
+    return True  # every cell model contains the uniform scaling of its lengths
+
+
+# ---------------------------------------------------------------------------
+# public entry points
+# ---------------------------------------------------------------------------
+
+def refine_patterns(crystal, patterns, *, kv=200.0, model="strain", free=(), hold=(),
+                    unique_axis=None, robust=False, inner_potential=False, hold_strain=None,
+                    biaxial=False, zero_normal_stress=False, foil_normal=None, stiffness=None,
+                    sample_axes=None, exclude_lines=(), tilt_tolerance_deg=1.0):
+    """Fit one crystal (one strain) to one or several patterns of the same region.
+
+    Parameters
+    ----------
+    crystal : Crystal
+        The reference crystal (its cell is the strain reference).
+    patterns : sequence of PatternSpec
+        Each with its own zone axis, x axis, detector and observations.
+    kv : float
+        Nominal voltage (start or held value) of patterns without calibration.
+    model : str
+        One of :data:`laueline.fit.MODELS`.
+    free, hold : sequence of str
+        Parameters to free or hold besides the defaults: ``kv``, ``scale``,
+        ``center``, ``rotation``, ``distortion`` (the elliptical term, held by
+        default), cell names, or strain components (held at zero, crystal frame).
+    unique_axis : {'a', 'b', 'c'}, optional
+        For tetragonal (default c) and monoclinic (default b) cells.
+    robust : bool
+        Down-weight outliers (soft-L1 loss), then reject those beyond 4 sigma.
+    inner_potential : bool
+        Use the wave number inside the crystal.
+    hold_strain : dict of str to float, optional
+        Strain components held at a value, in the sample frame when
+        ``sample_axes`` is given, else in the crystal frame (exact constraint).
+    biaxial : bool
+        Equal in-plane normal strains of the sample frame.
+    zero_normal_stress : bool
+        No normal stress along the foil normal (``foil_normal``, or the
+        sample z axis); needs ``stiffness``.
+    foil_normal : sequence of 3 numbers, optional
+        Crystal direction of the foil normal.
+    stiffness : ndarray (6, 6), optional
+        Voigt stiffness (GPa), crystal Cartesian frame: stress and constraints.
+    sample_axes : ndarray (3, 3), optional
+        Rows of a sample frame (:func:`laueline.strain.sample_axes`).
+    exclude_lines : sequence of index triples (or quadruples, hexagonal)
+        Reflections left out of the fit.
+    tilt_tolerance_deg : float
+        Largest misfit between a tilted zone axis and the beam.
+
+    Returns
+    -------
+    FitResult
+        ``success`` False when the fit did not converge (see ``message``).
+
+    Raises
+    ------
+    InputError
+        Inconsistent or insufficient input, or a degenerate fit.
+    """
+    if not patterns:
+        raise InputError("patterns: give at least one pattern")
+    free, hold = tuple(free or ()), tuple(hold or ())
+    problem, warnings, exclude, hexagonal, phi = _build(
+        crystal, list(patterns), kv=kv, model=model, free=free, hold=hold,
+        unique_axis=unique_axis, robust=robust, inner_potential=inner_potential,
+        hold_strain=hold_strain, biaxial=biaxial, zero_normal_stress=zero_normal_stress,
+        foil_normal=foil_normal, stiffness=stiffness, sample_axes=sample_axes,
+        exclude_lines=exclude_lines, tilt_tolerance_deg=tilt_tolerance_deg)
+    x, converged, message, loop_warnings = _fit_loop(problem, robust)
+    warnings += loop_warnings
+    if message:
+        warnings.append(message)
+    return _result(problem, crystal, x, converged, message, warnings, stiffness=stiffness,
+                   sample_axes=sample_axes, exclude=exclude, hexagonal=hexagonal,
+                   unique_axis=unique_axis if model in ("tetragonal", "monoclinic") else None,
+                   inner_potential=inner_potential, tilts=phi is not None,
+                   foil_normal=foil_normal)
+
+
+def _single_kwargs(kwargs):
+    keys = ("x_axis", "center_px", "scale_px_per_mrad", "rotation_deg", "mirror",
+            "calibration", "disk_mrad", "min_strength", "min_angle_deg", "match_mrad",
+            "match_px", "pixel_frame", "source")
+    spec = {k: kwargs.pop(k) for k in keys if k in kwargs}
+    return spec, kwargs
+
+
+def refine(crystal, zone, points, **kwargs):
+    """Fit crystal and detector parameters to measured crossings of one pattern.
+
+    Parameters
+    ----------
+    crystal : Crystal
+    zone : sequence of int
+        [u v w], or [U V T W] for a hexagonal crystal.
+    points : laueline.points.Points
+        Internal y-down pixels (:func:`laueline.points.read_points` converts).
+    **kwargs
+        Pattern settings of :class:`PatternSpec` (``x_axis``, ``center_px``,
+        ``scale_px_per_mrad``, ``rotation_deg``, ``mirror``, ``calibration``,
+        ``disk_mrad``, ``min_strength``, ``min_angle_deg``, ``match_mrad``,
+        ``pixel_frame``, ``source``) and the fit options of
+        :func:`refine_patterns`.
+
+    Returns
+    -------
+    FitResult
+    """
+    spec, rest = _single_kwargs(dict(kwargs))
+    if len(points) == 0:
+        raise InputError("points: no points to fit")
+    return refine_patterns(crystal, [PatternSpec(zone, points=points, **spec)], **rest)
+
+
+def refine_image(crystal, zone, detection, **kwargs):
+    """Fit crystal and detector parameters to lines detected in one pattern image.
+
+    The detected lines (:func:`laueline.images.detect.detect_lines`) are
+    assigned to predicted lines by optimal matching inside a distance gate,
+    after a search over rotation and mirror when the rotation is unknown;
+    the fit then minimises the distances of three points on each detected
+    line from the exact predicted locus of its reflection, weighted with
+    the detection's covariance of the line position.  When the scatter
+    exceeds what those covariances promise, the uncertainties are scaled up
+    by sqrt(chi2 / dof).  Parameters are those of :func:`refine`; the
+    pattern centre starts at the detected disk centre, and the disk radius
+    in mrad follows from the detected radius and the scale (or, given
+    ``disk_mrad``, the scale from the radius).
+    """
+    spec, rest = _single_kwargs(dict(kwargs))
+    spec.setdefault("source", getattr(detection, "source", ""))
+    return refine_patterns(crystal, [PatternSpec(zone, detection=detection, **spec)], **rest)
+
+
+# ---------------------------------------------------------------------------
+# results
+# ---------------------------------------------------------------------------
+
+def _snap(values, sigmas, floor):
+    """Components with no variance are fixed: show them exactly, with sigma 0."""
+    values, sigmas = np.array(values, float), np.array(sigmas, float)
+    fixed = sigmas <= floor
+    values[fixed] = np.round(values[fixed], 12) + 0.0
+    sigmas[fixed] = 0.0
+    return values, sigmas, fixed
+
+
+def _snap_tensor(tensor, sigma, floor):
+    v, s, fixed = _snap(voigt(tensor), voigt(sigma), floor)
+    from ..strain import from_voigt
+
+    return from_voigt(v), from_voigt(s), fixed
+
+
+def _result(problem, crystal, x, converged, message, warnings, *, stiffness, sample_axes,
+            exclude, hexagonal, unique_axis, inner_potential, tilts, foil_normal):
+    from scipy.stats import chi2 as chi2_dist
+
+    pm = problem.parameters
+    p = len(pm.free)
+    names = pm.names
+    units = pm.units
+    r_raw, J_raw = problem.raw(x, with_jacobian=True)
+    r_w = problem.whiten(r_raw)
+    n_obs = r_w.size
+    dof = n_obs - p
+    chi2 = float(r_w @ r_w)
+    sigma_stated = all(o.sigma_stated for o in problem._obs)
+    inflate = any(o.inflate for o in problem._obs)
+    factor = 1.0
+    if not sigma_stated:
+        factor = chi2 / dof if dof > 0 else float("nan")
+    elif inflate and dof > 0 and chi2 > dof:
+        factor = chi2 / dof
+    condition = 1.0
+    if p:
+        Jw = problem.whiten(J_raw)
+        scale = np.linalg.norm(Jw, axis=0)
+        if np.any(scale == 0):
+            dead = [names[j] for j in np.flatnonzero(scale == 0)]
+            raise InputError(f"degenerate fit: the data do not depend on {', '.join(dead)}; "
+                             "hold it")
+        _, sv, vt = np.linalg.svd(Jw / scale, full_matrices=False)
+        condition = float(sv[0] / sv[-1]) if sv[-1] > 0 else float("inf")
+        if not np.isfinite(condition) or condition > 1e10:
+            worst = [names[j] for j in np.argsort(-np.abs(vt[-1]))[:2]]
+            raise InputError(f"degenerate fit: {' and '.join(worst)} cannot be separated by "
+                             "these observations; hold one of them or measure more")
+        cov_int = parameter_covariance(J_raw, problem.residual_covariance()) * factor
+        cov = cov_int * np.outer(units, units)
+    else:
+        cov = np.zeros((0, 0))
+    sig = np.sqrt(np.maximum(np.diag(cov), 0))
+    with np.errstate(invalid="ignore", divide="ignore"):
+        corr = cov / np.outer(sig, sig) if p else cov
+    full = pm.full(x)
+    L = pm.matrix
+    values = np.array([_value_of(f, full, x[i]) for i, f in enumerate(pm.free)])
+
+    # -- strain ----------------------------------------------------------------------
+    basis = pm.bases(full)[0]
+    cov_full = L @ cov @ L.T if p else np.zeros((pm.size, pm.size))
+    if pm.cell_slots is None:
+        e_voigt = np.array(full[:6])
+        cov_e = cov_full[:6, :6]
+    else:
+        cols = pm.crystal_columns()
+
+        def gl_of(xc):
+            xx = np.array(x, float)
+            xx[cols] = xc
+            return voigt(green_lagrange(crystal.basis, pm.bases(pm.full(xx))[0]))
+
+        e_voigt = gl_of(x[cols])
+        cov_xc = cov[np.ix_(cols, cols)] / np.outer(units[cols], units[cols])
+        cov_e = propagate(gl_of, x[cols], cov_xc, np.full(len(cols), 1e-4)) if cols else \
+            np.zeros((6, 6))
+    # a component with a spread a million times below the largest is fixed by the model
+    floor = 1e-7 * max(float(np.sqrt(np.max(np.diag(cov_e)))) if cov_e.size else 0.0, 1e-300)
+    fixed_crystal = np.sqrt(np.maximum(np.diag(cov_e), 0)) <= floor
+    e_voigt = np.where(fixed_crystal, np.round(e_voigt, 12) + 0.0, e_voigt)
+    cov_e = np.where(fixed_crystal[:, None] | fixed_crystal[None, :], 0.0, cov_e)
+    strain = green_lagrange_report(crystal.basis, e_voigt, cov_e, stiffness=stiffness,
+                                   axes=sample_axes)
+    fixed = {"crystal": [n for n, f in zip(STRAIN_COMPONENTS, fixed_crystal) if f]}
+    strain.green_lagrange, strain.green_lagrange_sigma, _ = _snap_tensor(
+        strain.green_lagrange, strain.green_lagrange_sigma, floor)
+    if strain.sample_green_lagrange is not None:
+        strain.sample_green_lagrange, strain.sample_green_lagrange_sigma, fs = _snap_tensor(
+            strain.sample_green_lagrange, strain.sample_green_lagrange_sigma, floor)
+        fixed["sample"] = [n for n, f in zip(STRAIN_COMPONENTS, fs) if f]
+    if strain.stress_GPa is not None:
+        s_floor = floor * float(np.max(np.abs(stiffness)))
+        strain.stress_GPa, strain.stress_sigma_GPa, _ = _snap_tensor(
+            strain.stress_GPa, strain.stress_sigma_GPa, s_floor)
+        if strain.sample_stress_GPa is not None:
+            strain.sample_stress_GPa, strain.sample_stress_sigma_GPa, _ = _snap_tensor(
+                strain.sample_stress_GPa, strain.sample_stress_sigma_GPa, s_floor)
+
+    # -- cell -----------------------------------------------------------------------
+    cell = cell_from_basis(basis)
+    if np.any(cov_e):
+        from ..strain import basis_from_green_lagrange, from_voigt
+
+        cov_cell = propagate(lambda v: cell_from_basis(basis_from_green_lagrange(
+            crystal.basis, from_voigt(v))), e_voigt, cov_e,
+            np.maximum(np.sqrt(np.diag(cov_e)), 1e-9) * 1e-3)
+        cell_sigma = np.sqrt(np.maximum(np.diag(cov_cell), 0))
+    else:
+        cell_sigma = np.zeros(6)
+
+    # -- warnings on the statistics ---------------------------------------------------
+    if dof < 5:
+        warnings.append(f"only {dof} degrees of freedom: uncertainties are themselves "
+                        "uncertain")
+    for i in range(p):
+        for j in range(i + 1, p):
+            if abs(corr[i, j]) > 0.95 and not (names[i] in STRAIN_COMPONENTS and
+                                               names[j] in STRAIN_COMPONENTS):
+                warnings.append(f"{names[i]} and {names[j]} are correlated "
+                                f"({corr[i, j]:+.3f}): they are poorly separated")
+    poorly = _poorly_separated(cov_e, "crystal")
+    if sample_axes is not None:
+        T = voigt_rotation(sample_axes)
+        poorly += _poorly_separated(T @ cov_e @ T.T, "sample")
+    for a, b, c, frame in poorly:
+        warnings.append(f"{a} and {b} are correlated ({c:+.3f}, {frame} frame): these "
+                        "observations do not separate them well")
+    chi2_out = None
+    checks = [Check("converged", bool(converged), None, None)]
+    if sigma_stated and dof > 0:
+        chi2_out = chi2
+        p_value = float(chi2_dist.sf(chi2, dof))
+        checks.append(Check("chi_square_p_value", p_value >= 0.01, p_value, 0.01))
+        if p_value < 0.01 and not inflate:
+            warnings.append(f"chi-square {chi2:.1f} for {dof} degrees of freedom "
+                            f"(p = {p_value:.1e}): the scatter exceeds the stated sigmas, so "
+                            f"the uncertainties are underestimated by about "
+                            f"{math.sqrt(chi2 / dof):.2f}x")
+        elif chi2_dist.cdf(chi2, dof) < 0.01:
+            warnings.append(f"chi-square {chi2:.1f} for {dof} degrees of freedom is "
+                            "implausibly small: the stated sigmas may be overstated")
+    norm_res = np.abs(r_w) / math.sqrt(factor if np.isfinite(factor) and factor > 0 else 1.0)
+    if norm_res.size:
+        from scipy.stats import norm
+
+        # the largest of n standard normal values exceeds this with probability 0.1 %
+        limit = float(norm.isf(0.0005 / norm_res.size))
+        checks.append(Check("largest_normalised_residual", float(norm_res.max()) <= limit,
+                            float(norm_res.max()), limit))
+    rivals = [d.rivals for d in problem.data]
+    checks.append(Check("orientation_unique", not any(rivals), None, None))
+    cals = [s.calibration for s in problem.specs if s.calibration is not None]
+    if cals:
+        checks.append(Check("calibration_converged", all(c.converged for c in cals), None,
+                            None))
+    if pm.model != "fixed" and any("scale" in nm for nm in names) and \
+            not any(nm.startswith("kv") for nm in names) and len(problem.specs) == 1:
+        warnings.append("the camera scale is refined together with the crystal: scale and "
+                        "in-plane dilatation are nearly degenerate in one pattern; calibrate "
+                        "the scale on a reference (a calibration) for trustworthy strain")
+    constraints = list(pm.constraints.descriptions) if pm.constraints is not None else []
+    if tilts:
+        constraints.append("relative orientation of the patterns from the holder tilts "
+                           "(one camera rotation)")
+
+    patterns = [_pattern_result(problem, j, x, full, cov, factor, exclude, hexagonal)
+                for j in range(len(problem.specs))]
+    n_left = sum(p_.n_points - p_.n_used for p_ in patterns)
+    if n_left:
+        warnings.append(f"{n_left} observation(s) left out of the fit (see the tables)")
+    if not message:
+        message = (f"converged: {sum(p_.n_used for p_ in patterns)} observations in "
+                   f"{len(patterns)} pattern(s), {dof} degrees of freedom")
+    return FitResult(
+        success=bool(converged), message=message, model=pm.model, parameters=names,
+        values=values, sigmas=sig, covariance=cov, correlation=corr,
+        condition_number=condition, strain=strain, strain_voigt=voigt(strain.green_lagrange),
+        strain_covariance=cov_e, strain_covariance_statistical=cov_e,
+        strain_covariance_systematic=np.zeros((6, 6)), fixed_components=fixed, cell=cell,
+        cell_sigma=cell_sigma, reference_cell=crystal.cell, basis=basis, patterns=patterns,
+        chi2=chi2_out, dof=int(dof), checks=checks, constraints=constraints,
+        warnings=list(dict.fromkeys(warnings)), structure=crystal.summary(),
+        unique_axis=unique_axis, inner_potential=inner_potential, crystal=crystal,
+        poorly_separated=[(a, b, c, f) for a, b, c, f in poorly])
+
+
+def _value_of(f, full, xi):
+    """Physical value of a free parameter: its slot (slots tied with weight 1), or the
+    coordinate along a reduced strain direction."""
+    nz = np.flatnonzero(f.column)
+    if np.all(f.column[nz] == 1.0):
+        return float(full[nz[0]])
+    return float(xi * f.unit)
+
+
+def _poorly_separated(cov6, frame, level=0.9):
+    s = np.sqrt(np.maximum(np.diag(cov6), 0))
+    out = []
+    for i in range(6):
+        for j in range(i + 1, 6):
+            if s[i] > 0 and s[j] > 0:
+                c = cov6[i, j] / (s[i] * s[j])
+                if abs(c) > level:
+                    out.append((STRAIN_COMPONENTS[i], STRAIN_COMPONENTS[j], float(c), frame))
+    return out
+
+
+def _pattern_result(problem, j, x, full, cov, factor, exclude, hexagonal):
+    pm, spec, data = problem.parameters, problem.specs[j], problem.data[j]
+    det = pm.detector(full, j)
+    names = pm.names
+    sig = np.sqrt(np.maximum(np.diag(cov), 0)) if len(cov) else np.zeros(0)
+
+    def sigma_of(field_):
+        for i, f in enumerate(pm.free):
+            if f.column[pm.slot(field_, j)] != 0:
+                return float(sig[i])
+        return None
+
+    det_sigma = {
+        "center_px": ([sigma_of("center_x"), sigma_of("center_y")]
+                      if sigma_of("center_x") is not None else None),
+        "scale_px_per_mrad": sigma_of("scale"),
+        "rotation_deg": sigma_of("rotation"),
+        "distortion": ([sigma_of("e1"), sigma_of("e2")] if sigma_of("e1") is not None
+                       else None),
+    }
+    geo = pm.geometry(full[None], j)
+    s_factor = math.sqrt(factor) if np.isfinite(factor) and factor > 0 else 1.0
+    table = {}
+    if isinstance(data, CrossingData):
+        obs = problem._obs[j]
+        records = []
+        res_all = np.full((len(data), 2), np.nan)
+        if len(obs):
+            fitted = obs.predicted_px(geo)[0]
+            res_all[data.used] = obs.xy_px - fitted
+            normals = obs.line_normals_px(geo)
+            sigma = (obs.sigma_px if obs.sigma_px is not None else np.ones(len(obs))) * s_factor
+            for k in range(len(obs)):
+                for side, hkl in enumerate((obs.hkl_a[k], obs.hkl_b[k])):
+                    d = float((obs.xy_px[k] - fitted[k]) @ normals[k, side])
+                    table.setdefault(tuple(int(v) for v in hkl), []).append((d, d / sigma[k]))
+        for i in range(len(data)):
+            records.append(PointRecord(float(data.xy[i, 0]), float(data.xy[i, 1]),
+                                       data.hkl_a[i].tolist(), data.hkl_b[i].tolist(),
+                                       res_all[i].tolist(), bool(data.used[i]), data.notes[i]))
+        used = res_all[data.used]
+        rms = float(np.sqrt(np.mean(np.sum(used ** 2, axis=1)))) if len(used) else float("nan")
+        lines = None
+        n_points, n_used = len(data), int(data.used.sum())
+    else:
+        obs = problem._obs[j]
+        offsets = np.full((len(data), data.points.shape[1]), np.nan)
+        if len(obs):
+            offsets[data.used] = obs.residuals(geo)[0]
+            sd = np.sqrt(np.diagonal(obs.covariance, axis1=1, axis2=2)) * s_factor
+            for k, (hkl, d) in enumerate(zip(obs.hkl, offsets[data.used])):
+                table.setdefault(tuple(int(v) for v in hkl), []).extend(
+                    zip(-d, -d / sd[k]))
+        dist = np.sqrt(np.mean(offsets ** 2, axis=1))
+        index_of = {i: k for k, i in enumerate(data.good)}
+        lines = []
+        for i, ln in enumerate(data.detection.lines):
+            k = index_of.get(i)
+            if k is None:
+                lines.append(LineRecord(i, [0, 0, 0], None, False, ln.flag,
+                                        ln.normal_angle_deg))
+                continue
+            lines.append(LineRecord(i, data.hkl[k].tolist(),
+                                    float(dist[k]) if data.used[k] else None,
+                                    bool(data.used[k]), data.notes[k], ln.normal_angle_deg,
+                                    data.points[k].tolist(), offsets[k].tolist()))
+        records = _detected_crossings(problem, j, geo, data)
+        rms = float(np.sqrt(np.nanmean(dist[data.used] ** 2))) if data.used.any() \
+            else float("nan")
+        n_points, n_used = len(data), int(data.used.sum())
+    line_table = []
+    for hkl, items in sorted(table.items(), key=lambda kv: -len(kv[1])):
+        d = np.array([a for a, _ in items])
+        z = np.array([b for _, b in items])
+        line_table.append(LineResidual(list(hkl), len(items), float(d.mean()),
+                                       float(np.sqrt(np.mean(d ** 2))),
+                                       float(np.sqrt(np.mean(z ** 2)))))
+    kv_sigma = sigma_of("kv")
+    return PatternResult(
+        index=j, zone=spec.zone, x_axis=spec.x_axis, detector=det, detector_sigma=det_sigma,
+        kv=float(full[pm.slot("kv", j)]), kv_sigma=kv_sigma,
+        wave_number=float(pm.wave_numbers(full, j)[0]), disk_mrad=spec.disk_mrad,
+        points=records, lines=lines, line_table=line_table, rms_px=rms, n_points=n_points,
+        n_used=n_used, assigned=data.needs_assignment, tilt_deg=spec.tilt_deg,
+        source=spec.source, pixel_frame=spec.pixel_frame, calibration=spec.calibration,
+        excluded=tuple(sorted(exclude)), hexagonal=hexagonal)
+
+
+def _detected_crossings(problem, j, geo, data):
+    """The detected crossings of assigned lines, against the fitted ones."""
+    from .observations import Crossings
+
+    det = data.detection
+    label = {i: data.hkl[k] for k, i in enumerate(data.good) if data.used[k]}
+    rows = [(xy, label[a], label[b]) for (a, b), xy in
+            zip(det.crossing_lines, det.crossing_px) if a in label and b in label]
+    if not rows:
+        return []
+    spec = problem.specs[j]
+    obs = Crossings(spec.zone, spec.x_axis, np.array([r[0] for r in rows]),
+                    np.array([r[1] for r in rows]), np.array([r[2] for r in rows]))
+    res = obs.xy_px - obs.predicted_px(geo)[0]
+    return [PointRecord(float(xy[0]), float(xy[1]), list(map(int, a)), list(map(int, b)),
+                        r.tolist(), True, "derived from two fitted lines")
+            for (xy, a, b), r in zip(rows, res)]
+
+
