@@ -146,23 +146,25 @@ def _nice_factor(raw):
     return float(10 ** k)
 
 
-def fit_figure(result, crystal, *, image=None, magnify=None):
+def fit_figure(result, crystal=None, *, image=None, magnify=None, pattern=0):
     """Measured points over the fitted loci, with magnified residual vectors.
 
     Parameters
     ----------
-    result : laueline.refine.FitResult
-    crystal : Crystal
-        The reference crystal the fit was made with.
+    result : laueline.fit.FitResult
+    crystal : Crystal, optional
+        The reference crystal the fit was made with (by default the result's).
     image : ndarray, optional
         The pattern, drawn underneath in pixel coordinates (row = y down).
     magnify : float, optional
         Residual magnification; by default a 1-2-5 value drawing the rms
         residual at about 8 % of the disk radius.
+    pattern : int
+        Which pattern of a joint fit.
     """
-    from .refine import fitted_pattern
-
-    pattern = fitted_pattern(result, crystal)
+    fit = result
+    result = fit.patterns[pattern]
+    pattern = fit.fitted_pattern(result.index, crystal)
     det = result.detector
     fig = _new_figure(7.2, 7.0)
     ax = fig.subplots()
@@ -178,7 +180,7 @@ def fit_figure(result, crystal, *, image=None, magnify=None):
         # image fit: residuals of the points on each detected line, along its normal
         pts, vec, left = [], [], []
         for ln in result.lines:
-            if "points_px" not in ln:
+            if ln.points_px is None:
                 continue
             a = np.radians(ln["normal_angle_deg"])
             n = np.array([np.cos(a), np.sin(a)])
@@ -218,7 +220,7 @@ def fit_figure(result, crystal, *, image=None, magnify=None):
     zone = "".join(str(v) for v in result.zone) if all(0 <= v < 10 for v in result.zone) \
         else " ".join(str(v) for v in result.zone)
     what = "points" if result.lines is None else "lines"
-    ax.set_title(f"{result.structure['name']} [{zone}], model {result.model}: "
+    ax.set_title(f"{fit.structure['name']} [{zone}], model {fit.model}: "
                  f"{result.n_used} {what}, rms {result.rms_px:.3g} px\n"
                  f"residuals drawn {magnify:g} x", fontsize=10)
     ax.legend(loc="lower right", fontsize=8, framealpha=0.9)

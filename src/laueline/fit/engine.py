@@ -136,11 +136,8 @@ def parameter_covariance(jacobian, residual_covariance):
         length before the pseudo-inverse so that the result does not depend
         on the parameters' units.
     """
-    from scipy.linalg import cholesky, solve_triangular
-
     J = np.asarray(jacobian, float)
-    lower = cholesky(np.asarray(residual_covariance, float), lower=True)
-    Jw = solve_triangular(lower, J, lower=True)
+    Jw = _apply(_whitener(np.asarray(residual_covariance, float)), J)
     scale = np.linalg.norm(Jw, axis=0)
     scale[scale == 0] = 1.0
     _, sv, vt = np.linalg.svd(Jw / scale, full_matrices=False)
@@ -149,10 +146,21 @@ def parameter_covariance(jacobian, residual_covariance):
 
 
 def _whitener(cov):
+    """W with W S W^T = I: a vector of 1/sigma for a diagonal S, else inverse Cholesky."""
+    diagonal = np.diag(cov)
+    if np.count_nonzero(cov - np.diag(diagonal)) == 0:
+        return 1.0 / np.sqrt(diagonal)
     from scipy.linalg import cholesky, solve_triangular
 
     lower = cholesky(cov, lower=True)
     return solve_triangular(lower, np.eye(len(cov)), lower=True)
+
+
+def _apply(white, v):
+    """W v for a whitener of :func:`_whitener` (v of shape (n,) or (n, p))."""
+    if white.ndim == 1:
+        return white.reshape((-1,) + (1,) * (v.ndim - 1)) * v
+    return white @ v
 
 
 # ---------------------------------------------------------------------------
@@ -175,7 +183,7 @@ class _Problem:
         pm = self.parameters
         self._obs = self.actives()
         self._cov = [o.residual_covariance() for o in self._obs]
-        self._white = [_whitener(c) if len(c) else np.zeros((0, 0)) for c in self._cov]
+        self._white = [_whitener(c) if len(c) else np.zeros(0) for c in self._cov]
         self._cols = [pm.columns_of_pattern(j) for j in range(len(self.specs))]
         sizes = [len(o) * o.group_size for o in self._obs]
         self._rows = np.cumsum([0] + sizes)
@@ -211,7 +219,7 @@ class _Problem:
         out = np.empty_like(v)
         for j in range(len(self._obs)):
             lo, hi = self._rows[j], self._rows[j + 1]
-            out[lo:hi] = self._white[j] @ v[lo:hi]
+            out[lo:hi] = _apply(self._white[j], v[lo:hi])
         return out
 
     def residual_covariance(self):
@@ -240,8 +248,7 @@ def _solve(problem, x0, robust):
 
     def jac(x):
         _, J = problem.raw(x, with_jacobian=True)
-        return np.concatenate([problem._white[j] @ J[problem._rows[j]:problem._rows[j + 1]]
-                               for j in range(len(problem._obs))])
+        return problem.whiten(J)
 
     if robust:
         sizes = {o.group_size for o in problem._obs}
@@ -437,7 +444,7 @@ def _build(crystal, specs, *, kv, model, free, hold, unique_axis, robust, inner_
     for word, target in [(w, free_set) for w in free] + [(w, hold_set) for w in hold]:
         if word not in allowed:
             action = "free" if target is free_set else "hold"
-            raise InputError(f"cannot {action} '{word}' with model {model}; choose from "
+            raise InputError(f"{action}: cannot {action} '{word}' with model {model}; choose from "
                              f"{', '.join(sorted(allowed))}")
         target.add(word)
     if model != "strain":

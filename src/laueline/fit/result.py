@@ -260,6 +260,15 @@ class FitResult:
                             "inner_potential": self.inner_potential,
                             "disk_mrad": p.disk_mrad}, self.success, p.source)
 
+    def fitted_pattern(self, pattern=0, crystal=None, min_strength=0.05):
+        """The pattern predicted with the fitted basis and wave number (for figures)."""
+        from ..lines import predict
+
+        p = self.patterns[pattern]
+        crystal = crystal if crystal is not None else self.crystal
+        return predict(crystal.with_basis(self.basis), p.zone, p.kv, p.disk_mrad,
+                       x_axis=p.x_axis, min_strength=min_strength, wave_number=p.wave_number)
+
     def to_dict(self):
         """The ``laueline.fit/2`` document, as written by ``--json``."""
         from ..report import fit_document
@@ -270,7 +279,7 @@ class FitResult:
         """Figure of the measured points over the fitted loci (matplotlib Figure)."""
         from ..plot import fit_figure
 
-        return fit_figure(self, self.crystal, image=image, pattern=pattern)
+        return fit_figure(self, image=image, pattern=pattern)
 
     def __repr__(self):
         e = self.strain_voigt
