@@ -124,10 +124,11 @@ def parameter_covariance(jacobian, residual_covariance):
     jacobian : ndarray (n, p)
         Derivatives of the residuals (not whitened) with respect to the
         parameters.
-    residual_covariance : ndarray (n, n)
-        Covariance S of the measured values.  Any symmetric positive-definite
-        matrix: correlated errors (such as one random offset per line that
-        moves all of its crossings together) enter here.
+    residual_covariance : ndarray (n,) or (n, n)
+        Covariance S of the measured values: variances of independent values,
+        or any symmetric positive-definite matrix -- correlated errors (such
+        as one random offset per line that moves all of its crossings
+        together) enter here.
 
     Returns
     -------
@@ -146,10 +147,9 @@ def parameter_covariance(jacobian, residual_covariance):
 
 
 def _whitener(cov):
-    """W with W S W^T = I: a vector of 1/sigma for a diagonal S, else inverse Cholesky."""
-    diagonal = np.diag(cov)
-    if np.count_nonzero(cov - np.diag(diagonal)) == 0:
-        return 1.0 / np.sqrt(diagonal)
+    """W with W S W^T = I: a vector of 1/sigma for variances S (n,), else inverse Cholesky."""
+    if cov.ndim == 1:
+        return 1.0 / np.sqrt(cov)
     from scipy.linalg import cholesky, solve_triangular
 
     lower = cholesky(cov, lower=True)
@@ -223,9 +223,12 @@ class _Problem:
         return out
 
     def residual_covariance(self):
+        """Covariance of all residuals: variances (N,) or the block-diagonal matrix."""
+        if all(c.ndim == 1 for c in self._cov):
+            return np.concatenate(self._cov)
         from scipy.linalg import block_diag
 
-        return block_diag(*self._cov)
+        return block_diag(*[np.diag(c) if c.ndim == 1 else c for c in self._cov])
 
     def group_norms(self, x):
         """Whitened residual length of every group, per pattern."""
@@ -924,7 +927,7 @@ def _pattern_result(problem, j, x, full, cov, factor, exclude, hexagonal):
     }
     geo = pm.geometry(full[None], j)
     s_factor = math.sqrt(factor) if np.isfinite(factor) and factor > 0 else 1.0
-    table = {}
+    table_hkl, table_d, table_z = np.zeros((0, 3), np.int64), np.zeros(0), np.zeros(0)
     if isinstance(data, CrossingData):
         obs = problem._obs[j]
         records = []
@@ -934,10 +937,11 @@ def _pattern_result(problem, j, x, full, cov, factor, exclude, hexagonal):
             res_all[data.used] = obs.xy_px - fitted
             normals = obs.line_normals_px(geo)
             sigma = (obs.sigma_px if obs.sigma_px is not None else np.ones(len(obs))) * s_factor
-            for k in range(len(obs)):
-                for side, hkl in enumerate((obs.hkl_a[k], obs.hkl_b[k])):
-                    d = float((obs.xy_px[k] - fitted[k]) @ normals[k, side])
-                    table.setdefault(tuple(int(v) for v in hkl), []).append((d, d / sigma[k]))
+            # each crossing's residual across each of its two lines
+            d = np.einsum("ni,nsi->ns", obs.xy_px - fitted, normals)
+            table_hkl = np.concatenate([obs.hkl_a, obs.hkl_b])
+            table_d = np.concatenate([d[:, 0], d[:, 1]])
+            table_z = table_d / np.concatenate([sigma, sigma])
         for i in range(len(data)):
             records.append(PointRecord(float(data.xy[i, 0]), float(data.xy[i, 1]),
                                        data.hkl_a[i].tolist(), data.hkl_b[i].tolist(),
@@ -952,9 +956,10 @@ def _pattern_result(problem, j, x, full, cov, factor, exclude, hexagonal):
         if len(obs):
             offsets[data.used] = obs.residuals(geo)[0]
             sd = np.sqrt(np.diagonal(obs.covariance, axis1=1, axis2=2)) * s_factor
-            for k, (hkl, d) in enumerate(zip(obs.hkl, offsets[data.used])):
-                table.setdefault(tuple(int(v) for v in hkl), []).extend(
-                    zip(-d, -d / sd[k]))
+            k = offsets.shape[1]
+            table_hkl = np.repeat(obs.hkl, k, axis=0)
+            table_d = -offsets[data.used].ravel()     # measured minus fitted
+            table_z = table_d / sd.ravel()
         dist = np.sqrt(np.mean(offsets ** 2, axis=1))
         index_of = {i: k for k, i in enumerate(data.good)}
         lines = []
@@ -972,13 +977,7 @@ def _pattern_result(problem, j, x, full, cov, factor, exclude, hexagonal):
         rms = float(np.sqrt(np.nanmean(dist[data.used] ** 2))) if data.used.any() \
             else float("nan")
         n_points, n_used = len(data), int(data.used.sum())
-    line_table = []
-    for hkl, items in sorted(table.items(), key=lambda kv: -len(kv[1])):
-        d = np.array([a for a, _ in items])
-        z = np.array([b for _, b in items])
-        line_table.append(LineResidual(list(hkl), len(items), float(d.mean()),
-                                       float(np.sqrt(np.mean(d ** 2))),
-                                       float(np.sqrt(np.mean(z ** 2)))))
+    line_table = _line_table(table_hkl, table_d, table_z)
     kv_sigma = sigma_of("kv")
     return PatternResult(
         index=j, zone=spec.zone, x_axis=spec.x_axis, detector=det, detector_sigma=det_sigma,
@@ -988,6 +987,21 @@ def _pattern_result(problem, j, x, full, cov, factor, exclude, hexagonal):
         n_used=n_used, assigned=data.needs_assignment, tilt_deg=spec.tilt_deg,
         source=spec.source, pixel_frame=spec.pixel_frame, calibration=spec.calibration,
         excluded=tuple(sorted(exclude)), hexagonal=hexagonal)
+
+
+def _line_table(hkl, d, z):
+    """Residuals gathered by reflection, most observed lines first."""
+    if not len(hkl):
+        return []
+    lines, inverse = np.unique(hkl, axis=0, return_inverse=True)
+    inverse = inverse.ravel()
+    n = np.bincount(inverse)
+    mean = np.bincount(inverse, d) / n
+    rms = np.sqrt(np.bincount(inverse, d * d) / n)
+    z_rms = np.sqrt(np.bincount(inverse, z * z) / n)
+    order = np.lexsort((-rms, -n))
+    return [LineResidual([int(v) for v in lines[i]], int(n[i]), float(mean[i]),
+                         float(rms[i]), float(z_rms[i])) for i in order]
 
 
 def _detected_crossings(problem, j, geo, data):

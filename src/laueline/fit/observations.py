@@ -19,12 +19,12 @@ fit engine (:mod:`laueline.fit.engine`) uses:
 ``residuals(geometry)`` -> ndarray (m, n, group_size)
     Fitted minus measured, pixels, for m stacked parameter sets
     (:class:`laueline.fit.parameters.Geometry`).
-``residual_covariance()`` -> ndarray (n * group_size, n * group_size)
+``residual_covariance()`` -> ndarray (N,) or (N, N), N = n * group_size
     Covariance of the measured values, px^2, in the order of the flattened
-    residuals.  Today each group is independent (block diagonal); a per-line
-    error model, in which one random offset moves all crossings of a line
-    together, enters here as off-diagonal terms without any change to the
-    engine.
+    residuals: a vector of variances when they are independent, else the
+    full matrix.  A per-line error model, in which one random offset moves
+    all crossings of a line together, enters here as off-diagonal terms
+    without any change to the engine.
 ``line_labels()`` -> ndarray (n, k, 3)
     The reflections each group belongs to (2 per crossing, 1 per line).
 
@@ -86,7 +86,7 @@ class Crossings:
 
     def residual_covariance(self):
         s = np.ones(len(self)) if self.sigma_px is None else np.asarray(self.sigma_px, float)
-        return np.diag(np.repeat(s * s, 2))
+        return np.repeat(s * s, 2)
 
     def line_labels(self):
         return np.stack([self.hkl_a, self.hkl_b], axis=1)
