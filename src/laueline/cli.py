@@ -160,7 +160,7 @@ _REFINE_OPTIONS = {
     "disk_mrad": "--disk-mrad", "match_mrad": "--match-mrad", "biaxial": "--biaxial",
     "tilt_deg": "tilt_deg", "model='fixed', free=['kv']": "--model fixed --free kv",
     "calibration": "--calibration", "hold": "--hold", "free": "--free",
-    "a calibration": "--calibration",
+    "a calibration": "--calibration", "(stiffness)": "(--cubic-elastic-GPa or --stiffness-GPa)",
 }
 
 
@@ -171,7 +171,8 @@ def _refine_message(text):
     where they label the message (followed by a colon).
     """
     for name, option in _REFINE_OPTIONS.items():
-        tail = r"(?![\w-])" if ("_" in name or "=" in name or " " in name) else r"(?=:)"
+        plain_word = name.isidentifier() and "_" not in name
+        tail = r"(?=:)" if plain_word else r"(?![\w-])"
         text = re.sub(rf"(?<![\w-]){re.escape(name)}{tail}", option, text)
     return text
 
