@@ -224,3 +224,21 @@ def test_unlabelled_noisy_matches_labelled(si):
     assert all("ambiguous" in b.points[i].note for i in differ)
     if differ:
         assert any("ambiguous" in w for w in b.warnings)
+
+
+def test_parameter_covariance_is_the_generalised_least_squares_formula():
+    # Aitken (1935): for residual covariance S, cov = (J^T S^-1 J)^-1, here by
+    # plain matrix inversion; correlated S as a per-line offset shared by
+    # several values would give (the seam for a per-line error model)
+    from laueline.fit import parameter_covariance
+
+    rng = np.random.default_rng(1)
+    J = rng.normal(size=(12, 3)) * [1.0, 1e3, 1e-3]   # columns of very different units
+    shared = np.kron(np.eye(4), np.ones((3, 3))) * 0.5
+    S = np.eye(12) * 0.2 + shared
+    expected = np.linalg.inv(J.T @ np.linalg.inv(S) @ J)
+    np.testing.assert_allclose(parameter_covariance(J, S), expected, rtol=1e-10)
+    # independent values may be given as variances
+    v = rng.uniform(0.5, 2.0, 12)
+    np.testing.assert_allclose(parameter_covariance(J, v),
+                               np.linalg.inv(J.T @ np.diag(1 / v) @ J), rtol=1e-10)

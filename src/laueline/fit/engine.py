@@ -139,11 +139,25 @@ def parameter_covariance(jacobian, residual_covariance):
     """
     J = np.asarray(jacobian, float)
     Jw = _apply(_whitener(np.asarray(residual_covariance, float)), J)
-    scale = np.linalg.norm(Jw, axis=0)
-    scale[scale == 0] = 1.0
-    _, sv, vt = np.linalg.svd(Jw / scale, full_matrices=False)
+    return _covariance_from_svd(*_scaled_svd(Jw))
+
+
+def _covariance_from_svd(scale, sv, vt):
     inv = np.where(sv > sv[0] * 1e-14, 1.0 / sv ** 2, 0.0) if sv.size else sv
     return (vt.T * inv) @ vt / np.outer(scale, scale)
+
+
+def _scaled_svd(jacobian):
+    """Column norms and the singular values and vectors of the column-scaled matrix.
+
+    Via the triangular factor of a QR decomposition: the same singular
+    values as the tall matrix, at the cost of a p x p decomposition.
+    """
+    scale = np.linalg.norm(jacobian, axis=0)
+    scale = np.where(scale == 0, 1.0, scale)
+    r = np.linalg.qr(jacobian / scale, mode="r")
+    _, sv, vt = np.linalg.svd(r)
+    return scale, sv, vt
 
 
 def _whitener(cov):
@@ -739,13 +753,14 @@ def _result(problem, crystal, x, converged, message, warnings, *, stiffness, sam
             dead = [names[j] for j in np.flatnonzero(scale == 0)]
             raise InputError(f"degenerate fit: the data do not depend on {', '.join(dead)}; "
                              "hold it")
-        _, sv, vt = np.linalg.svd(Jw / scale, full_matrices=False)
+        scale, sv, vt = _scaled_svd(Jw)
         condition = float(sv[0] / sv[-1]) if sv[-1] > 0 else float("inf")
         if not np.isfinite(condition) or condition > 1e10:
             worst = [names[j] for j in np.argsort(-np.abs(vt[-1]))[:2]]
             raise InputError(f"degenerate fit: {' and '.join(worst)} cannot be separated by "
                              "these observations; hold one of them or measure more")
-        cov_int = parameter_covariance(J_raw, problem.residual_covariance()) * factor
+        # parameter_covariance(J_raw, residual covariance), from the decomposition above
+        cov_int = _covariance_from_svd(scale, sv, vt) * factor
         cov = cov_int * np.outer(units, units)
     else:
         cov = np.zeros((0, 0))
