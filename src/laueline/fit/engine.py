@@ -12,6 +12,10 @@ pattern or several of the same region:
    observation's residual covariance;
 4. the assignment gates shrink toward the achieved precision; back to 2.
 
+A fit that stops without converging is returned with ``success`` False and
+the reason in ``message`` (its report is still written); one that diverges
+to non-finite parameters raises :class:`laueline.errors.FitError`.
+
 Then, optionally, outliers are rejected (robust fit, 4-sigma level) and the
 fit is repeated; the covariance of the parameters comes from
 :func:`parameter_covariance`, fed by the residual covariance of each
@@ -40,7 +44,7 @@ from dataclasses import dataclass, field, replace
 import numpy as np
 
 from ..crystal import cell_from_basis
-from ..errors import InputError
+from ..errors import FitError, InputError
 from ..frame import default_x_axis, reduce_indices
 from ..optics import make_beam
 from ..strain import green_lagrange, green_lagrange_report, propagate, voigt, voigt_rotation
@@ -277,7 +281,9 @@ def _solve(problem, x0, robust):
     else:
         res = scipy.optimize.least_squares(fun, x0, jac=jac, method="lm", x_scale=1.0,
                                            max_nfev=100 * (p + 1))
-    converged = bool(res.status > 0 and np.all(np.isfinite(res.x)))
+    if not np.all(np.isfinite(res.x)):
+        raise FitError("the least-squares fit diverged to non-finite parameters")
+    converged = bool(res.status > 0)
     message = "" if converged else f"the least-squares fit stopped without converging " \
                                    f"({res.message})"
     return res.x, converged, message
@@ -439,17 +445,9 @@ def _build(crystal, specs, *, kv, model, free, hold, unique_axis, robust, inner_
     strain_holds = [h for h in hold if h in STRAIN_COMPONENTS]
     if model == "strain":
         constraints = strain_constraints(
-            crystal.basis, hold=hold_strain, hold_crystal=strain_holds,
-            sample_axes=sample_axes if (hold_strain or biaxial) else None, biaxial=biaxial,
-            zero_normal_stress=zero_normal_stress,
-            foil_normal=foil_normal,
-            stiffness=stiffness) if (wants_constraints or strain_holds) else \
-            strain_constraints()
-        if zero_normal_stress and foil_normal is None and sample_axes is not None and \
-                not (hold_strain or biaxial):
-            constraints = strain_constraints(
-                crystal.basis, hold_crystal=strain_holds, sample_axes=sample_axes,
-                zero_normal_stress=True, stiffness=stiffness)
+            crystal.basis, hold=hold_strain, hold_crystal=strain_holds, sample_axes=sample_axes,
+            biaxial=biaxial, zero_normal_stress=zero_normal_stress, foil_normal=foil_normal,
+            stiffness=stiffness)
     elif wants_constraints:
         raise InputError("hold_strain, biaxial and zero_normal_stress constrain the strain "
                          "model; choose model='strain'")
