@@ -33,7 +33,8 @@ import numpy as np
 from .errors import InputError
 
 __all__ = [
-    "deformation_gradient", "basis_from_green_lagrange", "green_lagrange", "small_strain", "voigt", "from_voigt",
+    "deformation_gradient", "basis_from_green_lagrange", "green_lagrange", "small_strain",
+    "voigt", "from_voigt",
     "principal", "volumetric", "sample_axes", "rotate_tensor", "cubic_stiffness",
     "read_stiffness", "stress", "propagate", "StrainReport", "strain_report",
     "voigt_rotation", "green_lagrange_report",

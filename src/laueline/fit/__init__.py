@@ -13,7 +13,8 @@
 
 from .calibration import Calibration, PixelFrame
 from .constraints import STRAIN_COMPONENTS, StrainConstraints, strain_constraints
-from .engine import PatternSpec, parameter_covariance, refine, refine_image, refine_patterns
+from .covariance import parameter_covariance
+from .engine import PatternSpec, refine, refine_image, refine_patterns
 from .indices import is_hexagonal
 from .orientation import orientation_from_tilts, tilt_rotation
 from .parameters import MODELS, PARAMETER_UNITS
