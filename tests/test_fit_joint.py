@@ -68,6 +68,9 @@ def test_three_zones_separate_what_one_cannot(si):
     assert np.allclose(doc["strain"]["covariance_voigt_systematic"], 0)
     assert np.allclose(doc["strain"]["covariance_voigt"],
                        doc["strain"]["covariance_voigt_statistical"])
+    # a short summary line, and a figure of any pattern
+    assert repr(three).startswith("<FitResult success=True") and len(repr(three)) < 300
+    assert type(three.plot(pattern=2)).__name__ == "Figure"
 
 
 def test_labelled_and_unlabelled_patterns_in_one_loop(si):

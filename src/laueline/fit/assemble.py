@@ -218,13 +218,19 @@ def _value_of(f, full, xi):
 
 
 def _poorly_separated(cov6, frame, level=0.9):
+    """Pairs of components whose correlation exceeds ``level``.
+
+    Pairs tied exactly by the model or a constraint (|correlation| = 1 to
+    rounding, such as exx = eyy of a tetragonal cell) are not the data's
+    failing and are left out.
+    """
     s = np.sqrt(np.maximum(np.diag(cov6), 0))
     out = []
     for i in range(6):
         for j in range(i + 1, 6):
             if s[i] > 0 and s[j] > 0:
                 c = cov6[i, j] / (s[i] * s[j])
-                if abs(c) > level:
+                if level < abs(c) < 1 - 1e-9:
                     out.append((STRAIN_COMPONENTS[i], STRAIN_COMPONENTS[j], float(c), frame))
     return out
 
