@@ -242,3 +242,21 @@ def test_parameter_covariance_is_the_generalised_least_squares_formula():
     v = rng.uniform(0.5, 2.0, 12)
     np.testing.assert_allclose(parameter_covariance(J, v),
                                np.linalg.inv(J.T @ np.diag(1 / v) @ J), rtol=1e-10)
+
+
+def test_distortion_freed_on_a_reference_and_held_after(si):
+    # an elliptical projector distortion (1 % and -0.5 %) on both records;
+    # crossings by the independent Ewald construction
+    from conftest import ewald_points, green_lagrange_of
+
+    det = DETECTOR.replace(distortion=(0.01, -0.005))
+    ref = ewald_points(si, ZONE, (0, 0, 4), [0] * 6, det)
+    cal = refine(si, ZONE, ref, x_axis=(0, 0, 4), model="fixed", free=["kv", "distortion"])
+    # noise-free: recovered to the solver's precision
+    assert cal.detector.distortion == pytest.approx((0.01, -0.005), abs=1e-7)
+    assert cal.kv == pytest.approx(200.0, abs=1e-4)
+    strained = ewald_points(si, ZONE, (0, 0, 4), E_TRUE, det)
+    fit = refine(si, ZONE, strained, x_axis=(0, 0, 4), calibration=cal.calibration())
+    assert not any(n in fit.parameters for n in ("e1", "e2", "scale", "kv"))
+    assert fit.detector.distortion == cal.detector.distortion
+    np.testing.assert_allclose(fit.strain_voigt, green_lagrange_of(E_TRUE), atol=1e-7)
