@@ -279,7 +279,7 @@ def _pattern_dict(pat):
     }
 
 
-def fit_document(result, *, y_up=None, calibration_source=None, points_source=None):
+def fit_document(result, *, calibration_source=None, points_source=None):
     """The ``laueline.fit/2`` document of a :class:`~laueline.fit.FitResult`.
 
     Point coordinates, residuals and detector centres are given back in each
@@ -386,7 +386,7 @@ def _hkl_text(hkl, hexagonal):
     return format_plane(hkl, hexagonal)
 
 
-def fit_text(result, *, y_up=None):
+def fit_text(result):
     """Readable report of a fit: parameters, cell, strain, stress, line table, warnings."""
     from .fit import PARAMETER_UNITS
     from .fit.indices import format_direction

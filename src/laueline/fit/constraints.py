@@ -30,9 +30,9 @@ from dataclasses import dataclass, field
 import numpy as np
 
 from ..errors import InputError
-from ..strain import from_voigt, voigt_rotation
+from ..strain import voigt_rotation
 
-__all__ = ["STRAIN_COMPONENTS", "StrainConstraints", "strain_constraints", "normal_stress"]
+__all__ = ["STRAIN_COMPONENTS", "StrainConstraints", "strain_constraints"]
 
 STRAIN_COMPONENTS = ("exx", "eyy", "ezz", "eyz", "exz", "exy")
 _PAIRS = ((0, 0), (1, 1), (2, 2), (1, 2), (0, 2), (0, 1))  # Voigt order
@@ -56,6 +56,8 @@ class StrainConstraints:
         One sentence per constraint, for reports.
     frame : str
         ``crystal`` or ``sample``: where the held components were stated.
+    rows, values : ndarray (r, 6), ndarray (r,)
+        The constraint equations K v = d themselves.
     """
 
     offset: np.ndarray
@@ -189,13 +191,3 @@ def strain_constraints(reference_basis=None, *, hold=None, hold_crystal=(), samp
     else:
         names = tuple(f"mode{k + 1}" for k in range(N.shape[1]))
     return StrainConstraints(v0, N, names, tuple(text), frame, K, d)
-
-
-def normal_stress(strain_voigt, stiffness, normal):
-    """n . (C : E) . n in GPa for the six components of E (crystal frame)."""
-    s = from_voigt(np.asarray(stiffness) @ (np.asarray(strain_voigt) * _ENGINEERING))
-    n = np.asarray(normal, float) / np.linalg.norm(normal)
-    return float(n @ s @ n)
-
-
-

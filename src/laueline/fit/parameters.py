@@ -86,7 +86,6 @@ class FreeParameter:
     name: str
     column: np.ndarray
     unit: float
-    pattern: int | None = None
 
 
 class ParameterModel:
@@ -142,8 +141,7 @@ class ParameterModel:
             unit = 1e-3 * max(abs(self.start("scale", patterns[0])), 1e-9)
         else:
             unit = _STEP[field]
-        owner = patterns[0] if len(patterns) == 1 else None
-        self.free.append(FreeParameter(label or field, col, unit, owner))
+        self.free.append(FreeParameter(label or field, col, unit))
 
     @property
     def names(self):
@@ -178,10 +176,6 @@ class ParameterModel:
         return self.full0 + (x * self.units) @ self.matrix.T
 
     # -- forward quantities ---------------------------------------------------------
-    def strain_voigt(self, full):
-        """Green-Lagrange components (..., 6) of the strain and fixed models."""
-        return np.asarray(full)[..., :6]
-
     def bases(self, full):
         """Direct bases (m, 3, 3) of full vectors (m, size)."""
         full = np.atleast_2d(full)
