@@ -161,3 +161,23 @@ def test_patterns_bad_input(patterns_dir, capsys):
     (folder / "tilted.json").write_text(json.dumps({"patterns": tilted}))
     code, out, err = run_cli(capsys, "refine", "Si", "--patterns", folder / "tilted.json")
     assert code == 2 and "from the beam" in err
+
+
+def test_implausible_fit_exits_3_and_still_writes(tmp_path, capsys):
+    # stated sigmas three times too small (0.1 px stated, 0.3 px scatter): the
+    # chi-square check fails (p far below 0.01 for ~75 degrees of freedom)
+    si = read_crystal("Si")
+    pts = ewald_points(si, (2, 3, 0), (0, 0, 4), E, DETECTOR, noise_px=0.3,
+                       rng=np.random.default_rng(4))
+    path = tmp_path / "p.csv"
+    write_points(path, pts.xy_px, pts.hkl_a, pts.hkl_b, sigma_px=0.1)
+    cal = tmp_path / "cal.json"
+    cal.write_text(json.dumps({"schema": "laueline.fit/1", "kv": 200.0,
+                               "detector": {**DETECTOR.as_dict(), "y_up": False}}))
+    out_json = tmp_path / "fit.json"
+    code, out, err = run_cli(capsys, "refine", "Si", "--zone", 2, 3, 0, "--x-axis", 0, 0, 4,
+                             "--points", path, "--calibration", cal, "--json", out_json)
+    assert code == 3 and len(err.strip().splitlines()) == 1
+    assert "implausible" in err and "chi square" in err
+    doc = json.loads(out_json.read_text())
+    assert doc["success"] and not doc["plausible"]

@@ -266,6 +266,9 @@ def _cmd_refine(args):
     if not result.success:
         sys.stderr.write(f"laueline: the fit did not converge: {result.message}\n")
         return EXIT_NOT_CONVERGED
+    if not result.plausible:
+        sys.stderr.write(f"laueline: the fit is implausible: {result.implausibility}\n")
+        return EXIT_NOT_CONVERGED
     return 0
 
 

@@ -305,6 +305,7 @@ def fit_document(result, *, calibration_source=None, points_source=None):
     doc = {
         "schema": FIT_SCHEMA,
         "success": result.success, "message": result.message,
+        "plausible": result.plausible,
         "model": result.model,
         "unique_axis": result.unique_axis,
         "structure": result.structure,

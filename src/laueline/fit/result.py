@@ -180,6 +180,7 @@ class FitResult:
     patterns : list of PatternResult
     chi2, dof : float or None, int
     checks : list of Check
+        Plausibility checks; ``plausible`` is True when all passed.
     constraints : list of str
     warnings : list of str
     """
@@ -245,6 +246,19 @@ class FitResult:
     @property
     def n_points(self):
         return sum(p.n_points for p in self.patterns)
+
+    @property
+    def plausible(self):
+        """All plausibility checks passed (chi-square, residuals, orientation, calibration)."""
+        return all(c.passed for c in self.checks)
+
+    @property
+    def implausibility(self):
+        """One sentence naming the failed checks, or ''."""
+        failed = [c for c in self.checks if not c.passed]
+        return "; ".join(c.name.replace("_", " ") + (f" {c.value:.3g} (limit {c.limit:.3g})"
+                                                     if c.value is not None else " failed")
+                         for c in failed)
 
     def parameter(self, name):
         """(value, sigma) of a refined parameter."""
