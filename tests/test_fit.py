@@ -260,3 +260,24 @@ def test_distortion_freed_on_a_reference_and_held_after(si):
     assert not any(n in fit.parameters for n in ("e1", "e2", "scale", "kv"))
     assert fit.detector.distortion == cal.detector.distortion
     np.testing.assert_allclose(fit.strain_voigt, green_lagrange_of(E_TRUE), atol=1e-7)
+
+
+def test_line_table_and_excluded_lines(si):
+    from conftest import ewald_points
+
+    pts = ewald_points(si, ZONE, (0, 0, 4), E_TRUE, DETECTOR, noise_px=0.1,
+                       rng=np.random.default_rng(6))
+    fit = refine(si, ZONE, pts, x_axis=(0, 0, 4), calibration=CAL, mirror=False)
+    table = {tuple(r.hkl): r for r in fit.patterns[0].line_table}
+    # each line counts the crossings it takes part in (counted here from the labels)
+    labels = [tuple(h) for h in np.concatenate([pts.hkl_a, pts.hkl_b])]
+    assert {h: labels.count(h) for h in set(labels)} == {h: r.n for h, r in table.items()}
+    # residuals of 0.1 px noise, normalised by the estimated scatter: of order 1
+    assert all(r.rms_px < 0.5 and r.normalised_rms < 3 for r in table.values())
+    busiest = max(table, key=lambda h: table[h].n)
+    out = refine(si, ZONE, pts, x_axis=(0, 0, 4), calibration=CAL, mirror=False,
+                 exclude_lines=[busiest])
+    p = out.patterns[0]
+    assert busiest not in {tuple(r.hkl) for r in p.line_table}
+    assert p.n_used == len(pts) - table[busiest].n and p.excluded == (busiest,)
+    assert all("excluded" in r.note for r in p.points if not r.used)
