@@ -73,12 +73,16 @@ def test_three_zones_separate_what_one_cannot(si):
     assert type(three.plot(pattern=2)).__name__ == "Figure"
 
 
-def test_labelled_and_unlabelled_patterns_in_one_loop(si):
-    # the first pattern without labels (its points assigned to predicted
-    # crossings while the fit runs), the second labelled: one loop serves both
+@pytest.mark.parametrize("unlabelled", [(True, False), (True, True)])
+def test_labelled_and_unlabelled_patterns_in_one_loop(si, unlabelled):
+    # patterns without labels have their points assigned to predicted
+    # crossings while the fit runs; labelled ones are used as they are: one
+    # loop serves both
     specs = _specs(si, 2)
-    specs[0].points = type(specs[0].points)(specs[0].points.xy_px.copy())
-    specs[0].mirror = False
+    for spec, bare in zip(specs, unlabelled):
+        if bare:
+            spec.points = type(spec.points)(spec.points.xy_px.copy())
+            spec.mirror = False
     fit = refine_patterns(si, specs)
-    assert fit.success and [p.assigned for p in fit.patterns] == [True, False]
+    assert fit.success and [p.assigned for p in fit.patterns] == list(unlabelled)
     np.testing.assert_allclose(fit.strain_voigt, green_lagrange_of(E_TRUE), atol=1e-8)

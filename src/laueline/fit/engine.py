@@ -240,7 +240,9 @@ def _reject_outliers(problem, x):
 
     norms = problem.group_norms(x)
     k = problem._obs[0].group_size
-    sigma = max(np.median(np.concatenate(norms)) / _median_norm(k), 1e-9)
+    # no measured position is better than a thousandth of its stated sigma (or of
+    # a pixel): exact synthetic data must not turn rounding into outliers
+    sigma = max(np.median(np.concatenate(norms)) / _median_norm(k), 1e-3)
     for j, r in enumerate(norms):
         level = math.sqrt(chi2.isf(math.exp(-8.0), problem._obs[j].group_size))
         keep = r <= level * sigma
@@ -262,29 +264,45 @@ def _rms_px(problem, x):
     return out
 
 
-def _fit_loop(problem, robust):
-    """Assign and fit until no assignment changes; returns (x, converged, messages)."""
+def _settle(problem, x, robust, first_round=0):
+    """Assign and fit until no assignment changes; returns (x, converged, message, settled)."""
     pm = problem.parameters
-    x = np.zeros(len(pm.free))
     previous = None
     converged, message = False, ""
-    warnings = []
-    searching = any(d.needs_assignment for d in problem.data)
-    for round_ in range(_MAX_ROUNDS):
+    for round_ in range(first_round, first_round + _MAX_ROUNDS):
         full = pm.full(x)
         keys = [d.assign(problem, j, full, round_) for j, d in enumerate(problem.data)]
         if keys == previous:
-            break
+            return x, converged, message, True
         previous = keys
-        # the first round starts from the reference and may hold wrong matches: a
-        # robust loss keeps them from dragging the fit away
-        x, converged, message = _solve(problem, x, robust or (searching and round_ == 0))
+        x, converged, message = _solve(problem, x, robust)
         full = pm.full(x)
         for j, (d, rms) in enumerate(zip(problem.data, _rms_px(problem, x))):
             d.after_round(problem, j, full, rms)
-    else:
-        warnings.append(f"the assignment did not settle in {_MAX_ROUNDS} rounds")
-        converged, message = False, "the assignment did not settle"
+    return x, False, "the assignment did not settle", False
+
+
+def _fit_loop(problem, robust):
+    """The one assignment-and-fit loop; returns (x, converged, message, warnings).
+
+    While points are being assigned some matches may be wrong: a robust loss
+    keeps them from dragging the fit away.  Once the assignment settles, the
+    matches beyond the 4-sigma level are set aside, the rest fitted by least
+    squares, and the assignment is revisited from that fit (which usually
+    gives the set-aside points their right partners); a final least-squares
+    fit without outliers follows.
+    """
+    pm = problem.parameters
+    searching = any(d.needs_assignment for d in problem.data)
+    x = np.zeros(len(pm.free))
+    x, converged, message, settled = _settle(problem, x, robust or searching)
+    if searching and settled:
+        x, converged, message = _reject_outliers(problem, x)
+        full = pm.full(x)
+        for j, (d, rms) in enumerate(zip(problem.data, _rms_px(problem, x))):
+            d.after_round(problem, j, full, rms)
+        x, converged, message, settled = _settle(problem, x, True, first_round=1)
+    warnings = [] if settled else [f"the assignment did not settle in {_MAX_ROUNDS} rounds"]
     full = pm.full(x)
     for j, (d, rms) in enumerate(zip(problem.data, _rms_px(problem, x))):
         n = d.ambiguity(problem, j, full, rms)
@@ -292,10 +310,12 @@ def _fit_loop(problem, robust):
             warnings.append(f"{problem.specs[j].label}{n} point(s) lie as near to a second "
                             "predicted crossing (lines meeting almost at one point); their "
                             "assignment is ambiguous (see the points table)")
-    if robust:
+    if robust or searching:
         x, converged, message = _reject_outliers(problem, x)
     else:
         problem.prepare()
+    if not settled:
+        converged, message = False, "the assignment did not settle"
     return x, converged, message, warnings
 
 
