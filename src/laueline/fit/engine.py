@@ -9,17 +9,20 @@ pattern or several of the same region:
    assignment changed since the last round the loop ends;
 3. one least-squares fit of all patterns together (one crystal, one
    strain; a detector and voltage per pattern), whitened by each
-   observation's residual covariance;
+   observation's residual covariance -- with a robust loss while
+   observations are being assigned;
 4. the assignment gates shrink toward the achieved precision; back to 2.
+
+When observations were assigned (or ``robust`` is asked for), matches beyond
+the 4-sigma level are then set aside, the assignment is revisited from the
+clean fit, and a final least-squares fit is made without outliers.  The
+covariance of the parameters comes from
+:func:`laueline.fit.covariance.parameter_covariance`, fed by the residual
+covariance of each observation type.
 
 A fit that stops without converging is returned with ``success`` False and
 the reason in ``message`` (its report is still written); one that diverges
 to non-finite parameters raises :class:`laueline.errors.FitError`.
-
-Then, optionally, outliers are rejected (robust fit, 4-sigma level) and the
-fit is repeated; the covariance of the parameters comes from
-:func:`parameter_covariance`, fed by the residual covariance of each
-observation type.
 
 What is refined: the crystal by ``model`` (``strain``: the six Green-Lagrange
 components, optionally reduced by exact constraints; ``fixed``: the
