@@ -338,7 +338,7 @@ def test_cli_render_detect_refine(tmp_path, capsys):
                          "--figure", tmp_path / "f.png")
     assert code == 0, err
     fit = json.loads((tmp_path / "f.json").read_text())
-    assert fit["schema"] == "laueline.fit/1" and fit["observations"] == "lines"
+    assert fit["schema"] == "laueline.fit/2" and fit["observations"] == "lines"
     assert fit["kv"] == pytest.approx(200, abs=0.01)
 
 

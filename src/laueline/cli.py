@@ -191,64 +191,123 @@ def _stiffness_and_axes(args, crystal):
     return stiffness, _sample_frame(args, crystal)[0]
 
 
+# library parameter names -> the refine command's options, for error messages
+_REFINE_OPTIONS = {
+    "scale_px_per_mrad": "--scale-px-per-mrad", "hold_strain": "--fix-strain",
+    "zero_normal_stress": "--zero-normal-stress", "foil_normal": "--foil-normal",
+    "sample_axes": "--sample-x/--sample-z", "stiffness": "--cubic-elastic-GPa or --stiffness-GPa",
+    "exclude_lines": "--exclude-lines", "x_axis": "--x-axis", "unique_axis": "--unique-axis",
+    "disk_mrad": "--disk-mrad", "match_mrad": "--match-mrad", "biaxial": "--biaxial",
+    "tilt_deg": "tilt_deg", "model='fixed', free=['kv']": "--model fixed --free kv",
+    "calibration": "--calibration", "hold": "--hold", "free": "--free",
+    "a calibration": "--calibration", "(stiffness)": "(--cubic-elastic-GPa or --stiffness-GPa)",
+}
+
+
+def _refine_message(text):
+    """Python parameter names in a library message -> the command's options.
+
+    Names with an underscore or '=' are replaced anywhere; plain words only
+    where they label the message (followed by a colon).
+    """
+    for name, option in _REFINE_OPTIONS.items():
+        plain_word = name.isidentifier() and "_" not in name
+        tail = r"(?=:)" if plain_word else r"(?![\w-])"
+        text = re.sub(rf"(?<![\w-]){re.escape(name)}{tail}", option, text)
+    return text
+
+
+def _group_indices(values, hexagonal, option):
+    size = 4 if hexagonal else 3
+    if len(values) % size:
+        raise InputError(f"{option}: give indices in groups of {size}"
+                         + (" (four-index for a hexagonal crystal)" if hexagonal else ""))
+    return [tuple(values[i:i + size]) for i in range(0, len(values), size)]
+
+
 def _cmd_refine(args):
     from . import report
-
-    args.disk_mrad_given = args.disk_mrad is not None
-    if args.disk_mrad is None:
-        args.disk_mrad = 6.0
+    from .fit import Calibration, PatternSpec, PixelFrame, is_hexagonal, refine_patterns
+    from .fit.patterns import read_patterns
     from .points import read_points
-    from .refine import calibration_from_document, refine
 
     report.check_outputs([args.json], args.force, args.figure)
     crystal = _load_crystal(args)
-    if (args.points is None) == (args.image is None):
-        raise InputError("give either --points CSV or --image PATTERN")
+    given = [o for o, v in (("--points", args.points), ("--image", args.image),
+                            ("--patterns", args.patterns)) if v is not None]
+    if len(given) != 1:
+        raise InputError("give one of --points CSV, --image PATTERN or --patterns LIST.json")
+    if args.patterns is None and args.zone is None:
+        raise InputError("--zone is needed with --points or --image")
+    if args.patterns is not None and args.zone is not None:
+        raise InputError("with --patterns the zone axes come from the patterns file; "
+                         "leave out --zone")
+    hexagonal = is_hexagonal(crystal.cell)
+    stiffness, axes = _stiffness_and_axes(args, crystal)
+    hold_strain = {}
+    for item in args.fix_strain or ():
+        name, _, value = item.partition("=")
+        try:
+            hold_strain[name.strip()] = float(value) if value else 0.0
+        except ValueError:
+            raise InputError(f"--fix-strain {item}: write NAME or NAME=VALUE, e.g. exz=0") \
+                from None
+    options = dict(
+        kv=args.kv, model=args.model, free=args.free or (), hold=args.hold or (),
+        unique_axis=args.unique_axis, robust=args.robust, inner_potential=args.inner_potential,
+        stiffness=stiffness, sample_axes=axes, hold_strain=hold_strain or None,
+        biaxial=args.biaxial, zero_normal_stress=args.zero_normal_stress,
+        foil_normal=args.foil_normal,
+        exclude_lines=_group_indices(args.exclude_lines or [], hexagonal, "--exclude-lines"),
+        tilt_tolerance_deg=args.tilt_tolerance_deg)
     calibration = None
     if args.calibration:
-        calibration = calibration_from_document(
-            report.read_json(args.calibration, "laueline.fit"))
-    stiffness, axes = _stiffness_and_axes(args, crystal)
-    flip = -1.0 if args.y_up else 1.0
-    center = None if args.center_px is None else (args.center_px[0], flip * args.center_px[1])
-    common = dict(kv=args.kv, model=args.model, x_axis=args.x_axis, free=args.free or (),
-                  hold=args.hold or (), unique_axis=args.unique_axis, center_px=center,
-                  scale_px_per_mrad=args.scale_px_per_mrad, rotation_deg=args.rotation_deg,
-                  mirror=args.mirror, calibration=calibration, robust=args.robust,
-                  min_strength=args.min_strength, inner_potential=args.inner_potential,
-                  stiffness=stiffness, sample_axes=axes)
+        calibration = Calibration.from_document(
+            report.read_json(args.calibration, "laueline.fit"), source=args.calibration)
+    frame = PixelFrame(args.y_up)
+    defaults = dict(x_axis=args.x_axis, calibration=calibration,
+                    center_px=args.center_px, scale_px_per_mrad=args.scale_px_per_mrad,
+                    rotation_deg=args.rotation_deg, mirror=args.mirror,
+                    min_strength=args.min_strength, min_angle_deg=args.min_angle_deg,
+                    match_mrad=args.match_mrad, disk_mrad=args.disk_mrad)
     image = None
-    if args.image:
-        from .images.detect import detect_lines
-        from .images.io import read_image
-        from .refine import refine_image
+    try:
+        if args.patterns:
+            pattern_defaults = {k: v for k, v in defaults.items()
+                                if v is not None and k != "x_axis"}
+            specs = read_patterns(args.patterns, defaults=pattern_defaults,
+                                  detect_options={"min_angle_deg": args.min_angle_deg})
+        elif args.image:
+            from .images.detect import detect_lines
+            from .images.io import read_image
 
-        if args.y_up:
-            raise InputError("--y-up applies to point files; images are read row by row")
-        image, saturation = read_image(args.image)
-        detection = detect_lines(image, disk=args.disk_px, saturation=saturation,
-                                 min_angle_deg=args.min_angle_deg, source=args.image)
-        # the default radius gives the camera scale when nothing else does
-        scale_known = args.scale_px_per_mrad is not None or calibration is not None
-        result = refine_image(crystal, args.zone, detection,
-                              disk_mrad=None if scale_known and not args.disk_mrad_given
-                              else args.disk_mrad, **common)
-    else:
-        points = read_points(args.points, y_up=args.y_up)
-        result = refine(crystal, args.zone, points, disk_mrad=args.disk_mrad,
-                        min_angle_deg=args.min_angle_deg, match_mrad=args.match_mrad, **common)
-    print(report.fit_text(result, y_up=args.y_up))
+            if args.y_up:
+                raise InputError("--y-up applies to point files; images are read row by row")
+            image, saturation = read_image(args.image)
+            detection = detect_lines(image, disk=args.disk_px, saturation=saturation,
+                                     min_angle_deg=args.min_angle_deg, source=args.image)
+            specs = [PatternSpec(tuple(args.zone), detection=detection, source=args.image,
+                                 **defaults)]
+        else:
+            points = read_points(args.points, y_up=args.y_up)
+            specs = [PatternSpec(tuple(args.zone), points=points, pixel_frame=frame,
+                                 source=args.points, **defaults)]
+        result = refine_patterns(crystal, specs, **options)
+    except InputError as exc:
+        raise InputError(_refine_message(str(exc))) from None
+    print(report.fit_text(result))
 
     def figure():
         from .plot import fit_figure
 
         return fit_figure(result, crystal, image=image)
 
-    _finish(args, report.fit_document(result, y_up=args.y_up,
-                                      calibration_source=args.calibration,
-                                      points_source=args.points or args.image), figure)
-    if not result.converged:
-        sys.stderr.write("laueline: the fit did not converge; see the warnings\n")
+    _finish(args, report.fit_document(result), figure)
+    if not result.success:
+        sys.stderr.write(f"laueline: the fit did not converge: {result.message}\n")
+        return EXIT_NOT_CONVERGED
+    if not result.plausible:
+        sys.stderr.write(f"laueline: the fit is implausible: {result.implausibility}\n")
         return EXIT_NOT_CONVERGED
     return 0
 
@@ -534,30 +593,58 @@ def build_parser():
                    help="mark in the figure the crossings among the labelled (strongest) lines")
     p.set_defaults(run=_cmd_predict)
 
-    p = sub.add_parser("refine", help="fit cell or strain (and detector, voltage) to crossings "
-                                      "or to the lines of an image",
-                       description="Fit measured HOLZ line crossings: cell or strain, detector "
-                                   "and optionally the voltage, with uncertainties.")
-    _add_crystal_options(p)
+    p = sub.add_parser("refine", help="fit cell or strain (and detector, voltage) to crossings, "
+                                      "to the lines of an image, or to several patterns",
+                       description="Fit measured HOLZ line crossings or detected lines of one "
+                                   "or several patterns: cell or strain, detector and "
+                                   "optionally the voltage, with uncertainties.")
+    p.add_argument("structure", help="CIF file or bundled structure name (see 'laueline structures')")
+    p.add_argument("--zone", nargs="+", type=int, metavar="U",
+                   help="zone axis [u v w] toward the source (four indices U V T W for a "
+                        "hexagonal crystal); not with --patterns")
+    p.add_argument("--kv", type=float, default=200.0, help="accelerating voltage in kV (200)")
+    p.add_argument("--x-axis", nargs="+", type=int, metavar="H",
+                   help="reflection fixing the disk x direction, H K L (H K I L hexagonal; "
+                        "default: shortest visible zero-layer reflection)")
+    p.add_argument("--b-iso", type=float, metavar="B",
+                   help="one isotropic B in A^2 for all atoms (a cooled specimen sharpens lines)")
+    p.add_argument("--inner-potential", action="store_true",
+                   help="correct the wave number for the mean inner potential")
     p.add_argument("--points", metavar="CSV",
                    help="crossings in pixels: columns x, y (X, Y), optional h1 k1 l1 h2 k2 l2 "
-                        "and sigma_px")
+                        "(i1 i2 for four-index labels) and sigma_px")
     p.add_argument("--image", metavar="PATTERN",
                    help="a pattern image (TIFF, PNG, .npy): detect its lines and fit them")
+    p.add_argument("--patterns", metavar="LIST.json",
+                   help="several patterns of one region, fitted with one strain (see README)")
     p.add_argument("--disk-px", nargs=3, type=float, metavar=("X", "Y", "R"),
                    help="with --image: the disk centre and radius in px instead of finding it")
     p.add_argument("--y-up", action="store_true",
                    help="the points' y grows upward (default: down, as image rows)")
-    p.add_argument("--model", choices=_Choices(".refine", "MODELS"), default="strain",
+    p.add_argument("--model", choices=_Choices(".fit", "MODELS"), default="strain",
                    metavar="MODEL",
                    help="what of the crystal is refined: %(choices)s (strain)")
     p.add_argument("--unique-axis", choices=["a", "b", "c"],
                    help="unique axis of a tetragonal (c) or monoclinic (b) cell")
     p.add_argument("--free", nargs="+", action="extend", metavar="NAME",
-                   help="free further parameters: kv, scale, center, rotation, strain "
-                        "components or cell parameters")
+                   help="free further parameters: kv, scale, center, rotation, distortion, "
+                        "strain components or cell parameters")
     p.add_argument("--hold", nargs="+", action="extend", metavar="NAME",
-                   help="hold parameters at their start values")
+                   help="hold parameters at their start values (strain components at zero, "
+                        "crystal frame)")
+    p.add_argument("--fix-strain", nargs="+", action="extend", metavar="NAME[=VALUE]",
+                   help="hold strain components exactly (default 0), in the sample frame when "
+                        "--sample-x/--sample-z are given, else the crystal frame")
+    p.add_argument("--biaxial", action="store_true",
+                   help="equal in-plane normal strains of the sample frame (exx = eyy)")
+    p.add_argument("--zero-normal-stress", action="store_true",
+                   help="no normal stress along the foil normal (needs elastic constants)")
+    p.add_argument("--foil-normal", nargs=3, type=float, metavar=("U", "V", "W"),
+                   help="crystal direction of the foil normal (default: --sample-z)")
+    p.add_argument("--exclude-lines", nargs="+", type=int, action="extend", metavar="H",
+                   help="leave these reflections out: H K L ... (H K I L for hexagonal)")
+    p.add_argument("--tilt-tolerance-deg", type=float, default=1.0,
+                   help="largest angle between a tilted zone axis and the beam (1)")
     p.add_argument("--center-px", nargs=2, type=float, metavar=("X", "Y"),
                    help="start value of the pattern centre (zone-axis direction) in px")
     p.add_argument("--scale-px-per-mrad", type=float, help="start value of the camera scale")
@@ -567,8 +654,8 @@ def build_parser():
     p.add_argument("--no-mirror", dest="mirror", action="store_const", const=False,
                    help="the detector does not mirror (default: decided from the data)")
     p.add_argument("--calibration", metavar="FIT.json",
-                   help="a reference fit: hold its voltage and scale, start from its "
-                        "centre, rotation and mirror")
+                   help="a reference fit: hold its voltage, scale and distortion, start from "
+                        "its centre, rotation and mirror")
     p.add_argument("--robust", action="store_true",
                    help="down-weight outliers and list those rejected")
     p.add_argument("--disk-mrad", type=float, default=None,

@@ -136,7 +136,7 @@ def run_demo(out="laueline-demo", force=False, stream=None):
     from .images.detect import detect_lines
     from .images.io import read_image
     from .plot import detection_figure, fit_figure, save_figure
-    from .refine import CAUTIONS, refine_image
+    from .fit import CAUTIONS, refine_image
     from .strain import cubic_stiffness, sample_axes
 
     stream = stream or sys.stdout
@@ -182,7 +182,7 @@ def run_demo(out="laueline-demo", force=False, stream=None):
     det = detect_lines(image, saturation=sat, source=str(paths["channel"]))
     axes = sample_axes(si.basis, SCENARIO["sample_x"], SCENARIO["sample_z"])
     stiffness = cubic_stiffness(*SCENARIO["elastic_GPa"])
-    fit = refine_image(si, SCENARIO["zone"], det, calibration=(cal.kv, cal.detector),
+    fit = refine_image(si, SCENARIO["zone"], det, calibration=cal.calibration(),
                        x_axis=SCENARIO["x_axis"], stiffness=stiffness, sample_axes=axes)
     report.write_json(report.fit_document(fit, calibration_source=str(out / "calibration.json"),
                                           points_source=str(paths["channel"])),

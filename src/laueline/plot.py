@@ -351,23 +351,25 @@ def _nice_length(raw):
     return float((1 if m < 1.5 else 2 if m < 3.5 else 5 if m < 7.5 else 10) * 10 ** k)
 
 
-def fit_figure(result, crystal, *, image=None, magnify=None):
+def fit_figure(result, crystal=None, *, image=None, magnify=None, pattern=0):
     """Measured data with the fitted loci drawn thinly over them, and magnified residuals.
 
     Parameters
     ----------
-    result : laueline.refine.FitResult
-    crystal : Crystal
-        The reference crystal the fit was made with.
+    result : laueline.fit.FitResult
+    crystal : Crystal, optional
+        The reference crystal the fit was made with (by default the result's).
     image : ndarray, optional
         The pattern, drawn underneath in pixel coordinates (row = y down).
     magnify : float, optional
         Residual magnification; by default a 1-2-5 value drawing the rms
         residual at about 8 % of the disk radius.  A key arrow gives the scale.
+    pattern : int
+        Which pattern of a joint fit.
     """
-    from .refine import fitted_pattern
-
-    pattern = fitted_pattern(result, crystal)
+    fit = result
+    result = fit.patterns[pattern]
+    pattern = fit.fitted_pattern(result.index, crystal)
     det = result.detector
     fig = _new_figure(7.4, 7.6)
     ax = fig.subplots()
@@ -390,7 +392,7 @@ def fit_figure(result, crystal, *, image=None, magnify=None):
         # image fit: residuals of the points on each detected line, along its normal
         pts, vec, left = [], [], []
         for ln in result.lines:
-            if "points_px" not in ln:
+            if ln.points_px is None:
                 continue
             a = np.radians(ln["normal_angle_deg"])
             n = np.array([np.cos(a), np.sin(a)])
@@ -431,8 +433,8 @@ def fit_figure(result, crystal, *, image=None, magnify=None):
     ax.set_xlabel("x (px)")
     ax.set_ylabel("y (px, down)")
     what = "points" if result.lines is None else "lines"
-    _heading(ax, f"{result.structure['name']} {hkl_label(result.zone, '[]')}  fit of the "
-                 f"{result.model} model",
+    _heading(ax, f"{fit.structure['name']} {hkl_label(result.zone, '[]')}  fit of the "
+                 f"{fit.model} model",
              f"{result.n_used} {what} used, rms {result.rms_px:.3g} px; amber: fitted loci, "
              "blue: measured\nkinematic model; the strain is that of the thin foil, which "
              "relaxes at its surfaces")

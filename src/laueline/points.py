@@ -6,7 +6,8 @@ Format: a header row, then one row per crossing.  Columns:
   as image rows (see :mod:`laueline.detector`), or y up when the caller
   says so;
 * optional ``h1 k1 l1 h2 k2 l2``: the two reflections whose lines cross
-  there (all six or none);
+  there (all six or none); for hexagonal crystals also ``i1`` and ``i2``
+  (four-index Miller-Bravais labels, i = -(h + k) checked);
 * optional ``sigma_px``: standard uncertainty of the position, pixels;
 * optional identifiers, ignored: an unnamed first column, ``index``, ``id``,
   ``label``, ``name``.
@@ -30,6 +31,7 @@ from .errors import InputError
 __all__ = ["Points", "read_points", "write_points"]
 
 _LABELS = ("h1", "k1", "l1", "h2", "k2", "l2")
+_FOURTH = ("i1", "i2")
 _IGNORED = {"", "index", "id", "label", "name", " "}
 
 
@@ -68,9 +70,12 @@ def read_points(path, *, y_up=False):
     ----------
     path : str or Path
     y_up : bool
-        The file's y grows upward; it is negated to the y-down convention
-        (the detector centre absorbs the offset).
+        The file's y grows upward; :class:`laueline.fit.PixelFrame` converts
+        it to the internal y-down convention (the detector centre absorbs
+        the offset).
     """
+    from .fit.calibration import PixelFrame
+
     path = Path(path)
     try:
         raw = path.read_text(encoding="utf-8-sig")
@@ -88,12 +93,16 @@ def read_points(path, *, y_up=False):
                          f"found {', '.join(header) or 'nothing'}")
     if len(set(lower)) != len(lower):
         raise InputError(f"{path}: repeated column names in the header")
-    known = {"x", "y", "sigma_px", *_LABELS}
+    known = {"x", "y", "sigma_px", *_LABELS, *_FOURTH}
     extra = [h for h in header
              if h.lower() not in known and h.lower() not in _IGNORED]
     if extra:
         raise InputError(f"{path}: unknown column(s) {', '.join(extra)}; allowed are x, y, "
-                         "h1 k1 l1 h2 k2 l2, sigma_px and an identifier column")
+                         "h1 k1 l1 h2 k2 l2 (with i1 i2 for four-index labels), sigma_px "
+                         "and an identifier column")
+    fourth = [c for c in _FOURTH if c in lower]
+    if fourth and (len(fourth) != 2 or not all(c in lower for c in _LABELS)):
+        raise InputError(f"{path}: four-index labels need h1 k1 i1 l1 h2 k2 i2 l2")
     present = [c for c in _LABELS if c in lower]
     if present and len(present) != 6:
         missing = [c for c in _LABELS if c not in lower]
@@ -128,15 +137,19 @@ def read_points(path, *, y_up=False):
                     raise InputError(f"{path}: row {n}, column {name}: Miller indices are "
                                      "integers")
                 ints.append(int(round(v)))
+            for side, name in enumerate(fourth):
+                i_value = number(name)
+                h, k = ints[3 * side], ints[3 * side + 1]
+                if i_value != -(h + k):
+                    raise InputError(f"{path}: row {n}: label {h} {k} {i_value:g} "
+                                     f"{ints[3 * side + 2]} breaks i = -(h + k) = {-(h + k)}")
             labels.append(ints)
         if "sigma_px" in col:
             s = number("sigma_px")
             if s <= 0:
                 raise InputError(f"{path}: row {n}: sigma_px must be positive")
             sigma.append(s)
-    xy = np.array(xy, dtype=float)
-    if y_up:
-        xy[:, 1] = -xy[:, 1]
+    xy = PixelFrame(y_up).to_internal(np.array(xy, dtype=float))
     hkl_a = hkl_b = None
     if present:
         lab = np.array(labels, dtype=np.int64)

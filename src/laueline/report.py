@@ -275,66 +275,111 @@ def pattern_text(pattern, n_strongest=12):
 # fit
 # ---------------------------------------------------------------------------
 
-FIT_SCHEMA = "laueline.fit/1"
+FIT_SCHEMA = "laueline.fit/2"
 
 
+def _point_dict(row, frame):
+    xy = frame.to_user([row.x_px, row.y_px])
+    res = frame.to_user(row.residual_px)
+    return {"x_px": xy[0], "y_px": xy[1], "hkl_a": row.hkl_a, "hkl_b": row.hkl_b,
+            "residual_px": res, "used": row.used, "note": row.note}
 
-def fit_document(result, *, y_up=False, calibration_source=None, points_source=None):
-    """The ``laueline.fit/1`` document of a :class:`~laueline.refine.FitResult`.
 
-    With ``y_up`` the point coordinates and residuals are given back in the
-    caller's y-up convention, as read.
+def _pattern_dict(pat):
+    frame = pat.pixel_frame
+    det = pat.detector.as_dict()
+    det["center_px"] = frame.to_user(pat.detector.center_px)
+    det["y_up"] = frame.y_up
+    det["sigma"] = pat.detector_sigma
+    lines = None
+    if pat.lines is not None:
+        lines = [ln.to_dict() for ln in pat.lines]
+    return {
+        "zone": list(pat.zone), "x_axis": list(pat.x_axis),
+        "tilt_deg": None if pat.tilt_deg is None else list(pat.tilt_deg),
+        "kv": pat.kv, "kv_sigma": pat.kv_sigma, "wave_number_inv_A": pat.wave_number,
+        "disk_mrad": pat.disk_mrad, "detector": det,
+        "observations": pat.observations, "source": pat.source,
+        "calibration": None if pat.calibration is None else pat.calibration.source or None,
+        "rms_px": pat.rms_px, "n_points": pat.n_points, "n_used": pat.n_used,
+        "points": [_point_dict(r, frame) for r in pat.points], "lines": lines,
+        "line_residuals": [r.to_dict() for r in pat.line_table],
+        "excluded_lines": [list(h) for h in pat.excluded],
+    }
+
+
+def fit_document(result, *, calibration_source=None, points_source=None):
+    """The ``laueline.fit/2`` document of a :class:`~laueline.fit.FitResult`.
+
+    Point coordinates, residuals and detector centres are given back in each
+    pattern's own pixel convention (its ``y_up`` flag).  The top level
+    repeats the first pattern's zone, detector, voltage and tables when the
+    fit has one pattern (the keys of version 1), so that a reference fit
+    serves directly as a calibration.  ``calibration_source`` and
+    ``points_source`` name the files of a one-pattern fit.
     """
-    from .refine import CAUTIONS, PARAMETER_UNITS
+    from .fit import CAUTIONS, PARAMETER_UNITS
+    from .fit.result import SYSTEMATIC_NOTE
 
-    flip = np.array([1.0, -1.0 if y_up else 1.0])
     st = result.strain
-    det = result.detector
-    centre = np.asarray(det.center_px) * flip
-    points = []
-    for row in result.points:
-        points.append({"x_px": row["x_px"], "y_px": row["y_px"] * flip[1],
-                       "hkl_a": row["hkl_a"], "hkl_b": row["hkl_b"],
-                       "residual_px": list(np.asarray(row["residual_px"]) * flip),
-                       "used": row["used"], "note": row["note"]})
+    patterns = [_pattern_dict(p) for p in result.patterns]
+    if calibration_source is not None:
+        patterns[0]["calibration"] = str(calibration_source)
+    if points_source is not None:
+        patterns[0]["source"] = str(points_source)
+    units = []
+    for name in result.parameters:
+        base = name.split("[")[0]
+        units.append(PARAMETER_UNITS.get(base, ""))
     doc = {
         "schema": FIT_SCHEMA,
+        "success": result.success, "message": result.message,
+        "plausible": result.plausible,
         "model": result.model,
         "unique_axis": result.unique_axis,
         "structure": result.structure,
-        "zone": list(result.zone), "x_axis": list(result.x_axis),
         "reference_cell": result.reference_cell, "cell": result.cell,
         "cell_sigma": result.cell_sigma,
-        "kv": result.kv, "kv_sigma": result.kv_sigma,
         "inner_potential": result.inner_potential,
-        "wave_number_inv_A": result.wave_number,
-        "disk_mrad": result.disk_mrad,
-        "detector": {"center_px": centre, "scale_px_per_mrad": det.scale_px_per_mrad,
-                     "rotation_deg": det.rotation_deg, "mirror": det.mirror,
-                     "y_up": bool(y_up), "sigma": result.detector_sigma},
         "strain": {"frame": "reference-cartesian",
                    "green_lagrange": st.green_lagrange,
                    "green_lagrange_sigma": st.green_lagrange_sigma,
+                   "voigt": result.strain_voigt,
                    "small": st.small, "small_sigma": st.small_sigma,
                    "principal": st.principal, "principal_sigma": st.principal_sigma,
                    "principal_directions": st.principal_directions.T,
                    "volumetric": st.volumetric, "volumetric_sigma": st.volumetric_sigma,
-                   "covariance_voigt": st.covariance_voigt},
+                   "covariance_voigt": result.strain_covariance,
+                   "covariance_voigt_statistical": result.strain_covariance_statistical,
+                   "covariance_voigt_systematic": result.strain_covariance_systematic,
+                   "systematic_note": SYSTEMATIC_NOTE,
+                   "fixed_components": result.fixed_components,
+                   "poorly_separated": [{"components": [a, b], "correlation": c,
+                                         "frame": f}
+                                        for a, b, c, f in result.poorly_separated]},
         "stress_GPa": st.stress_GPa, "stress_sigma_GPa": st.stress_sigma_GPa,
+        "stress_law": ("Hooke's law on the Green-Lagrange strain (second Piola-Kirchhoff "
+                       "stress; Cauchy stress to first order)"),
+        "constraints": result.constraints,
         "parameters": result.parameters,
         "values": result.values, "sigmas": result.sigmas,
-        "units": [PARAMETER_UNITS[n] for n in result.parameters],
+        "units": units,
         "correlation": result.correlation,
         "condition_number": result.condition_number,
-        "points": points,
+        "chi2": result.chi2, "dof": result.dof, "converged": result.success,
         "rms_px": result.rms_px, "n_points": result.n_points, "n_used": result.n_used,
-        "chi2": result.chi2, "dof": result.dof, "converged": result.converged,
-        "calibration": calibration_source, "points_file": points_source,
-        "observations": "crossings" if result.lines is None else "lines",
-        "lines": result.lines,
+        "patterns": patterns,
+        "checks": [c.to_dict() for c in result.checks],
         "warnings": result.warnings,
         "cautions": list(CAUTIONS),
     }
+    if len(patterns) == 1:
+        one = patterns[0]
+        doc.update({k: one[k] for k in ("zone", "x_axis", "kv", "kv_sigma", "disk_mrad",
+                                        "detector", "points", "lines", "observations")})
+        doc["wave_number_inv_A"] = one["wave_number_inv_A"]
+        doc["calibration"] = one["calibration"]
+        doc["points_file"] = one["source"] or None
     if st.sample_axes is not None:
         doc["strain_sample"] = {
             "axes_cartesian": st.sample_axes,
@@ -348,49 +393,79 @@ def fit_document(result, *, y_up=False, calibration_source=None, points_source=N
 _COMPONENTS = [("xx", 0, 0), ("yy", 1, 1), ("zz", 2, 2), ("yz", 1, 2), ("xz", 0, 2), ("xy", 0, 1)]
 
 
-def _tensor_rows(label, tensor, sigma, scale=1.0, unit=""):
+def _tensor_rows(label, tensor, sigma, scale=1.0, unit="", fixed=(), fixed_why="fixed"):
     out = []
     sig_values = [sigma[i, j] for _, i, j in _COMPONENTS]
     positive = [s for s in sig_values if s > 0]
     floor = min(positive) if positive else 0.0
     for (name, i, j), s in zip(_COMPONENTS, sig_values):
+        if s == 0 or "e" + name in fixed:
+            out.append(f"  {label}{name} {tensor[i, j] * scale:+12.3e}   {fixed_why}")
+            continue
         note = ""
         if floor > 0 and s > 10 * floor:
-            note = "  poorly determined from this zone axis"
+            note = "  poorly determined by these patterns"
         out.append(f"  {label}{name} {tensor[i, j] * scale:+12.3e} +- {s * scale:9.2e} "
                    f"{unit}{note}")
     return out
 
 
-def fit_text(result, *, y_up=False):
-    """Readable report of a fit: parameters, cell, strain, stress, warnings, cautions."""
-    from .refine import PARAMETER_UNITS
+def _hkl_text(hkl, hexagonal):
+    from .fit.indices import format_plane
+
+    return format_plane(hkl, hexagonal)
+
+
+def fit_text(result):
+    """Readable report of a fit: parameters, cell, strain, stress, line table, warnings."""
+    from .fit import PARAMETER_UNITS
+    from .fit.indices import format_direction
 
     out = []
-    zone = " ".join(str(v) for v in result.zone)
-    status = "" if result.converged else "   NOT CONVERGED"
-    kind = "points" if result.lines is None else "detected lines"
-    out.append(f"fit        {result.structure['name']} [{zone}], model {result.model}"
+    status = "" if result.success else "   NOT CONVERGED"
+    hexagonal = result.patterns[0].hexagonal
+    zones = "; ".join(f"[{format_direction(p.zone, hexagonal)}]" for p in result.patterns)
+    kinds = {p.observations for p in result.patterns}
+    kind = "points" if kinds == {"crossings"} else "detected lines" if kinds == {"lines"} \
+        else "observations"
+    out.append(f"fit        {result.structure['name']} {zones}, model {result.model}"
                + (f" (unique axis {result.unique_axis})" if result.unique_axis else "")
                + f": {result.n_used} of {result.n_points} {kind} used, "
                f"rms {result.rms_px:.3g} px, {result.dof} degrees of freedom{status}")
+    if not result.success:
+        out.append(f"  {result.message}")
     out.append("")
-    out.append(f"  {'parameter':10} {'value':>16} {'sigma':>11}  unit")
+    out.append(f"  {'parameter':12} {'value':>16} {'sigma':>11}  unit")
     for name, value, sigma in zip(result.parameters, result.values, result.sigmas):
-        if name == "center_y" and y_up:
-            value = -value
-        fmt = ".4e" if name.startswith("e") else ".5f"
-        out.append(f"  {name:10} {value:16{fmt}} {sigma:11.2e}  {PARAMETER_UNITS[name]}")
-    det = result.detector
-    held = [n for n, present in (("kv", "kv" in result.parameters),
-                                 ("scale", "scale" in result.parameters),
-                                 ("rotation", "rotation" in result.parameters)) if not present]
-    if held:
-        values = {"kv": f"{result.kv:.4f} kV", "scale": f"{det.scale_px_per_mrad:.5f} px/mrad",
-                  "rotation": f"{det.rotation_deg:.4f} deg"}
-        out.append("  held: " + ", ".join(f"{n} {values[n]}" for n in held))
-    out.append(f"  mirror: {'yes' if det.mirror else 'no'}; "
-               f"condition number {result.condition_number:.3g}")
+        base = name.split("[")[0]
+        if base == "center_y":
+            j = int(name[name.index("[") + 1:-1]) - 1 if "[" in name else 0
+            if result.patterns[j].pixel_frame.y_up:
+                value = -value
+        fmt = ".4e" if base.startswith("e") or base.startswith("mode") else ".5f"
+        out.append(f"  {name:12} {value:16{fmt}} {sigma:11.2e}  {PARAMETER_UNITS.get(base, '')}")
+    for p in result.patterns:
+        det = p.detector
+        tag = f"pattern {p.index + 1} [{format_direction(p.zone, hexagonal)}]: " \
+            if len(result.patterns) > 1 else ""
+        held = []
+        if p.kv_sigma is None:
+            held.append(f"kv {p.kv:.4f} kV")
+        if p.detector_sigma["scale_px_per_mrad"] is None:
+            held.append(f"scale {det.scale_px_per_mrad:.5f} px/mrad")
+        if p.detector_sigma["rotation_deg"] is None:
+            held.append(f"rotation {det.rotation_deg:.4f} deg")
+        if any(det.distortion) and p.detector_sigma["distortion"] is None:
+            held.append("distortion " + ", ".join(f"{v:+.2e}" for v in det.distortion))
+        line = f"  {tag}mirror {'yes' if det.mirror else 'no'}"
+        if held:
+            line += "; held: " + ", ".join(held)
+        if p.tilt_deg is not None:
+            line += f"; tilts {p.tilt_deg[0]:g}, {p.tilt_deg[1]:g} deg"
+        if len(result.patterns) > 1:
+            line += f"; rms {p.rms_px:.3g} px, {p.n_used} of {p.n_points} used"
+        out.append(line)
+    out.append(f"  condition number {result.condition_number:.3g}")
     out.append("")
     names = ["a", "b", "c", "alpha", "beta", "gamma"]
     out.append("  cell       " + "  ".join(
@@ -399,65 +474,110 @@ def fit_text(result, *, y_up=False):
     out.append("  reference  " + "  ".join(f"{n} {v:.6f}"
                                            for n, v in zip(names, result.reference_cell)))
     st = result.strain
+    if result.constraints:
+        out.append("")
+        out.append("  constraints (exact)")
+        out.extend(f"    {c}" for c in result.constraints)
     out.append("")
     if result.model == "fixed":
         out.append("  strain     held at zero (model fixed: the reference cell)")
-        return _fit_tail(out, result, y_up)
+        return _fit_tail(out, result)
+    why = "fixed by the constraints" if result.constraints else "fixed by the model"
     out.append("  strain (Green-Lagrange, reference Cartesian frame)")
-    out += _tensor_rows("e", st.green_lagrange, st.green_lagrange_sigma)
+    out += _tensor_rows("e", st.green_lagrange, st.green_lagrange_sigma,
+                        fixed=result.fixed_components.get("crystal", ()), fixed_why=why)
     out.append("  principal  " + "  ".join(f"{v:+.3e} +- {s:.1e}"
                                            for v, s in zip(st.principal, st.principal_sigma)))
     out.append(f"  volume change {st.volumetric:+.3e} +- {st.volumetric_sigma:.1e}")
+    free = [i for i in range(6) if result.strain_covariance[i, i] > 0]
+    if len(free) > 1:
+        s = np.sqrt(np.diag(result.strain_covariance))
+        corr = result.strain_covariance / np.outer(np.where(s > 0, s, 1), np.where(s > 0, s, 1))
+        comp = ("exx", "eyy", "ezz", "eyz", "exz", "exy")
+        out.append("  correlations of the strain (crystal frame)")
+        out.append("        " + " ".join(f"{comp[i]:>7}" for i in free))
+        for i in free:
+            out.append(f"    {comp[i]} " + " ".join(f"{corr[i, j]:+7.3f}" for j in free))
     if st.sample_axes is not None:
         out.append("")
         out.append("  strain in the sample frame (x', y', z')")
-        out += _tensor_rows("e", st.sample_green_lagrange, st.sample_green_lagrange_sigma)
+        out += _tensor_rows("e", st.sample_green_lagrange, st.sample_green_lagrange_sigma,
+                            fixed=result.fixed_components.get("sample", ()), fixed_why=why)
     if st.stress_GPa is not None:
         out.append("")
-        out.append("  stress (Hooke's law, reference Cartesian frame)")
-        out += _tensor_rows("s", st.stress_GPa, st.stress_sigma_GPa, 1.0, "GPa")
+        out.append("  stress (Hooke's law on the Green-Lagrange strain, reference Cartesian "
+                   "frame)")
+        out += _tensor_rows("s", st.stress_GPa, st.stress_sigma_GPa, 1.0, "GPa", fixed_why=why)
         if st.sample_stress_GPa is not None:
             out.append("  stress in the sample frame")
             out += _tensor_rows("s", st.sample_stress_GPa, st.sample_stress_sigma_GPa, 1.0,
-                                "GPa")
-    return _fit_tail(out, result, y_up)
+                                "GPa", fixed_why=why)
+    if result.poorly_separated:
+        out.append("")
+        out.append("  not separated by these data: " + "; ".join(
+            f"{a} and {b} ({c:+.3f}, {f} frame)" for a, b, c, f in result.poorly_separated))
+    return _fit_tail(out, result)
 
 
-def _fit_tail(out, result, y_up):
-    from .refine import CAUTIONS
+def _fit_tail(out, result):
+    from .fit import CAUTIONS
 
-    if result.assigned and result.lines is None:
+    for p in result.patterns:
+        frame = p.pixel_frame
+        hexagonal = p.hexagonal
+        tag = f" of pattern {p.index + 1}" if len(result.patterns) > 1 else ""
+        if p.line_table:
+            out.append("")
+            out.append(f"  residuals by line{tag} (px; normalised by the observations' sigma)")
+            out.append(f"    {'line':>14} {'n':>4} {'mean':>8} {'rms':>8} {'norm.':>7}")
+            for r in p.line_table:
+                out.append(f"    {_hkl_text(r.hkl, hexagonal):>14} {r.n:4d} {r.mean_px:+8.3f} "
+                           f"{r.rms_px:8.3f} {r.normalised_rms:7.2f}")
+        if p.excluded:
+            out.append("    excluded lines: " + ", ".join(
+                f"({_hkl_text(h, hexagonal)})" for h in p.excluded))
+        if p.assigned and p.lines is None:
+            out.append("")
+            out.append(f"  assignments{tag} (points without labels, matched to predicted "
+                       "crossings)")
+            out.append("       #      x px      y px         line a         line b   residual px")
+            for i, row in enumerate(p.points):
+                if not row.used:
+                    continue
+                x, y = frame.to_user([row.x_px, row.y_px])
+                dx, dy = row.residual_px
+                out.append(f"    {i + 1:4d} {x:9.2f} {y:9.2f}   "
+                           f"{_hkl_text(row.hkl_a, hexagonal):>12}   "
+                           f"{_hkl_text(row.hkl_b, hexagonal):>12}"
+                           f"   {math.hypot(dx, dy):11.3f}"
+                           + (f"   {row.note}" if row.note else ""))
+        if p.lines is not None:
+            unused = [ln for ln in p.lines if not ln.used]
+            out.append("")
+            out.append(f"  lines fitted{tag}: {sum(ln.used for ln in p.lines)} of "
+                       f"{len(p.lines)} detected")
+            for ln in unused:
+                out.append(f"    line #{ln.index} left out: {ln.note or 'not assigned'}")
+        left = [i for i, row in enumerate(p.points) if not row.used]
+        if left:
+            out.append("")
+            out.append(f"  points left out{tag}")
+            for i in left:
+                row = p.points[i]
+                x, y = frame.to_user([row.x_px, row.y_px])
+                out.append(f"    #{i + 1} ({x:.1f}, {y:.1f}) px: {row.note}")
+    failed = [c for c in result.checks if not c.passed]
+    if failed:
         out.append("")
-        out.append("  assignments (points without labels, matched to predicted crossings)")
-        out.append("       #      x px      y px         line a         line b   residual px")
-        for i, row in enumerate(result.points):
-            if not row["used"]:
-                continue
-            y = -row["y_px"] if y_up else row["y_px"]
-            dx, dy = row["residual_px"]
-            out.append(f"    {i + 1:4d} {row['x_px']:9.2f} {y:9.2f}   "
-                       f"{format_hkl(row['hkl_a']):>12}   {format_hkl(row['hkl_b']):>12}"
-                       f"   {math.hypot(dx, dy):11.3f}"
-                       + (f"   {row['note']}" if row["note"] else ""))
-    if result.lines is not None:
-        unused = [ln for ln in result.lines if not ln["used"]]
-        out.append("")
-        out.append(f"  lines fitted: {sum(ln['used'] for ln in result.lines)} of "
-                   f"{len(result.lines)} detected")
-        for ln in unused:
-            out.append(f"    line #{ln['index']} left out: {ln['note'] or 'not assigned'}")
-    left = [i for i, row in enumerate(result.points) if not row["used"]]
-    if left:
-        out.append("")
-        out.append("  points left out")
-        for i in left:
-            row = result.points[i]
-            y = -row["y_px"] if y_up else row["y_px"]
-            out.append(f"    #{i + 1} ({row['x_px']:.1f}, {y:.1f}) px: {row['note']}")
+        out.extend(f"check failed: {c.name}" + (f" ({c.value:.3g}, limit {c.limit:.3g})"
+                                                 if c.value is not None else "")
+                   for c in failed)
     if result.warnings:
         out.append("")
         out.extend(f"warning: {w}" for w in result.warnings)
     out.append("")
+    out.append("note: the strain covariance is statistical only: dynamical line shifts and "
+               "per-line errors are not yet in it")
     out.extend(f"caution: {c}" for c in CAUTIONS)
     return "\n".join(out)
 

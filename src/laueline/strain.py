@@ -13,8 +13,11 @@ Conventions (DESIGN.md):
   free too, equals e exactly for a basis (I + e) A0 with symmetric e, and
   E = eps + eps^2 / 2.
 * Stress follows Hooke's law in Voigt form, sigma = C (exx, eyy, ezz,
-  2 eyz, 2 exz, 2 exy), with C (GPa) in the same Cartesian frame and the
-  small-strain tensor as input (linear elasticity).
+  2 eyz, 2 exz, 2 exy), with C (GPa) in the same Cartesian frame.  Fit
+  reports apply it to the Green-Lagrange tensor (the St Venant-Kirchhoff
+  law, whose stress is the second Piola-Kirchhoff stress; it equals the
+  Cauchy stress of linear elasticity to first order in the strain), so
+  that a constraint on the stress holds exactly in the report.
 
 References
 ----------
@@ -30,15 +33,32 @@ import numpy as np
 from .errors import InputError
 
 __all__ = [
-    "deformation_gradient", "green_lagrange", "small_strain", "voigt", "from_voigt",
+    "deformation_gradient", "basis_from_green_lagrange", "green_lagrange", "small_strain",
+    "voigt", "from_voigt",
     "principal", "volumetric", "sample_axes", "rotate_tensor", "cubic_stiffness",
     "read_stiffness", "stress", "propagate", "StrainReport", "strain_report",
+    "voigt_rotation", "green_lagrange_report",
 ]
 
 
 def deformation_gradient(reference_basis, basis):
     """F = A A0^-1, mapping reference vectors onto fitted ones."""
     return np.asarray(basis, float) @ np.linalg.inv(np.asarray(reference_basis, float))
+
+
+def basis_from_green_lagrange(reference_basis, green_lagrange_strain):
+    """The strained basis sqrt(I + 2 E) A0: the symmetric stretch with Green-Lagrange E.
+
+    The one formula of a strained basis: for symmetric e, (I + e) A0 is the
+    same basis with E = e + e^2 / 2.  ``green_lagrange_strain`` may be a
+    stack (..., 3, 3); the result then has the same leading shape.
+    """
+    E = np.asarray(green_lagrange_strain, float)
+    w, v = np.linalg.eigh(np.eye(3) + 2.0 * E)
+    if np.any(w <= 0):
+        raise InputError("the strain makes the basis singular or inverts it")
+    stretch = (v * np.sqrt(w)[..., None, :]) @ np.swapaxes(v, -1, -2)
+    return stretch @ np.asarray(reference_basis, float)
 
 
 def green_lagrange(reference_basis, basis):
@@ -149,7 +169,7 @@ def read_stiffness(path):
 
 
 def stress(strain, stiffness):
-    """Stress tensor (GPa) from a small-strain tensor by Hooke's law (Voigt form)."""
+    """Stress tensor (GPa) from a strain tensor by Hooke's law (Voigt form)."""
     e = voigt(strain) * np.array([1, 1, 1, 2, 2, 2])
     return from_voigt(np.asarray(stiffness) @ e)
 
@@ -247,9 +267,9 @@ def strain_report(reference_basis, basis_of, x, covariance, steps, *, stiffness=
         volumetric_sigma=float(np.sqrt(max(vol_var[0, 0], 0))), covariance_voigt=cov_gl)
     if stiffness is not None:
         def sig(p):
-            return voigt(stress(small_strain(A0, basis_of(p)), stiffness))
+            return voigt(stress(green_lagrange(A0, basis_of(p)), stiffness))
 
-        out.stress_GPa = stress(out.small, stiffness)
+        out.stress_GPa = stress(E, stiffness)
         out.stress_sigma_GPa = _sigma_tensor(propagate(sig, x, covariance, steps))
     if axes is not None:
         out.sample_axes = axes
@@ -260,7 +280,77 @@ def strain_report(reference_basis, basis_of, x, covariance, steps, *, stiffness=
         if stiffness is not None:
             out.sample_stress_GPa = rotate_tensor(out.stress_GPa, axes)
             out.sample_stress_sigma_GPa = _sigma_tensor(propagate(
-                lambda p: voigt(rotate_tensor(stress(small_strain(A0, basis_of(p)),
+                lambda p: voigt(rotate_tensor(stress(green_lagrange(A0, basis_of(p)),
                                                      stiffness), axes)),
                 x, covariance, steps))
+    return out
+
+
+def voigt_rotation(axes):
+    """6x6 matrix T with voigt(Q E Q^T) = T @ voigt(E) for the frame rows Q = ``axes``."""
+    Q = np.asarray(axes, float)
+    pairs = ((0, 0), (1, 1), (2, 2), (1, 2), (0, 2), (0, 1))
+    T = np.empty((6, 6))
+    for r, (a, b) in enumerate(pairs):
+        for k, (i, j) in enumerate(pairs):
+            T[r, k] = Q[a, i] * Q[b, j] + (Q[a, j] * Q[b, i] if i != j else 0.0)
+    return T
+
+
+_ENGINEERING = np.array([1.0, 1.0, 1.0, 2.0, 2.0, 2.0])
+
+
+def green_lagrange_report(reference_basis, strain_voigt, covariance_voigt, *, stiffness=None,
+                          axes=None):
+    """Strain report of a Green-Lagrange strain given with its Voigt covariance.
+
+    Everything linear in E (the tensor in the sample frame, the stress, the
+    stress in the sample frame) is propagated exactly; the small strain,
+    principal values and volume change by central differences.
+
+    Parameters
+    ----------
+    reference_basis : ndarray (3, 3)
+    strain_voigt : ndarray (6,)
+        exx eyy ezz eyz exz exy of E, reference Cartesian frame.
+    covariance_voigt : ndarray (6, 6)
+    stiffness : ndarray (6, 6), optional
+        Voigt stiffness in GPa, reference Cartesian frame.
+    axes : ndarray (3, 3), optional
+        Rows of a sample frame.
+    """
+    A0 = np.asarray(reference_basis, float)
+    v = np.asarray(strain_voigt, float)
+    cov = np.asarray(covariance_voigt, float)
+
+    def basis_of(p):
+        return basis_from_green_lagrange(A0, from_voigt(p))
+
+    def sigma_of(linear):
+        return _sigma_tensor(linear @ cov @ linear.T)
+
+    E = from_voigt(v)
+    steps = np.maximum(np.sqrt(np.maximum(np.diag(cov), 0)), 1e-9) * 1e-3
+    cov_eps = propagate(lambda p: voigt(small_strain(A0, basis_of(p))), v, cov, steps)
+    values, directions = principal(E)
+    cov_pr = propagate(lambda p: principal(from_voigt(p))[0], v, cov, steps)
+    vol_var = propagate(lambda p: [volumetric(A0, basis_of(p))], v, cov, steps)
+    out = StrainReport(
+        green_lagrange=E, green_lagrange_sigma=_sigma_tensor(cov),
+        small=small_strain(A0, basis_of(v)), small_sigma=_sigma_tensor(cov_eps),
+        principal=values, principal_sigma=np.sqrt(np.maximum(np.diag(cov_pr), 0)),
+        principal_directions=directions, volumetric=volumetric(A0, basis_of(v)),
+        volumetric_sigma=float(np.sqrt(max(vol_var[0, 0], 0))), covariance_voigt=cov)
+    hooke = None if stiffness is None else np.asarray(stiffness, float) @ np.diag(_ENGINEERING)
+    if hooke is not None:
+        out.stress_GPa = from_voigt(hooke @ v)
+        out.stress_sigma_GPa = sigma_of(hooke)
+    if axes is not None:
+        T = voigt_rotation(axes)
+        out.sample_axes = np.asarray(axes, float)
+        out.sample_green_lagrange = from_voigt(T @ v)
+        out.sample_green_lagrange_sigma = sigma_of(T)
+        if hooke is not None:
+            out.sample_stress_GPa = from_voigt(T @ hooke @ v)
+            out.sample_stress_sigma_GPa = sigma_of(T @ hooke)
     return out

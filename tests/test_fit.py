@@ -1,4 +1,5 @@
-"""Refinement: round trips, uncertainties, calibration, a published alloy case."""
+"""The fit engine on one pattern: round trips, uncertainties, calibration, a published
+alloy case, outliers and bad input."""
 
 import math
 
@@ -7,10 +8,13 @@ import pytest
 from conftest import DETECTOR, synthetic_points
 
 from laueline.errors import InputError
-from laueline.refine import refine
-from laueline.strain import (cubic_stiffness, green_lagrange, small_strain, stress, voigt)
+from laueline.fit import refine
+from laueline.strain import (cubic_stiffness, from_voigt, green_lagrange, small_strain, stress,
+                             voigt)
 
 E_TRUE = np.array([2.0e-3, -1.5e-3, 1.0e-3, 5.0e-4, -7.0e-4, 3.0e-4])
+# the fit reports the Green-Lagrange tensor of the basis (I + e) A: E = e + e^2 / 2
+GL_TRUE = voigt(from_voigt(E_TRUE) + from_voigt(E_TRUE) @ from_voigt(E_TRUE) / 2)
 ZONE = (2, 3, 0)
 CAL = (200.0, DETECTOR)
 
@@ -20,7 +24,7 @@ def test_round_trip_labelled(si):
     r = refine(si, ZONE, pts, x_axis=(0, 0, 4), center_px=(250, 250), scale_px_per_mrad=41,
                rotation_deg=15)
     # noise-free: the issue asks for 1e-6; the solution is exact to rounding
-    np.testing.assert_allclose(r.values[:6], E_TRUE, atol=1e-6)
+    np.testing.assert_allclose(r.values[:6], GL_TRUE, atol=1e-9)
     assert r.detector.center_px == pytest.approx(DETECTOR.center_px, abs=1e-6)
     assert r.detector.scale_px_per_mrad == pytest.approx(40.0, rel=1e-8)
     assert r.detector.rotation_deg == pytest.approx(17.0, abs=1e-6)
@@ -34,11 +38,11 @@ def test_round_trip_unlabelled(si):
     pts = synthetic_points(si, ZONE, strain=E_TRUE, labelled=False)
     r = refine(si, ZONE, pts, x_axis=(0, 0, 4), scale_px_per_mrad=40.0, hold=["scale"],
                mirror=False)
-    np.testing.assert_allclose(r.values[:6], E_TRUE, atol=1e-6)
+    np.testing.assert_allclose(r.values[:6], GL_TRUE, atol=1e-9)
     assert r.n_used == 40 and r.detector.rotation_deg == pytest.approx(17.0, abs=1e-6)
     assert any("orientation found by search" in w for w in r.warnings)
     # every assignment is reported with its two reflections
-    assert all(np.any(p["hkl_a"]) and np.any(p["hkl_b"]) for p in r.points)
+    assert all(np.any(p.hkl_a) and np.any(p.hkl_b) for p in r.points)
 
 
 def test_unlabelled_symmetry_ambiguity_is_reported(si):
@@ -47,9 +51,9 @@ def test_unlabelled_symmetry_ambiguity_is_reported(si):
     pts = synthetic_points(si, ZONE, strain=E_TRUE, labelled=False)
     r = refine(si, ZONE, pts, x_axis=(0, 0, 4), scale_px_per_mrad=40.0, hold=["scale"])
     assert any("equally well" in w for w in r.warnings)
-    mirrored = E_TRUE * np.array([1, 1, 1, -1, -1, 1])
-    assert np.allclose(r.values[:6], E_TRUE, atol=1e-6) or \
-        np.allclose(r.values[:6], mirrored, atol=1e-6)
+    mirrored = GL_TRUE * np.array([1, 1, 1, -1, -1, 1])
+    assert np.allclose(r.values[:6], GL_TRUE, atol=1e-9) or \
+        np.allclose(r.values[:6], mirrored, atol=1e-9)
 
 
 def test_voltage_calibration(si):
@@ -61,22 +65,22 @@ def test_voltage_calibration(si):
 
 
 def test_uncertainties_match_monte_carlo_scatter(si):
-    # 200 noisy repeats (0.1 px): the reported sigma must match the observed
-    # scatter within 20 % (the scatter of a standard deviation from 200
-    # samples is about 5 %, so 20 % is four of those).
+    # 100 noisy repeats (0.1 px): the reported sigma must match the observed
+    # scatter within 28 % (the scatter of a standard deviation from 100
+    # samples is about 7 %, so 28 % is four of those).
     rng = np.random.default_rng(7)
     estimates, reported = [], []
-    for _ in range(200):
+    for _ in range(100):
         pts = synthetic_points(si, ZONE, strain=E_TRUE, noise_px=0.1, rng=rng)
         r = refine(si, ZONE, pts, x_axis=(0, 0, 4), calibration=CAL, mirror=False)
         estimates.append(r.values)
         reported.append(r.sigmas)
     observed = np.std(estimates, axis=0, ddof=1)
     predicted = np.sqrt(np.mean(np.square(reported), axis=0))
-    np.testing.assert_allclose(predicted / observed, 1.0, atol=0.2)
+    np.testing.assert_allclose(predicted / observed, 1.0, atol=0.28)
     # and the estimates are unbiased within their scatter (3 standard errors)
-    bias = np.mean(estimates, axis=0)[:6] - E_TRUE
-    assert np.all(np.abs(bias) < 3 * observed[:6] / math.sqrt(200))
+    bias = np.mean(estimates, axis=0)[:6] - GL_TRUE
+    assert np.all(np.abs(bias) < 3 * observed[:6] / math.sqrt(100))
 
 
 def test_pseudomorphic_sige_on_si(si):
@@ -160,9 +164,9 @@ def test_robust_lists_outlier(si):
                            rng=np.random.default_rng(5))
     pts.xy_px[3] += [6.0, -4.0]
     r = refine(si, ZONE, pts, x_axis=(0, 0, 4), calibration=CAL, mirror=False, robust=True)
-    assert not r.points[3]["used"] and "outlier" in r.points[3]["note"]
+    assert not r.points[3].used and "outlier" in r.points[3].note
     assert r.n_used == 39
-    assert np.all(np.abs(r.values[:6] - E_TRUE) < 4 * r.sigmas[:6])
+    assert np.all(np.abs(r.values[:6] - GL_TRUE) < 4 * r.sigmas[:6])
 
 
 def test_sigma_px_chi_square_check(si):
@@ -216,8 +220,64 @@ def test_unlabelled_noisy_matches_labelled(si):
     assert np.all(np.abs(b.values - a.values) < 0.2 * a.sigmas)
     assert b.assigned and not a.assigned
     differ = [i for i, (pa, pb) in enumerate(zip(a.points, b.points))
-              if {tuple(pa["hkl_a"]), tuple(pa["hkl_b"])} !=
-              {tuple(pb["hkl_a"]), tuple(pb["hkl_b"])}]
-    assert all("ambiguous" in b.points[i]["note"] for i in differ)
+              if {tuple(pa.hkl_a), tuple(pa.hkl_b)} != {tuple(pb.hkl_a), tuple(pb.hkl_b)}]
+    assert all("ambiguous" in b.points[i].note for i in differ)
     if differ:
         assert any("ambiguous" in w for w in b.warnings)
+
+
+def test_parameter_covariance_is_the_generalised_least_squares_formula():
+    # Aitken (1935): for residual covariance S, cov = (J^T S^-1 J)^-1, here by
+    # plain matrix inversion; correlated S as a per-line offset shared by
+    # several values would give (the seam for a per-line error model)
+    from laueline.fit import parameter_covariance
+
+    rng = np.random.default_rng(1)
+    J = rng.normal(size=(12, 3)) * [1.0, 1e3, 1e-3]   # columns of very different units
+    shared = np.kron(np.eye(4), np.ones((3, 3))) * 0.5
+    S = np.eye(12) * 0.2 + shared
+    expected = np.linalg.inv(J.T @ np.linalg.inv(S) @ J)
+    np.testing.assert_allclose(parameter_covariance(J, S), expected, rtol=1e-10)
+    # independent values may be given as variances
+    v = rng.uniform(0.5, 2.0, 12)
+    np.testing.assert_allclose(parameter_covariance(J, v),
+                               np.linalg.inv(J.T @ np.diag(1 / v) @ J), rtol=1e-10)
+
+
+def test_distortion_freed_on_a_reference_and_held_after(si):
+    # an elliptical projector distortion (1 % and -0.5 %) on both records;
+    # crossings by the independent Ewald construction
+    from conftest import ewald_points, green_lagrange_of
+
+    det = DETECTOR.replace(distortion=(0.01, -0.005))
+    ref = ewald_points(si, ZONE, (0, 0, 4), [0] * 6, det)
+    cal = refine(si, ZONE, ref, x_axis=(0, 0, 4), model="fixed", free=["kv", "distortion"])
+    # noise-free: recovered to the solver's precision
+    assert cal.detector.distortion == pytest.approx((0.01, -0.005), abs=1e-7)
+    assert cal.kv == pytest.approx(200.0, abs=1e-4)
+    strained = ewald_points(si, ZONE, (0, 0, 4), E_TRUE, det)
+    fit = refine(si, ZONE, strained, x_axis=(0, 0, 4), calibration=cal.calibration())
+    assert not any(n in fit.parameters for n in ("e1", "e2", "scale", "kv"))
+    assert fit.detector.distortion == cal.detector.distortion
+    np.testing.assert_allclose(fit.strain_voigt, green_lagrange_of(E_TRUE), atol=1e-7)
+
+
+def test_line_table_and_excluded_lines(si):
+    from conftest import ewald_points
+
+    pts = ewald_points(si, ZONE, (0, 0, 4), E_TRUE, DETECTOR, noise_px=0.1,
+                       rng=np.random.default_rng(6))
+    fit = refine(si, ZONE, pts, x_axis=(0, 0, 4), calibration=CAL, mirror=False)
+    table = {tuple(r.hkl): r for r in fit.patterns[0].line_table}
+    # each line counts the crossings it takes part in (counted here from the labels)
+    labels = [tuple(h) for h in np.concatenate([pts.hkl_a, pts.hkl_b])]
+    assert {h: labels.count(h) for h in set(labels)} == {h: r.n for h, r in table.items()}
+    # residuals of 0.1 px noise, normalised by the estimated scatter: of order 1
+    assert all(r.rms_px < 0.5 and r.normalised_rms < 3 for r in table.values())
+    busiest = max(table, key=lambda h: table[h].n)
+    out = refine(si, ZONE, pts, x_axis=(0, 0, 4), calibration=CAL, mirror=False,
+                 exclude_lines=[busiest])
+    p = out.patterns[0]
+    assert busiest not in {tuple(r.hkl) for r in p.line_table}
+    assert p.n_used == len(pts) - table[busiest].n and p.excluded == (busiest,)
+    assert all("excluded" in r.note for r in p.points if not r.used)

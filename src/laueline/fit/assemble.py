@@ -1,0 +1,354 @@
+"""From a finished fit to its result: statistics, strain, checks and per-pattern tables."""
+
+from __future__ import annotations
+
+import math
+
+import numpy as np
+
+from ..crystal import cell_from_basis
+from ..errors import InputError
+from ..strain import green_lagrange, green_lagrange_report, propagate, voigt, voigt_rotation
+from .constraints import STRAIN_COMPONENTS
+from .covariance import covariance_from_svd, scaled_svd
+from .observations import CrossingData, Crossings
+from .result import Check, FitResult, LineRecord, LineResidual, PatternResult, PointRecord
+
+__all__ = ["assemble_result"]
+
+
+def _snap(values, sigmas, floor):
+    """Components with no variance are fixed: show them exactly, with sigma 0."""
+    values, sigmas = np.array(values, float), np.array(sigmas, float)
+    fixed = sigmas <= floor
+    values[fixed] = np.round(values[fixed], 12) + 0.0
+    sigmas[fixed] = 0.0
+    return values, sigmas, fixed
+
+
+def _snap_tensor(tensor, sigma, floor):
+    v, s, fixed = _snap(voigt(tensor), voigt(sigma), floor)
+    from ..strain import from_voigt
+
+    return from_voigt(v), from_voigt(s), fixed
+
+
+def assemble_result(problem, crystal, x, converged, message, warnings, *, stiffness,
+                    sample_axes, exclude, hexagonal, unique_axis, inner_potential, tilts):
+    """The FitResult of parameters x (refined internal units) of a prepared problem."""
+    from scipy.stats import chi2 as chi2_dist
+
+    pm = problem.parameters
+    p = len(pm.free)
+    names = pm.names
+    units = pm.units
+    r_raw, J_raw = problem.raw(x, with_jacobian=True)
+    r_w = problem.whiten(r_raw)
+    n_obs = r_w.size
+    dof = n_obs - p
+    chi2 = float(r_w @ r_w)
+    sigma_stated = all(o.sigma_stated for o in problem._obs)
+    inflate = any(o.inflate for o in problem._obs)
+    factor = 1.0
+    if not sigma_stated:
+        factor = chi2 / dof if dof > 0 else float("nan")
+    elif inflate and dof > 0 and chi2 > dof:
+        factor = chi2 / dof
+    condition = 1.0
+    if p:
+        Jw = problem.whiten(J_raw)
+        scale = np.linalg.norm(Jw, axis=0)
+        if np.any(scale == 0):
+            dead = [names[j] for j in np.flatnonzero(scale == 0)]
+            raise InputError(f"degenerate fit: the data do not depend on {', '.join(dead)}; "
+                             "hold it")
+        scale, sv, vt = scaled_svd(Jw)
+        condition = float(sv[0] / sv[-1]) if sv[-1] > 0 else float("inf")
+        if not np.isfinite(condition) or condition > 1e10:
+            worst = [names[j] for j in np.argsort(-np.abs(vt[-1]))[:2]]
+            raise InputError(f"degenerate fit: {' and '.join(worst)} cannot be separated by "
+                             "these observations; hold one of them or measure more")
+        # parameter_covariance(J_raw, residual covariance), from the decomposition above
+        cov_int = covariance_from_svd(scale, sv, vt) * factor
+        cov = cov_int * np.outer(units, units)
+    else:
+        cov = np.zeros((0, 0))
+    sig = np.sqrt(np.maximum(np.diag(cov), 0))
+    with np.errstate(invalid="ignore", divide="ignore"):
+        corr = cov / np.outer(sig, sig) if p else cov
+    full = pm.full(x)
+    L = pm.matrix
+    values = np.array([_value_of(f, full, x[i]) for i, f in enumerate(pm.free)])
+
+    # -- strain ----------------------------------------------------------------------
+    basis = pm.bases(full)[0]
+    cov_full = L @ cov @ L.T if p else np.zeros((pm.size, pm.size))
+    if pm.cell_slots is None:
+        e_voigt = np.array(full[:6])
+        cov_e = cov_full[:6, :6]
+    else:
+        cols = pm.crystal_columns()
+
+        def gl_of(xc):
+            xx = np.array(x, float)
+            xx[cols] = xc
+            return voigt(green_lagrange(crystal.basis, pm.bases(pm.full(xx))[0]))
+
+        e_voigt = gl_of(x[cols])
+        cov_xc = cov[np.ix_(cols, cols)] / np.outer(units[cols], units[cols])
+        cov_e = propagate(gl_of, x[cols], cov_xc, np.full(len(cols), 1e-4)) if cols else \
+            np.zeros((6, 6))
+    # a component with a spread a million times below the largest is fixed by the model
+    floor = 1e-7 * max(float(np.sqrt(np.max(np.diag(cov_e)))) if cov_e.size else 0.0, 1e-300)
+    fixed_crystal = np.sqrt(np.maximum(np.diag(cov_e), 0)) <= floor
+    e_voigt = np.where(fixed_crystal, np.round(e_voigt, 12) + 0.0, e_voigt)
+    cov_e = np.where(fixed_crystal[:, None] | fixed_crystal[None, :], 0.0, cov_e)
+    strain = green_lagrange_report(crystal.basis, e_voigt, cov_e, stiffness=stiffness,
+                                   axes=sample_axes)
+    fixed = {"crystal": [n for n, f in zip(STRAIN_COMPONENTS, fixed_crystal) if f]}
+    strain.green_lagrange, strain.green_lagrange_sigma, _ = _snap_tensor(
+        strain.green_lagrange, strain.green_lagrange_sigma, floor)
+    if strain.sample_green_lagrange is not None:
+        strain.sample_green_lagrange, strain.sample_green_lagrange_sigma, fs = _snap_tensor(
+            strain.sample_green_lagrange, strain.sample_green_lagrange_sigma, floor)
+        fixed["sample"] = [n for n, f in zip(STRAIN_COMPONENTS, fs) if f]
+    if strain.stress_GPa is not None:
+        s_floor = floor * float(np.max(np.abs(stiffness)))
+        strain.stress_GPa, strain.stress_sigma_GPa, _ = _snap_tensor(
+            strain.stress_GPa, strain.stress_sigma_GPa, s_floor)
+        if strain.sample_stress_GPa is not None:
+            strain.sample_stress_GPa, strain.sample_stress_sigma_GPa, _ = _snap_tensor(
+                strain.sample_stress_GPa, strain.sample_stress_sigma_GPa, s_floor)
+
+    # -- cell -----------------------------------------------------------------------
+    cell = cell_from_basis(basis)
+    if np.any(cov_e):
+        from ..strain import basis_from_green_lagrange, from_voigt
+
+        cov_cell = propagate(lambda v: cell_from_basis(basis_from_green_lagrange(
+            crystal.basis, from_voigt(v))), e_voigt, cov_e,
+            np.maximum(np.sqrt(np.diag(cov_e)), 1e-9) * 1e-3)
+        cell_sigma = np.sqrt(np.maximum(np.diag(cov_cell), 0))
+    else:
+        cell_sigma = np.zeros(6)
+
+    # -- warnings on the statistics ---------------------------------------------------
+    if dof < 5:
+        warnings.append(f"only {dof} degrees of freedom: uncertainties are themselves "
+                        "uncertain")
+    for i in range(p):
+        for j in range(i + 1, p):
+            if abs(corr[i, j]) > 0.95 and not (names[i] in STRAIN_COMPONENTS and
+                                               names[j] in STRAIN_COMPONENTS):
+                warnings.append(f"{names[i]} and {names[j]} are correlated "
+                                f"({corr[i, j]:+.3f}): they are poorly separated")
+    poorly = _poorly_separated(cov_e, "crystal")
+    if sample_axes is not None:
+        T = voigt_rotation(sample_axes)
+        poorly += _poorly_separated(T @ cov_e @ T.T, "sample")
+    for a, b, c, frame in poorly:
+        warnings.append(f"{a} and {b} are correlated ({c:+.3f}, {frame} frame): these "
+                        "observations do not separate them well")
+    chi2_out = None
+    checks = [Check("converged", bool(converged), None, None)]
+    if sigma_stated and dof > 0:
+        chi2_out = chi2
+        p_value = float(chi2_dist.sf(chi2, dof))
+        if not inflate:  # detected lines scale their covariance up by design
+            checks.append(Check("chi_square_p_value", p_value >= 0.01, p_value, 0.01))
+        if p_value < 0.01 and not inflate:
+            warnings.append(f"chi-square {chi2:.1f} for {dof} degrees of freedom "
+                            f"(p = {p_value:.1e}): the scatter exceeds the stated sigmas, so "
+                            f"the uncertainties are underestimated by about "
+                            f"{math.sqrt(chi2 / dof):.2f}x")
+        elif chi2_dist.cdf(chi2, dof) < 0.01:
+            warnings.append(f"chi-square {chi2:.1f} for {dof} degrees of freedom is "
+                            "implausibly small: the stated sigmas may be overstated")
+    norm_res = np.abs(r_w) / math.sqrt(factor if np.isfinite(factor) and factor > 0 else 1.0)
+    if norm_res.size:
+        from scipy.stats import norm
+
+        # the largest of n standard normal values exceeds this with probability 0.1 %
+        limit = float(norm.isf(0.0005 / norm_res.size))
+        checks.append(Check("largest_normalised_residual", float(norm_res.max()) <= limit,
+                            float(norm_res.max()), limit))
+    rivals = [d.rivals for d in problem.data]
+    checks.append(Check("orientation_unique", not any(rivals), None, None))
+    cals = [s.calibration for s in problem.specs if s.calibration is not None]
+    if cals:
+        checks.append(Check("calibration_converged", all(c.converged for c in cals), None,
+                            None))
+    if pm.model != "fixed" and any("scale" in nm for nm in names) and \
+            not any(nm.startswith("kv") for nm in names) and len(problem.specs) == 1:
+        warnings.append("the camera scale is refined together with the crystal: scale and "
+                        "in-plane dilatation are nearly degenerate in one pattern; calibrate "
+                        "the scale on a reference (a calibration) for trustworthy strain")
+    constraints = list(pm.constraints.descriptions) if pm.constraints is not None else []
+    if tilts:
+        constraints.append("relative orientation of the patterns from the holder tilts "
+                           "(one camera rotation)")
+
+    patterns = [_pattern_result(problem, j, x, full, cov, factor, exclude, hexagonal)
+                for j in range(len(problem.specs))]
+    n_left = sum(p_.n_points - p_.n_used for p_ in patterns)
+    if n_left:
+        warnings.append(f"{n_left} observation(s) left out of the fit (see the tables)")
+    if not message:
+        message = (f"converged: {sum(p_.n_used for p_ in patterns)} observations in "
+                   f"{len(patterns)} pattern(s), {dof} degrees of freedom")
+    return FitResult(
+        success=bool(converged), message=message, model=pm.model, parameters=names,
+        values=values, sigmas=sig, covariance=cov, correlation=corr,
+        condition_number=condition, strain=strain, strain_voigt=voigt(strain.green_lagrange),
+        strain_covariance=cov_e, strain_covariance_statistical=cov_e,
+        strain_covariance_systematic=np.zeros((6, 6)), fixed_components=fixed, cell=cell,
+        cell_sigma=cell_sigma, reference_cell=crystal.cell, basis=basis, patterns=patterns,
+        chi2=chi2_out, dof=int(dof), checks=checks, constraints=constraints,
+        warnings=list(dict.fromkeys(warnings)), structure=crystal.summary(),
+        unique_axis=unique_axis, inner_potential=inner_potential, crystal=crystal,
+        poorly_separated=[(a, b, c, f) for a, b, c, f in poorly])
+
+
+def _value_of(f, full, xi):
+    """Physical value of a free parameter: its slot (slots tied with weight 1), or the
+    coordinate along a reduced strain direction."""
+    nz = np.flatnonzero(f.column)
+    if np.all(f.column[nz] == 1.0):
+        return float(full[nz[0]])
+    return float(xi * f.unit)
+
+
+def _poorly_separated(cov6, frame, level=0.9):
+    """Pairs of components whose correlation exceeds ``level``.
+
+    Pairs tied exactly by the model or a constraint (|correlation| = 1 to
+    rounding, such as exx = eyy of a tetragonal cell) are not the data's
+    failing and are left out.
+    """
+    s = np.sqrt(np.maximum(np.diag(cov6), 0))
+    out = []
+    for i in range(6):
+        for j in range(i + 1, 6):
+            if s[i] > 0 and s[j] > 0:
+                c = cov6[i, j] / (s[i] * s[j])
+                if level < abs(c) < 1 - 1e-9:
+                    out.append((STRAIN_COMPONENTS[i], STRAIN_COMPONENTS[j], float(c), frame))
+    return out
+
+
+def _pattern_result(problem, j, x, full, cov, factor, exclude, hexagonal):
+    pm, spec, data = problem.parameters, problem.specs[j], problem.data[j]
+    det = pm.detector(full, j)
+    names = pm.names
+    sig = np.sqrt(np.maximum(np.diag(cov), 0)) if len(cov) else np.zeros(0)
+
+    def sigma_of(field_):
+        for i, f in enumerate(pm.free):
+            if f.column[pm.slot(field_, j)] != 0:
+                return float(sig[i])
+        return None
+
+    det_sigma = {
+        "center_px": ([sigma_of("center_x"), sigma_of("center_y")]
+                      if sigma_of("center_x") is not None else None),
+        "scale_px_per_mrad": sigma_of("scale"),
+        "rotation_deg": sigma_of("rotation"),
+        "distortion": ([sigma_of("e1"), sigma_of("e2")] if sigma_of("e1") is not None
+                       else None),
+    }
+    geo = pm.geometry(full[None], j)
+    s_factor = math.sqrt(factor) if np.isfinite(factor) and factor > 0 else 1.0
+    table_hkl, table_d, table_z = np.zeros((0, 3), np.int64), np.zeros(0), np.zeros(0)
+    if isinstance(data, CrossingData):
+        obs = problem._obs[j]
+        records = []
+        res_all = np.full((len(data), 2), np.nan)
+        if len(obs):
+            fitted = obs.predicted_px(geo)[0]
+            res_all[data.used] = obs.xy_px - fitted
+            normals = obs.line_normals_px(geo)
+            sigma = (obs.sigma_px if obs.sigma_px is not None else np.ones(len(obs))) * s_factor
+            # each crossing's residual across each of its two lines
+            d = np.einsum("ni,nsi->ns", obs.xy_px - fitted, normals)
+            table_hkl = np.concatenate([obs.hkl_a, obs.hkl_b])
+            table_d = np.concatenate([d[:, 0], d[:, 1]])
+            table_z = table_d / np.concatenate([sigma, sigma])
+        for i in range(len(data)):
+            records.append(PointRecord(float(data.xy[i, 0]), float(data.xy[i, 1]),
+                                       data.hkl_a[i].tolist(), data.hkl_b[i].tolist(),
+                                       res_all[i].tolist(), bool(data.used[i]), data.notes[i]))
+        used = res_all[data.used]
+        rms = float(np.sqrt(np.mean(np.sum(used ** 2, axis=1)))) if len(used) else float("nan")
+        lines = None
+        n_points, n_used = len(data), int(data.used.sum())
+    else:
+        obs = problem._obs[j]
+        offsets = np.full((len(data), data.points.shape[1]), np.nan)
+        if len(obs):
+            offsets[data.used] = obs.residuals(geo)[0]
+            sd = np.sqrt(np.diagonal(obs.covariance, axis1=1, axis2=2)) * s_factor
+            k = offsets.shape[1]
+            table_hkl = np.repeat(obs.hkl, k, axis=0)
+            table_d = -offsets[data.used].ravel()     # measured minus fitted
+            table_z = table_d / sd.ravel()
+        dist = np.sqrt(np.mean(offsets ** 2, axis=1))
+        index_of = {i: k for k, i in enumerate(data.good)}
+        lines = []
+        for i, ln in enumerate(data.detection.lines):
+            k = index_of.get(i)
+            if k is None:
+                lines.append(LineRecord(i, [0, 0, 0], None, False, ln.flag,
+                                        ln.normal_angle_deg))
+                continue
+            lines.append(LineRecord(i, data.hkl[k].tolist(),
+                                    float(dist[k]) if data.used[k] else None,
+                                    bool(data.used[k]), data.notes[k], ln.normal_angle_deg,
+                                    data.points[k].tolist(), offsets[k].tolist()))
+        records = _detected_crossings(problem, j, geo, data)
+        rms = float(np.sqrt(np.nanmean(dist[data.used] ** 2))) if data.used.any() \
+            else float("nan")
+        n_points, n_used = len(data), int(data.used.sum())
+    line_table = _line_table(table_hkl, table_d, table_z)
+    kv_sigma = sigma_of("kv")
+    return PatternResult(
+        index=j, zone=spec.zone, x_axis=spec.x_axis, detector=det, detector_sigma=det_sigma,
+        kv=float(full[pm.slot("kv", j)]), kv_sigma=kv_sigma,
+        wave_number=float(pm.wave_numbers(full, j)[0]), disk_mrad=spec.disk_mrad,
+        points=records, lines=lines, line_table=line_table, rms_px=rms, n_points=n_points,
+        n_used=n_used, assigned=data.needs_assignment, tilt_deg=spec.tilt_deg,
+        source=spec.source, pixel_frame=spec.pixel_frame, calibration=spec.calibration,
+        excluded=tuple(sorted(exclude)), hexagonal=hexagonal)
+
+
+def _line_table(hkl, d, z):
+    """Residuals gathered by reflection, most observed lines first."""
+    if not len(hkl):
+        return []
+    lines, inverse = np.unique(hkl, axis=0, return_inverse=True)
+    inverse = inverse.ravel()
+    n = np.bincount(inverse)
+    mean = np.bincount(inverse, d) / n
+    rms = np.sqrt(np.bincount(inverse, d * d) / n)
+    z_rms = np.sqrt(np.bincount(inverse, z * z) / n)
+    order = np.lexsort((-rms, -n))
+    return [LineResidual([int(v) for v in lines[i]], int(n[i]), float(mean[i]),
+                         float(rms[i]), float(z_rms[i])) for i in order]
+
+
+def _detected_crossings(problem, j, geo, data):
+    """The detected crossings of assigned lines, against the fitted ones."""
+    det = data.detection
+    label = {i: data.hkl[k] for k, i in enumerate(data.good) if data.used[k]}
+    rows = [(xy, label[a], label[b]) for (a, b), xy in
+            zip(det.crossing_lines, det.crossing_px) if a in label and b in label]
+    if not rows:
+        return []
+    spec = problem.specs[j]
+    obs = Crossings(spec.zone, spec.x_axis, np.array([r[0] for r in rows]),
+                    np.array([r[1] for r in rows]), np.array([r[2] for r in rows]))
+    res = obs.xy_px - obs.predicted_px(geo)[0]
+    return [PointRecord(float(xy[0]), float(xy[1]), list(map(int, a)), list(map(int, b)),
+                        r.tolist(), True, "derived from two fitted lines")
+            for (xy, a, b), r in zip(rows, res)]
+
+
