@@ -452,7 +452,7 @@ def _cmd_map(args):
 
     from . import report
     from .maps import map_summary_text, open_scan, plan_scan, map_strain
-    from .refine import calibration_from_document
+    from .fit import Calibration
 
     report.check_outputs([], args.force, args.figure)
     if Path(args.out).suffix.lower() != ".zarr":
@@ -465,12 +465,14 @@ def _cmd_map(args):
     except (OSError, UnicodeDecodeError, ValueError) as exc:
         raise InputError(f"cannot read the calibration {args.calibration}: "
                          f"{str(exc).splitlines()[0]}") from None
-    kv, detector = calibration_from_document(doc)
-    _check_calibration_matches(doc, crystal, args)
-    disk_mrad = args.disk_mrad if args.disk_mrad is not None else doc.get("disk_mrad")
+    calibration = Calibration.from_document(doc, source=str(args.calibration))
+    kv, detector = calibration.kv, calibration.detector
+    _check_calibration_matches(calibration, crystal, args)
+    disk_mrad = args.disk_mrad if args.disk_mrad is not None else \
+        calibration.settings.get("disk_mrad", doc.get("disk_mrad"))
     if disk_mrad is None:
         raise InputError("the calibration does not record the disk radius; give --disk-mrad")
-    x_axis = args.x_axis if args.x_axis is not None else doc.get("x_axis")
+    x_axis = args.x_axis if args.x_axis is not None else calibration.x_axis
     axes, frame_text = _sample_frame(args, crystal)
     scan = open_scan(args.scan, chunk_patterns=args.chunk_patterns, step_nm=args.step_nm)
     reference = _map_reference(args, scan)
@@ -520,18 +522,18 @@ def _map_reference(args, scan):
     return None
 
 
-def _check_calibration_matches(doc, crystal, args):
+def _check_calibration_matches(calibration, crystal, args):
     """Refuse a calibration made on another structure or zone axis, or not converged."""
     from .frame import reduce_indices
 
-    name = (doc.get("structure") or {}).get("name")
+    name = calibration.structure
     if name and crystal.name and name != crystal.name:
         raise InputError(f"the calibration was made on {name}, not on {crystal.name}")
-    zone = doc.get("zone")
+    zone = calibration.zone
     if zone is not None and tuple(reduce_indices(zone)[0]) != tuple(reduce_indices(args.zone)[0]):
         raise InputError(f"the calibration was made at zone [{' '.join(map(str, zone))}], not "
                          f"at [{' '.join(map(str, args.zone))}]")
-    if doc.get("converged") is False or doc.get("success") is False:
+    if not calibration.converged:
         raise InputError("the calibration fit did not converge; make a new calibration")
 
 
