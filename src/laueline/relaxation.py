@@ -83,8 +83,8 @@ from .errors import InputError
 __all__ = ["MODELS", "RELAXATION_SCHEMA", "CAUTIONS", "DisplacementTable",
            "read_displacement_table", "relaxation_displacement", "kinematic_profile",
            "excitation_errors", "strain_shifts", "LineProfiles", "measure_line_profiles",
-           "ProfileData", "ProfileFit", "fit_profiles", "profile_data", "RelaxationResult", "relaxation",
-           ]
+           "ProfileData", "ProfileFit", "fit_profiles", "profile_data", "RelaxationResult",
+           "relaxation", "LineAssessment", "assess_line_profiles", "line_shape_warning"]
 
 RELAXATION_SCHEMA = "laueline.relaxation/1"
 MODELS = ("uniform", "cosh", "table")
@@ -1109,6 +1109,12 @@ def relaxation(crystal, zone, image, *, calibration, thickness_nm, model="cosh",
             table = read_displacement_table(table, thickness_nm)
     if calibration is None:
         raise InputError("a calibration (voltage and camera scale from a reference) is needed")
+    if int(segments) < 1:
+        raise InputError(f"segments must be at least 1, got {segments}")
+    for name, value in (("half_width_px", half_width_px),
+                        ("instrument_sigma_px", instrument_sigma_px)):
+        if value is not None and not (math.isfinite(value) and value > 0):
+            raise InputError(f"{name} must be positive, got {value:g}")
     image = np.asarray(image, dtype=float)
     if detection is None:
         detection = detect_lines(image, disk=disk_px)
@@ -1189,3 +1195,153 @@ def _subset(profiles, mask):
                         profiles.intensity[idx], profiles.sigma[idx],
                         [profiles.columns_px[i] for i in idx],
                         [profiles.normals[i] for i in idx], profiles.n_columns[idx])
+
+
+# ---------------------------------------------------------------------------
+# split and broadened lines, for the single-strain fit
+# ---------------------------------------------------------------------------
+
+@dataclass
+class LineAssessment:
+    """Shape of one detected line's profile.
+
+    ``width_px`` is the FWHM of a single Gaussian dip fitted to the
+    profile; ``split`` is True when two dips fit significantly better
+    (chi-square lower by ``delta_chi2``), are both substantial and lie
+    further apart than the instrument's line width; ``broadened`` when the
+    single dip is wider than 1.5 times the instrument's line width.
+    """
+
+    index: int
+    width_px: float
+    split: bool
+    broadened: bool
+    separation_px: float
+    delta_chi2: float
+
+
+def _dips(d, y, sigma, n_dips, start_width, start_centres):
+    from scipy.optimize import least_squares
+
+    def model(p):
+        out = p[0] + p[1] * d
+        for j in range(n_dips):
+            out = out - p[3 + 2 * j] * np.exp(-0.5 * ((d - p[4 + 2 * j]) / p[2]) ** 2)
+        return out
+
+    depth0 = max(float(np.max(y) - np.min(y)), 1e-3)
+    x0 = [float(np.median(y)), 0.0, start_width]
+    for c in start_centres:
+        x0 += [depth0 / n_dips, c]
+    lo = [-np.inf, -np.inf, 0.3] + [0.0, d[0]] * n_dips
+    hi = [np.inf, np.inf, d[-1] - d[0]] + [np.inf, d[-1]] * n_dips
+    res = least_squares(lambda p: (model(p) - y) / sigma, np.clip(x0, lo, hi),
+                        bounds=(lo, hi), max_nfev=200)
+    return res.x, float(np.sum(res.fun ** 2))
+
+
+def assess_line_profiles(image, detection, *, instrument_fwhm_px=None, half_width_px=None,
+                         min_delta_chi2=25.0):
+    """Which detected lines are split or broadened beyond the instrument's line width.
+
+    Each good line of ``detection`` (:func:`laueline.images.detect.detect_lines`)
+    is profiled across its fitted position, averaged along its length
+    (:func:`measure_line_profiles`, keeping clear of the other lines); one
+    and two Gaussian dips (one common width) are fitted to the profile.
+
+    Parameters
+    ----------
+    image : ndarray (rows, cols)
+    detection : Detection
+    instrument_fwhm_px : float, optional
+        The width of an unbroadened line (a thick, unstrained reference
+        region, or the instrument's resolution); by default the median width
+        the detection found, which presumes that most lines are not broadened.
+    half_width_px : float, optional
+        Profile half-width; four instrument widths by default (at least 8 px).
+    min_delta_chi2 : float
+        Chi-square improvement a second dip must bring (25: about five
+        sigma for the extra parameters; common practice).
+
+    Returns
+    -------
+    list of LineAssessment
+        One per good line, in detection order.
+    """
+    good = detection.good_lines
+    if not good:
+        return []
+    fwhm = instrument_fwhm_px or float(np.median([detection.lines[i].width_px for i in good]))
+    w = half_width_px or max(4.0 * fwhm, 8.0)
+    polylines = [np.asarray(detection.lines[i].points_px, dtype=float) for i in good]
+    profiles = measure_line_profiles(
+        image, polylines, np.array(good)[:, None].repeat(3, 1), detection.disk.center_px,
+        detection.disk.radius_px, half_width_px=w, segments=1, obstacles_px=polylines,
+        clearance_px=max(1.5 * fwhm, 3.0))
+    out = []
+    d = profiles.offset_px
+    sigma0 = fwhm / _FWHM
+    for k in range(len(profiles)):     # a few dozen small fits, reporting only
+        y, s = profiles.intensity[k], np.maximum(profiles.sigma[k], 1e-9)
+        one, chi1 = _dips(d, y, s, 1, sigma0, [d[np.argmin(y)]])
+        width = one[2] * _FWHM
+        best = (np.inf, None)
+        for sep in (0.75, 1.25, 2.0):
+            c = one[4]
+            two, chi2 = _dips(d, y, s, 2, sigma0, [c - sep * width / 2, c + sep * width / 2])
+            if chi2 < best[0]:
+                best = (chi2, two)
+        chi2, two = best
+        depths = two[[3, 5]]
+        separation = abs(two[6] - two[4])
+        split = bool(chi1 - chi2 > min_delta_chi2 and depths.min() > 0.2 * depths.max()
+                     and separation > fwhm)
+        out.append(LineAssessment(int(profiles.hkl[k, 0]), float(width), split,
+                                  bool(width > 1.5 * fwhm),
+                                  float(separation) if split else float("nan"),
+                                  float(chi1 - chi2)))
+    return out
+
+
+def line_shape_warning(assessments):
+    """One warning sentence for a single-strain fit when lines are split or broadened, or None."""
+    n_split = sum(a.split for a in assessments)
+    n_broad = sum(a.broadened and not a.split for a in assessments)
+    if not n_split and not n_broad:
+        return None
+    return (f"{n_split} of {len(assessments)} lines are split and {n_broad} broadened beyond "
+            "the instrument's line width: the strain varies through the foil (surface "
+            "relaxation of a thin lamella?), and one strain per pattern is an average that "
+            "may match no depth; fit the profiles with 'laueline relaxation'")
+
+
+def relaxation_text(result):
+    """Plain-text summary of a :class:`RelaxationResult`."""
+    out = [f"thin-lamella profile fit: {result.structure.get('name', '')} "
+           f"[{' '.join(map(str, result.zone))}], {result.kv:g} kV, t = "
+           f"{result.thickness_nm:g} nm, model {result.model}"
+           + (f" ({result.table.source})" if result.table is not None else "")]
+    n_lines = len({tuple(h) for h in result.profiles.hkl.tolist()})
+    out.append(f"profiles: {len(result.profiles)} from {n_lines} lines; split "
+               f"{int(np.sum(result.split))}, broadened {int(np.sum(result.broadened))}")
+    out.append("")
+    out.append(f"{'strain (crystal frame)':24} {'mid-foil':>12} {'sigma':>10} "
+               f"{'one-strain fit':>15} {'sigma':>10}")
+    for c, v, s, a, sa in zip(STRAIN_COMPONENTS, result.strain_mid, result.strain_mid_sigma,
+                              result.average_strain, result.average_strain_sigma):
+        out.append(f"{c:24} {v:12.3e} {s:10.1e} {a:15.3e} {sa:10.1e}")
+    out.append("")
+    names, values, sigmas, units = result.parameters
+    for n, v, s, u in zip(names, values, sigmas, units):
+        out.append(f"{n:24} {v:12.5g} {s:10.2g} {u}")
+    out.append("")
+    out.append(f"chi-square {result.fit.chi2:.1f} for {result.fit.dof} degrees of freedom; "
+               f"{'converged' if result.success else 'NOT converged'}: {result.fit.message}")
+    if result.model == "cosh":
+        out.append("the sign of (ux, uy) is not determined by the profiles (u and -u give the "
+                   "same profile); reported with ux >= 0")
+    for w in result.warnings:
+        out.append(f"warning: {w}")
+    for c in result.cautions:
+        out.append(f"caution: {c}")
+    return "\n".join(out)
