@@ -996,10 +996,14 @@ class RelaxationResult:
         }
 
 
-def _default_half_width(thickness_nm, g_perp, scale_px_per_mrad):
-    """Profile half-width (px): three kinematic line widths of the broadest line, plus room."""
+def _default_half_width(thickness_nm, g_perp, scale_px_per_mrad, detected_fwhm_px=0.0):
+    """Profile half-width (px): three line widths plus room, within 8..40 px.
+
+    The line width is the larger of the kinematic width of the broadest line
+    (0.886 / t in s) and the median width the detector found.
+    """
     fwhm_px = _SINC2_FWHM / (10.0 * thickness_nm) / np.min(g_perp) * 1e3 * scale_px_per_mrad
-    return float(np.clip(3.0 * fwhm_px + 4.0, 8.0, 40.0))
+    return float(np.clip(3.0 * max(fwhm_px, detected_fwhm_px) + 4.0, 8.0, 40.0))
 
 
 def profile_data(profiles, crystal, zone, x_axis, wave_number, detector):
@@ -1097,7 +1101,7 @@ def relaxation(crystal, zone, image, *, calibration, thickness_nm, model="cosh",
     RelaxationResult
     """
     from .images.detect import detect_lines
-    from .refine import fitted_pattern, refine_image
+    from .refine import fitted_pattern
 
     thickness_nm = _check_thickness(thickness_nm)
     if model not in MODELS:
@@ -1119,20 +1123,21 @@ def relaxation(crystal, zone, image, *, calibration, thickness_nm, model="cosh",
     if detection is None:
         detection = detect_lines(image, disk=disk_px)
     kv, cal_det = calibration
-    avg = refine_image(crystal, zone, detection, kv=kv, calibration=calibration,
-                       x_axis=x_axis, min_strength=min_strength)
     warnings = []
+    avg = _average_fit(crystal, zone, detection, kv, calibration, x_axis, min_strength,
+                       warnings)
     pattern = fitted_pattern(avg, crystal, min_strength=min_strength)
     det = avg.detector
-    used = {tuple(ln["hkl"]) for ln in avg.lines if ln.get("used")}
-    pick = np.array([tuple(h) in used for h in pattern.hkl.tolist()], dtype=bool)
-    if not np.any(pick):
-        raise InputError("no detected line was assigned to a predicted one: nothing to profile")
+    # every predicted line is profiled along its locus, found by the detector or not:
+    # broad or split lines are often missed, and the weak ones are sorted out below
+    pick = np.ones(pattern.n_lines, dtype=bool)
     loci = det.to_pixels(pattern.points_mrad)
     g_perp = np.linalg.norm(
         pattern.frame.components(crystal.g_vectors(pattern.hkl[pick]))[:, :2], axis=1)
     if half_width_px is None:
-        half_width_px = _default_half_width(thickness_nm, g_perp, det.scale_px_per_mrad)
+        widths = [detection.lines[i].width_px for i in detection.good_lines]
+        half_width_px = _default_half_width(thickness_nm, g_perp, det.scale_px_per_mrad,
+                                            float(np.median(widths)) if widths else 0.0)
     profiles = measure_line_profiles(
         image, list(loci[pick]), pattern.hkl[pick], detection.disk.center_px,
         detection.disk.radius_px, half_width_px=half_width_px, segments=segments,
@@ -1152,6 +1157,11 @@ def relaxation(crystal, zone, image, *, calibration, thickness_nm, model="cosh",
         raise InputError(f"only {n_lines} line(s) are strong and clear enough to profile "
                          "(at least 3 are needed): the lines are too weak, too crowded, or "
                          "the profile window (half_width_px) is too wide")
+    n_free = 9 + len(PARAMETERS[model]) + (instrument_sigma_px is None)
+    if len(profiles) < n_free + 1:
+        raise InputError(f"only {len(profiles)} profiles from {n_lines} lines for {n_free} "
+                         "parameters: too few lines are strong and clear enough; try more "
+                         "segments, a narrower half_width_px or a lower min_strength")
     data = profile_data(profiles, crystal, avg.zone, avg.x_axis, avg.wave_number, det)
     start = {c: avg.parameter(c)[0] for c in STRAIN_COMPONENTS if c in avg.parameters}
     fit = fit_profiles(data, thickness_nm, model, table=table, start=start,
@@ -1187,6 +1197,29 @@ def relaxation(crystal, zone, image, *, calibration, thickness_nm, model="cosh",
         split=split, broadened=broadened, width_px=width, uniform_width_px=width_uniform,
         table=table, warnings=warnings)
     return result
+
+
+def _average_fit(crystal, zone, detection, kv, calibration, x_axis, min_strength, warnings):
+    """One strain for the whole pattern: line assignment and start values.
+
+    Split lines can mislead a single-strain fit; when it does not converge
+    or returns a strain beyond 2 %, the assignment is made with the
+    reference cell (centre and rotation free) instead.
+    """
+    from .refine import refine_image
+
+    try:
+        avg = refine_image(crystal, zone, detection, kv=kv, calibration=calibration,
+                           x_axis=x_axis, min_strength=min_strength)
+        strain = [abs(avg.parameter(c)[0]) for c in STRAIN_COMPONENTS if c in avg.parameters]
+        if avg.converged and max(strain, default=0.0) < 0.02:
+            return avg
+    except InputError:
+        pass
+    warnings.append("the single-strain fit of the detected lines failed or was implausible; "
+                    "lines were assigned with the reference cell")
+    return refine_image(crystal, zone, detection, kv=kv, calibration=calibration,
+                        x_axis=x_axis, min_strength=min_strength, model="fixed")
 
 
 def _subset(profiles, mask):
