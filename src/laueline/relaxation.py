@@ -394,6 +394,8 @@ class LineProfiles:
         normals along which they were sampled.
     n_columns : ndarray (p,) of int
         Fewest columns averaged at any offset.
+    masks : list of ndarray (c, k) of bool
+        The samples of each column that entered the average.
     """
 
     hkl: np.ndarray
@@ -404,6 +406,7 @@ class LineProfiles:
     columns_px: list
     normals: list
     n_columns: np.ndarray
+    masks: list = field(default_factory=list)
 
     def __len__(self):
         return len(self.hkl)
@@ -473,7 +476,7 @@ def measure_line_profiles(image, loci_px, hkl, disk_center_px, disk_radius_px, *
     centre = np.asarray(disk_center_px, dtype=float)
     rows, cols = image.shape
     out = {k: [] for k in ("hkl", "segment", "intensity", "sigma", "columns", "normals",
-                           "n")}
+                           "n", "masks")}
     dense = [_resample(np.asarray(o, dtype=float), 1.0)[0] for o in obstacles_px]
     for i, locus in enumerate(loci_px):
         locus = np.asarray(locus, dtype=float)
@@ -503,6 +506,7 @@ def measure_line_profiles(image, loci_px, hkl, disk_center_px, disk_radius_px, *
             if count.min() < min_columns:
                 continue
             used = np.any(np.isfinite(v), axis=1)
+            out["masks"].append(np.isfinite(v[used]))
             out["hkl"].append(hkl[i])
             out["segment"].append(k)
             out["intensity"].append(np.nanmean(v, axis=0))
@@ -513,10 +517,10 @@ def measure_line_profiles(image, loci_px, hkl, disk_center_px, disk_radius_px, *
     if not out["hkl"]:
         return LineProfiles(np.zeros((0, 3), int), np.zeros(0, int), offsets,
                             np.zeros((0, len(offsets))), np.zeros((0, len(offsets))), [], [],
-                            np.zeros(0, int))
+                            np.zeros(0, int), [])
     return LineProfiles(np.array(out["hkl"]), np.array(out["segment"]), offsets,
                         np.array(out["intensity"]), np.array(out["sigma"]), out["columns"],
-                        out["normals"], np.array(out["n"]))
+                        out["normals"], np.array(out["n"]), out["masks"])
 
 
 def _same_polyline(a, b):
@@ -568,6 +572,8 @@ class ProfileFit:
     uniform: np.ndarray          # (p, k) uniform-strain profile at the same strain and blur
     linear: np.ndarray           # (p, 3) background, slope, depth of each profile
     inflated: bool = False
+    sigmas_stat: np.ndarray | None = None   # from the profile noise alone
+    shift_ratio: float = 1.0     # scatter of profile positions over their noise
 
     def value(self, name):
         i = self.names.index(name)
@@ -704,6 +710,69 @@ def _bounds(names, thickness_nm, half_width_px):
     return np.array(lo), np.array(hi)
 
 
+_RIGID = tuple(STRAIN_COMPONENTS) + ("center_x", "center_y", "rotation")
+
+
+def _shift_scatter(m, x, n_rigid):
+    """Birge ratio of the profiles' own best shifts about the fitted ones.
+
+    Each profile's best extra shift and its sigma follow from one
+    Gauss-Newton step on its residuals; the ratio is
+    sqrt(sum (shift / sigma)^2 / (profiles - rigid parameters)).
+    """
+    v = m.full(x)
+    r0 = m.evaluate(v)
+    p = m.data.intensity.shape[0]
+    h = 0.01 / (10.0 * m.t)
+    jac = ((m.evaluate(v, h) - r0) / h).reshape(p, -1)
+    r0 = r0.reshape(p, -1)
+    info = np.sum(jac * jac, axis=1)
+    shift = -np.sum(jac * r0, axis=1) / np.maximum(info, 1e-300)
+    dof = p - n_rigid
+    if dof < 1:
+        return 1.0
+    return float(math.sqrt(np.sum(shift ** 2 * info) / dof))
+
+
+def _rigid_start(m, values, half_width_px):
+    """Start values of strain, centre and rotation from a position scan of every profile.
+
+    Each profile is compared with a line of uniform strain, blurred to the
+    profile's own width, at shifts across the whole window; the best shift
+    of every profile (in excitation error) then gives the rigid parameters by
+    linear least squares through their per-profile shifts.
+    """
+    data = m.data
+    slope = np.abs(data.s_at_offset[:, 1])
+    deficit = data.intensity.max(axis=1, keepdims=True) - data.intensity
+    width = np.median(_fwhm(data.offset_px, deficit))
+    v = dict(values, instrument_sigma_px=max(float(width) / _FWHM, 0.5))
+    grid = np.linspace(-0.8, 0.8, 65) * half_width_px            # px
+    costs = np.empty((len(grid), len(slope)))
+    for j, step in enumerate(grid):                               # 65 evaluations
+        r = m.evaluate(v, step * slope).reshape(len(slope), -1)
+        costs[j] = np.sum(r * r, axis=1)
+    best = grid[np.argmin(costs, axis=0)] * slope                 # (p,) extra shift, 1/A
+    rigid = np.concatenate([data.strain_shift * _STRAIN_UNIT, data.detector_shift], axis=1)
+    names = list(STRAIN_COMPONENTS) + ["center_x", "center_y", "rotation"]
+    free = [k for k, n in enumerate(names) if n not in m.fixed]
+    scale = np.linalg.norm(rigid[:, free], axis=0)
+    scale[scale == 0] = 1.0
+    # robust (a profile may lock onto a neighbour) and damped towards the given start
+    from scipy.optimize import least_squares
+
+    a = rigid[:, free] / scale
+    width_s = np.median(slope) * max(float(width), 1.0)
+    damping = 0.05 * np.linalg.norm(a, 2)
+    fit = least_squares(lambda x: np.concatenate([(a @ x - best) / width_s, damping * x]),
+                        np.zeros(len(free)), loss="soft_l1", f_scale=0.5)
+    step = fit.x / scale
+    out = dict(values)
+    for k, dv in zip(free, step):
+        out[names[k]] = values[names[k]] + dv
+    return out
+
+
 def fit_profiles(data, thickness_nm, model="cosh", *, table=None, start=None,
                  instrument_sigma_px=None, hold=(), n_slabs=_N_SLABS, scan=True):
     """Fit the mid-foil strain and the relaxation to all profiles at once.
@@ -776,20 +845,25 @@ def fit_profiles(data, thickness_nm, model="cosh", *, table=None, start=None,
         return out, res, sub
 
     shape_names = list(PARAMETERS[model])
-    # 1. rigid positions and blur with the relaxation held at its start
+    # 0. each profile's position by a scan, then strain, centre and rotation from
+    #    all positions by linear least squares: a start inside the right valley
+    # 1. rigid positions and blur with the relaxation held at its start, from the
+    #    given start and from the scan; the lower cost wins
     rigid_fixed = {n: values[n] for n in shape_names}
-    values, _, _ = run(None, values, rigid_fixed, 40)
+    starts = [values] + ([_rigid_start(m, values, half_width)] if scan else [])
+    runs = [run(None, v0, rigid_fixed, 40) for v0 in starts]
+    values = min(runs, key=lambda r: r[1].cost)[0]
     # 2. scan the surface displacement (cosh): its sign is not observable (the
     #    profile of a symmetric displacement field is unchanged by u -> -u)
     if model == "cosh" and scan and not {"ux_nm", "uy_nm"} & set(m.fixed):
         g_len = float(np.median(np.linalg.norm(data.g_frame[:, :2], axis=1)))
         best = (np.inf, values["ux_nm"], values["uy_nm"])
-        cycles = np.array([0.15, 0.3, 0.5, 0.8, 1.2, 1.8, 2.6])
-        angles = np.radians(np.arange(0.0, 180.0, 15.0))
+        cycles = np.array([0.2, 0.4, 0.7, 1.1, 1.6, 2.4])
+        angles = np.radians(np.arange(0.0, 180.0, 22.5))
         amp = (cycles / (10.0 * g_len))[:, None]
         ux = np.concatenate([[0.0], (amp * np.cos(angles)).ravel()])
         uy = np.concatenate([[0.0], (amp * np.sin(angles)).ravel()])
-        for length in (thickness_nm / 8.0, thickness_nm / 3.0):
+        for length in (thickness_nm / 6.0,):
             for a, b in zip(ux, uy):
                 trial = dict(values, ux_nm=a, uy_nm=b, decay_length_nm=length)
                 cost = float(np.sum(m.residuals(np.array([trial[n] for n in names])) ** 2))
@@ -806,7 +880,7 @@ def fit_profiles(data, thickness_nm, model="cosh", *, table=None, start=None,
     r = m.residuals(x)
     chi2 = float(np.sum(r ** 2))
     dof = int(r.size - len(names) - 3 * len(data.intensity))
-    jac = res.jac
+    jac = m.jacobian(x)
     scale = np.linalg.norm(jac, axis=0)
     if np.any(scale == 0):
         dead = [names[j] for j in np.flatnonzero(scale == 0)]
@@ -816,8 +890,20 @@ def fit_profiles(data, thickness_nm, model="cosh", *, table=None, start=None,
     inflated = dof > 0 and chi2 > dof
     if inflated:
         cov = cov * (chi2 / dof)
+    # per-profile position term: a neighbouring line's wing or a dynamical shift moves a
+    # profile as a whole; the scatter of the profiles' own best shifts about the fitted
+    # ones, against their statistical sigmas, scales the rigid parameters' covariance
+    shift_ratio = _shift_scatter(m, x, 9 - sum(n in m.fixed for n in _RIGID))
+    rigid_idx = [i for i, n in enumerate(names) if n in _RIGID]
+    cov_stat = cov.copy()
+    if shift_ratio > 1.0:
+        cov[np.ix_(rigid_idx, rigid_idx)] *= shift_ratio ** 2
+        off = [i for i in range(len(names)) if i not in rigid_idx]
+        cov[np.ix_(rigid_idx, off)] *= shift_ratio
+        cov[np.ix_(off, rigid_idx)] *= shift_ratio
     units = np.array([_STRAIN_UNIT if n in STRAIN_COMPONENTS else 1.0 for n in names])
     cov = cov * np.outer(units, units)
+    cov_stat = cov_stat * np.outer(units, units)
     sigmas = np.sqrt(np.maximum(np.diag(cov), 0.0))
     with np.errstate(invalid="ignore", divide="ignore"):
         corr = cov / np.outer(sigmas, sigmas)
@@ -836,7 +922,8 @@ def fit_profiles(data, thickness_nm, model="cosh", *, table=None, start=None,
     message = res.message if success else f"the fit did not converge: {res.message}"
     return ProfileFit(model, names, x * units, sigmas, [PARAMETER_UNITS[n] for n in names],
                       cov, corr, chi2, dof, success, str(message), fitted, intrinsic, uniform,
-                      coef, inflated)
+                      coef, inflated, np.sqrt(np.maximum(np.diag(cov_stat), 0.0)),
+                      float(shift_ratio))
 
 
 def _minima(profile, depth):
@@ -890,6 +977,7 @@ class RelaxationResult:
     profiles: LineProfiles
     strain_mid: np.ndarray          # six components
     strain_mid_sigma: np.ndarray
+    strain_mid_sigma_stat: np.ndarray
     average_strain: np.ndarray      # six components of the single-strain fit
     average_strain_sigma: np.ndarray
     detector: object                # the fitted detector
@@ -977,7 +1065,9 @@ class RelaxationResult:
                            "units": units},
             "strain_mid": {"frame": "reference-cartesian",
                            "components": list(STRAIN_COMPONENTS),
-                           "values": self.strain_mid, "sigmas": self.strain_mid_sigma},
+                           "values": self.strain_mid, "sigmas": self.strain_mid_sigma,
+                           "sigmas_statistical": self.strain_mid_sigma_stat,
+                           "position_scatter_ratio": self.fit.shift_ratio},
             "average_strain": {"values": self.average_strain,
                                "sigmas": self.average_strain_sigma},
             "detector": det.as_dict(),
@@ -997,13 +1087,14 @@ class RelaxationResult:
 
 
 def _default_half_width(thickness_nm, g_perp, scale_px_per_mrad, detected_fwhm_px=0.0):
-    """Profile half-width (px): three line widths plus room, within 8..40 px.
+    """Profile half-width (px): 2.5 line widths plus 2 px, within 8..40 px.
 
-    The line width is the larger of the kinematic width of the broadest line
-    (0.886 / t in s) and the median width the detector found.
+    The line width is the larger of the kinematic width of the median line
+    (0.886 / t in s) and the median width the detector found.  Wider windows
+    hold more of a split line but lose more columns to neighbouring lines.
     """
-    fwhm_px = _SINC2_FWHM / (10.0 * thickness_nm) / np.min(g_perp) * 1e3 * scale_px_per_mrad
-    return float(np.clip(3.0 * max(fwhm_px, detected_fwhm_px) + 4.0, 8.0, 40.0))
+    fwhm_px = _SINC2_FWHM / (10.0 * thickness_nm) / np.median(g_perp) * 1e3 * scale_px_per_mrad
+    return float(np.clip(2.5 * max(fwhm_px, detected_fwhm_px) + 2.0, 8.0, 40.0))
 
 
 def profile_data(profiles, crystal, zone, x_axis, wave_number, detector):
@@ -1031,11 +1122,16 @@ def profile_data(profiles, crystal, zone, x_axis, wave_number, detector):
                     for c in profiles.normals])
     weight = np.stack([np.arange(n_col) < len(c) for c in profiles.columns_px]).astype(float)
     weight /= weight.sum(axis=1, keepdims=True)
+    # the samples that entered each offset's average, as weights (p, c, k)
+    sample_w = np.zeros((len(hkl), n_col, len(d)))
+    for i, mask in enumerate(profiles.masks):
+        sample_w[i, :len(mask)] = mask
+    sample_w /= np.maximum(sample_w.sum(axis=1, keepdims=True), 1.0)
     pix = cols[:, :, None, :] + d[None, None, :, None] * nrm[:, :, None, :]   # (p, c, k, 2)
 
     def mean_s(det):
         s = excitation_errors(det.to_mrad(pix), lp)                        # (p, c, k)
-        return np.einsum("pck,pc->pk", s, weight)
+        return np.einsum("pck,pck->pk", s, sample_w)
 
     s = mean_s(detector)
     design = np.stack([np.ones_like(d), d], axis=1)
@@ -1101,7 +1197,6 @@ def relaxation(crystal, zone, image, *, calibration, thickness_nm, model="cosh",
     RelaxationResult
     """
     from .images.detect import detect_lines
-    from .refine import fitted_pattern
 
     thickness_nm = _check_thickness(thickness_nm)
     if model not in MODELS:
@@ -1124,24 +1219,100 @@ def relaxation(crystal, zone, image, *, calibration, thickness_nm, model="cosh",
         detection = detect_lines(image, disk=disk_px)
     kv, cal_det = calibration
     warnings = []
-    avg = _average_fit(crystal, zone, detection, kv, calibration, x_axis, min_strength,
-                       warnings)
-    pattern = fitted_pattern(avg, crystal, min_strength=min_strength)
-    det = avg.detector
+    single, avg = _average_fit(crystal, zone, detection, kv, calibration, x_axis,
+                               min_strength, warnings)
+    start = {c: avg.parameter(c)[0] for c in STRAIN_COMPONENTS if c in avg.parameters}
+    strain = [start.get(c, 0.0) for c in STRAIN_COMPONENTS]
+    widths = [detection.lines[i].width_px for i in detection.good_lines]
+    settings = dict(image=image, crystal=crystal, zone=avg.zone, x_axis=avg.x_axis, kv=kv,
+                    wave_number=avg.wave_number, disk=detection.disk,
+                    min_strength=min_strength, segments=segments,
+                    min_significance=min_significance, thickness_nm=thickness_nm,
+                    model=model, table=table, instrument_sigma_px=instrument_sigma_px,
+                    detected_fwhm_px=float(np.median(widths)) if widths else 0.0)
+    # first pass along the loci of the single-strain fit; second pass along the loci
+    # of the first pass's mid-foil strain (a locus askew to its line smears the
+    # column average)
+    profiles, fit, det, half = _profile_pass(avg.detector, strain, start, half_width_px, True,
+                                             warnings, **settings)
+    v = dict(zip(fit.names, fit.values))
+    strain = [v[c] for c in STRAIN_COMPONENTS]
+    if max(abs(e) for e in strain) < _PLAUSIBLE_STRAIN:
+        det = det.replace(center_px=(det.center_px[0] + v["center_x"],
+                                     det.center_px[1] + v["center_y"]),
+                          rotation_deg=det.rotation_deg + v["rotation"])
+        again = {k: val for k, val in v.items() if k not in ("center_x", "center_y", "rotation")}
+        pass_warnings = []
+        profiles, fit, det, half = _profile_pass(det, strain, again, half, False,
+                                                 pass_warnings, **settings)
+        warnings = [w for w in warnings if "too weak" not in w] + pass_warnings
+    strain_idx = [fit.names.index(c) for c in STRAIN_COMPONENTS]
+    avg_strain = np.array([single.parameter(c)[0] if single is not None
+                           and c in single.parameters else np.nan for c in STRAIN_COMPONENTS])
+    avg_sigma = np.array([single.parameter(c)[1] if single is not None
+                          and c in single.parameters else np.nan for c in STRAIN_COMPONENTS])
+    v = dict(zip(fit.names, fit.values))
+    fitted_det = det.replace(center_px=(det.center_px[0] + v["center_x"],
+                                        det.center_px[1] + v["center_y"]),
+                             rotation_deg=det.rotation_deg + v["rotation"])
+    if np.max(np.abs(fit.values[strain_idx])) >= _PLAUSIBLE_STRAIN:
+        fit.success = False
+        fit.message = (f"implausible: a mid-foil strain component of "
+                       f"{np.max(np.abs(fit.values[strain_idx])):.3g} (beyond "
+                       f"{_PLAUSIBLE_STRAIN:g}); the lines were probably misassigned")
+    width = _fwhm(profiles.offset_px, fit.linear[:, :1] - fit.fitted)
+    width_uniform = _fwhm(profiles.offset_px, fit.linear[:, :1] - fit.uniform)
+    split = _minima(fit.fitted, fit.linear[:, 2]) >= 2
+    broadened = width > 1.25 * width_uniform
+    if not fit.success:
+        warnings.append(fit.message)
+    if fit.shift_ratio > 1.0:
+        warnings.append(f"the profiles' positions scatter {fit.shift_ratio:.2f} times more than "
+                        "their noise allows (neighbouring lines, dynamical shifts): strain, "
+                        "centre and rotation uncertainties scaled up by that factor")
+    if fit.inflated:
+        warnings.append(f"chi-square {fit.chi2:.1f} for {fit.dof} degrees of freedom: "
+                        "uncertainties scaled up by "
+                        f"{math.sqrt(fit.chi2 / fit.dof):.2f}")
+    for i, j in zip(*np.triu_indices(len(fit.names), 1)):
+        if abs(fit.correlation[i, j]) > 0.95:
+            warnings.append(f"{fit.names[i]} and {fit.names[j]} are correlated "
+                            f"({fit.correlation[i, j]:+.3f}): poorly separated")
+    result = RelaxationResult(
+        structure=crystal.summary(), zone=avg.zone, x_axis=avg.x_axis, kv=float(kv),
+        thickness_nm=thickness_nm, model=model, fit=fit, profiles=profiles,
+        strain_mid=fit.values[strain_idx], strain_mid_sigma=fit.sigmas[strain_idx],
+        strain_mid_sigma_stat=fit.sigmas_stat[strain_idx],
+        average_strain=avg_strain, average_strain_sigma=avg_sigma, detector=fitted_det,
+        split=split, broadened=broadened, width_px=width, uniform_width_px=width_uniform,
+        table=table, warnings=warnings)
+    return result
+
+
+_PLAUSIBLE_STRAIN = 0.02   # beyond 2 % a single HOLZ pattern's kinematic fit is not credible
+
+
+def _profile_pass(detector, strain, start, half_width_px, scan, warnings, *, image, crystal,
+                  zone, x_axis, kv, wave_number, disk, min_strength, segments,
+                  min_significance, thickness_nm, model, table, instrument_sigma_px,
+                  detected_fwhm_px):
+    """Profiles along the loci predicted for ``strain`` and ``detector``, and their fit."""
+    from .lines import predict
+
+    pattern = predict(crystal, zone, kv, disk.radius_px / detector.scale_px_per_mrad,
+                      x_axis=x_axis, min_strength=min_strength, strain=strain,
+                      wave_number=wave_number)
     # every predicted line is profiled along its locus, found by the detector or not:
     # broad or split lines are often missed, and the weak ones are sorted out below
-    pick = np.ones(pattern.n_lines, dtype=bool)
-    loci = det.to_pixels(pattern.points_mrad)
-    g_perp = np.linalg.norm(
-        pattern.frame.components(crystal.g_vectors(pattern.hkl[pick]))[:, :2], axis=1)
+    loci = detector.to_pixels(pattern.points_mrad)
     if half_width_px is None:
-        widths = [detection.lines[i].width_px for i in detection.good_lines]
-        half_width_px = _default_half_width(thickness_nm, g_perp, det.scale_px_per_mrad,
-                                            float(np.median(widths)) if widths else 0.0)
+        g_perp = np.linalg.norm(pattern.frame.components(
+            crystal.g_vectors(pattern.hkl))[:, :2], axis=1)
+        half_width_px = _default_half_width(thickness_nm, g_perp, detector.scale_px_per_mrad,
+                                            detected_fwhm_px)
     profiles = measure_line_profiles(
-        image, list(loci[pick]), pattern.hkl[pick], detection.disk.center_px,
-        detection.disk.radius_px, half_width_px=half_width_px, segments=segments,
-        obstacles_px=list(loci))
+        image, list(loci), pattern.hkl, disk.center_px, disk.radius_px,
+        half_width_px=half_width_px, segments=segments, obstacles_px=list(loci))
     if len(profiles):
         flank = np.abs(profiles.offset_px) >= 0.75 * half_width_px
         depth = profiles.intensity[:, flank].mean(axis=1) - profiles.intensity.min(axis=1)
@@ -1162,64 +1333,37 @@ def relaxation(crystal, zone, image, *, calibration, thickness_nm, model="cosh",
         raise InputError(f"only {len(profiles)} profiles from {n_lines} lines for {n_free} "
                          "parameters: too few lines are strong and clear enough; try more "
                          "segments, a narrower half_width_px or a lower min_strength")
-    data = profile_data(profiles, crystal, avg.zone, avg.x_axis, avg.wave_number, det)
-    start = {c: avg.parameter(c)[0] for c in STRAIN_COMPONENTS if c in avg.parameters}
+    data = profile_data(profiles, crystal, zone, x_axis, wave_number, detector)
     fit = fit_profiles(data, thickness_nm, model, table=table, start=start,
-                       instrument_sigma_px=instrument_sigma_px)
-    strain_idx = [fit.names.index(c) for c in STRAIN_COMPONENTS]
-    avg_strain = np.array([avg.parameter(c)[0] if c in avg.parameters else 0.0
-                           for c in STRAIN_COMPONENTS])
-    avg_sigma = np.array([avg.parameter(c)[1] if c in avg.parameters else 0.0
-                          for c in STRAIN_COMPONENTS])
-    v = dict(zip(fit.names, fit.values))
-    fitted_det = det.replace(center_px=(det.center_px[0] + v["center_x"],
-                                        det.center_px[1] + v["center_y"]),
-                             rotation_deg=det.rotation_deg + v["rotation"])
-    width = _fwhm(profiles.offset_px, fit.linear[:, :1] - fit.fitted)
-    width_uniform = _fwhm(profiles.offset_px, fit.linear[:, :1] - fit.uniform)
-    split = _minima(fit.fitted, fit.linear[:, 2]) >= 2
-    broadened = width > 1.25 * width_uniform
-    if not fit.success:
-        warnings.append(fit.message)
-    if fit.inflated:
-        warnings.append(f"chi-square {fit.chi2:.1f} for {fit.dof} degrees of freedom: "
-                        "uncertainties scaled up by "
-                        f"{math.sqrt(fit.chi2 / fit.dof):.2f}")
-    for i, j in zip(*np.triu_indices(len(fit.names), 1)):
-        if abs(fit.correlation[i, j]) > 0.95:
-            warnings.append(f"{fit.names[i]} and {fit.names[j]} are correlated "
-                            f"({fit.correlation[i, j]:+.3f}): poorly separated")
-    result = RelaxationResult(
-        structure=crystal.summary(), zone=avg.zone, x_axis=avg.x_axis, kv=float(kv),
-        thickness_nm=thickness_nm, model=model, fit=fit, profiles=profiles,
-        strain_mid=fit.values[strain_idx], strain_mid_sigma=fit.sigmas[strain_idx],
-        average_strain=avg_strain, average_strain_sigma=avg_sigma, detector=fitted_det,
-        split=split, broadened=broadened, width_px=width, uniform_width_px=width_uniform,
-        table=table, warnings=warnings)
-    return result
+                       instrument_sigma_px=instrument_sigma_px, scan=scan)
+    return profiles, fit, detector, half_width_px
 
 
 def _average_fit(crystal, zone, detection, kv, calibration, x_axis, min_strength, warnings):
-    """One strain for the whole pattern: line assignment and start values.
+    """One strain for the whole pattern, and the fit whose loci the profiles follow.
 
-    Split lines can mislead a single-strain fit; when it does not converge
-    or returns a strain beyond 2 %, the assignment is made with the
-    reference cell (centre and rotation free) instead.
+    Returns (single-strain fit or None, fit giving centre, rotation and start
+    strain).  Split and broadened lines often leave a single-strain fit
+    imprecise; unless its strain is good to 1e-3, the profiles start from the
+    loci of the reference cell (centre and rotation fitted), which lie within
+    a few pixels of lines strained by a few 1e-3.
     """
     from .refine import refine_image
 
+    avg = None
     try:
         avg = refine_image(crystal, zone, detection, kv=kv, calibration=calibration,
                            x_axis=x_axis, min_strength=min_strength)
-        strain = [abs(avg.parameter(c)[0]) for c in STRAIN_COMPONENTS if c in avg.parameters]
-        if avg.converged and max(strain, default=0.0) < 0.02:
-            return avg
+        values = [avg.parameter(c) for c in STRAIN_COMPONENTS if c in avg.parameters]
+        if (avg.converged and max(abs(v) for v, _ in values) < _PLAUSIBLE_STRAIN / 4
+                and max(s for _, s in values) < 1e-3):
+            return avg, avg
     except InputError:
         pass
-    warnings.append("the single-strain fit of the detected lines failed or was implausible; "
-                    "lines were assigned with the reference cell")
-    return refine_image(crystal, zone, detection, kv=kv, calibration=calibration,
-                        x_axis=x_axis, min_strength=min_strength, model="fixed")
+    warnings.append("the single-strain fit of the detected lines is imprecise or failed; "
+                    "the profiles start from the loci of the reference cell")
+    return avg, refine_image(crystal, zone, detection, kv=kv, calibration=calibration,
+                             x_axis=x_axis, min_strength=min_strength, model="fixed")
 
 
 def _subset(profiles, mask):
@@ -1227,7 +1371,8 @@ def _subset(profiles, mask):
     return LineProfiles(profiles.hkl[idx], profiles.segment[idx], profiles.offset_px,
                         profiles.intensity[idx], profiles.sigma[idx],
                         [profiles.columns_px[i] for i in idx],
-                        [profiles.normals[i] for i in idx], profiles.n_columns[idx])
+                        [profiles.normals[i] for i in idx], profiles.n_columns[idx],
+                        [profiles.masks[i] for i in idx])
 
 
 # ---------------------------------------------------------------------------
