@@ -839,7 +839,7 @@ def fit_profiles(data, thickness_nm, model="cosh", *, table=None, start=None,
         room = 1e-9 * np.where(np.isfinite(hi - lo), hi - lo, 0.0)
         x0 = np.clip(x0, lo + room, hi - room)
         res = least_squares(sub.residuals, x0, jac=sub.jacobian, bounds=(lo, hi),
-                            x_scale="jac", max_nfev=max_nfev, method="trf")
+                            x_scale="jac", max_nfev=max_nfev, method="trf", tr_solver="lsmr")
         out = dict(x0_values)
         out.update(zip(sub.free, res.x))
         return out, res, sub
