@@ -568,7 +568,6 @@ class ProfileFit:
     success: bool
     message: str
     fitted: np.ndarray           # (p, k) model intensities
-    intrinsic: np.ndarray        # (p, k) model before the instrument blur, scaled like fitted
     uniform: np.ndarray          # (p, k) uniform-strain profile at the same strain and blur
     linear: np.ndarray           # (p, 3) background, slope, depth of each profile
     inflated: bool = False
@@ -603,9 +602,12 @@ class _Model:
         self.all_names = names
         self.free = [n for n in names if n not in self.fixed]
         d = data.offset_px
-        step = d[1] - d[0]
-        self.margin = np.arange(1, int(math.ceil(16.0 / step)) + 1) * step
-        self.d_ext = np.concatenate([d[0] - self.margin[::-1], d, d[-1] + self.margin])
+        # the blur maps a grid reaching four of the widest blurs beyond the samples,
+        # fine enough for the narrowest blur and the profile's fringes, onto the samples
+        half_width = float(np.max(np.abs(d)))
+        margin = 4.0 * _bounds(["instrument_sigma_px"], thickness_nm, half_width)[1][0]
+        step = 0.25
+        self.d_ext = np.arange(d[0] - margin, d[-1] + margin + 0.5 * step, step)
         self.z_nm = np.linspace(0.0, thickness_nm, n_slabs + 1)
         self.w = 1.0 / data.sigma
         self.engine = _ProfileEngine(data.s_at_offset[:, 1], self.d_ext, thickness_nm, n_slabs)
@@ -747,9 +749,9 @@ def _rigid_start(m, values, half_width_px):
     deficit = data.intensity.max(axis=1, keepdims=True) - data.intensity
     width = np.median(_fwhm(data.offset_px, deficit))
     v = dict(values, instrument_sigma_px=max(float(width) / _FWHM, 0.5))
-    grid = np.linspace(-0.8, 0.8, 65) * half_width_px            # px
+    grid = np.linspace(-0.8, 0.8, 41) * half_width_px            # px
     costs = np.empty((len(grid), len(slope)))
-    for j, step in enumerate(grid):                               # 65 evaluations
+    for j, step in enumerate(grid):                               # 41 evaluations
         r = m.evaluate(v, step * slope).reshape(len(slope), -1)
         costs[j] = np.sum(r * r, axis=1)
     best = grid[np.argmin(costs, axis=0)] * slope                 # (p,) extra shift, 1/A
@@ -839,7 +841,7 @@ def fit_profiles(data, thickness_nm, model="cosh", *, table=None, start=None,
         room = 1e-9 * np.where(np.isfinite(hi - lo), hi - lo, 0.0)
         x0 = np.clip(x0, lo + room, hi - room)
         res = least_squares(sub.residuals, x0, jac=sub.jacobian, bounds=(lo, hi),
-                            x_scale="jac", max_nfev=max_nfev, method="trf", tr_solver="lsmr")
+                            x_scale="jac", max_nfev=max_nfev, method="trf")
         out = dict(x0_values)
         out.update(zip(sub.free, res.x))
         return out, res, sub
@@ -913,15 +915,12 @@ def fit_profiles(data, thickness_nm, model="cosh", *, table=None, start=None,
     coef, _, _ = m.linear(blurred)
     design = m.design(blurred)
     fitted = np.einsum("pki,pi->pk", design, coef)
-    k0 = len(m.margin)
-    intrinsic = (coef[:, :1] + coef[:, 1:2] * data.offset_px
-                 - coef[:, 2:3] * intrinsic_ext[:, k0:k0 + len(data.offset_px)])
     uniform = coef[:, :1] + coef[:, 1:2] * data.offset_px - coef[:, 2:3] * m.blur(
         v, m.intrinsic(v, relax=False))
     success = bool(res.success) and np.all(np.isfinite(sigmas))
     message = res.message if success else f"the fit did not converge: {res.message}"
     return ProfileFit(model, names, x * units, sigmas, [PARAMETER_UNITS[n] for n in names],
-                      cov, corr, chi2, dof, success, str(message), fitted, intrinsic, uniform,
+                      cov, corr, chi2, dof, success, str(message), fitted, uniform,
                       coef, inflated, np.sqrt(np.maximum(np.diag(cov_stat), 0.0)),
                       float(shift_ratio))
 
