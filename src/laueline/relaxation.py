@@ -789,7 +789,12 @@ def fit_profiles(data, thickness_nm, model="cosh", *, table=None, start=None,
     :func:`scipy.optimize.least_squares` minimises the residuals whitened by
     the measured sigmas; the covariance of the nonlinear parameters is
     (J^T J)^-1 of the projected problem, scaled up by chi2/dof when that
-    exceeds 1.
+    exceeds 1.  A profile as a whole may also be moved by what the model
+    lacks (a neighbouring line's wing, a dynamical shift): the scatter of
+    each profile's own best position about the fitted one, over its
+    statistical sigma (a Birge ratio over profiles - rigid parameters),
+    scales the strain, centre and rotation uncertainties up when above 1;
+    ``sigmas_stat`` keeps the purely statistical values.
 
     For the ``cosh`` family the surface displacement is first located by a
     scan over its size and direction (the profile is not a convex function
@@ -833,7 +838,7 @@ def fit_profiles(data, thickness_nm, model="cosh", *, table=None, start=None,
                {k: values[k] for k in hold})
     names = m.free
 
-    def run(free_names, x0_values, fixed_extra, max_nfev):
+    def run(x0_values, fixed_extra, max_nfev):
         sub = _Model(data, thickness_nm, model, table, instrument_sigma_px, n_slabs,
                      {**m.fixed, **fixed_extra})
         x0 = np.array([x0_values[n] for n in sub.free])
@@ -853,28 +858,27 @@ def fit_profiles(data, thickness_nm, model="cosh", *, table=None, start=None,
     #    given start and from the scan; the lower cost wins
     rigid_fixed = {n: values[n] for n in shape_names}
     starts = [values] + ([_rigid_start(m, values, half_width)] if scan else [])
-    runs = [run(None, v0, rigid_fixed, 40) for v0 in starts]
+    runs = [run(v0, rigid_fixed, 40) for v0 in starts]
     values = min(runs, key=lambda r: r[1].cost)[0]
     # 2. scan the surface displacement (cosh): its sign is not observable (the
     #    profile of a symmetric displacement field is unchanged by u -> -u)
     if model == "cosh" and scan and not {"ux_nm", "uy_nm"} & set(m.fixed):
         g_len = float(np.median(np.linalg.norm(data.g_frame[:, :2], axis=1)))
         best = (np.inf, values["ux_nm"], values["uy_nm"])
-        cycles = np.array([0.2, 0.4, 0.7, 1.1, 1.6, 2.4])
+        cycles = np.array([0.1, 0.3, 0.6, 1.0, 1.6, 2.4])
         angles = np.radians(np.arange(0.0, 180.0, 22.5))
         amp = (cycles / (10.0 * g_len))[:, None]
-        ux = np.concatenate([[0.0], (amp * np.cos(angles)).ravel()])
-        uy = np.concatenate([[0.0], (amp * np.sin(angles)).ravel()])
-        for length in (thickness_nm / 6.0,):
-            for a, b in zip(ux, uy):
-                trial = dict(values, ux_nm=a, uy_nm=b, decay_length_nm=length)
-                cost = float(np.sum(m.residuals(np.array([trial[n] for n in names])) ** 2))
-                if cost < best[0]:
-                    best = (cost, a, b, length)
-        if len(best) == 4:
-            values.update(ux_nm=best[1], uy_nm=best[2], decay_length_nm=best[3])
+        # no zero amplitude: the decay length would then be undefined
+        ux, uy = (amp * np.cos(angles)).ravel(), (amp * np.sin(angles)).ravel()
+        length = thickness_nm / 6.0
+        for a, b in zip(ux, uy):
+            trial = dict(values, ux_nm=a, uy_nm=b, decay_length_nm=length)
+            cost = float(np.sum(m.residuals(np.array([trial[n] for n in names])) ** 2))
+            if cost < best[0]:
+                best = (cost, a, b)
+        values.update(ux_nm=best[1], uy_nm=best[2], decay_length_nm=length)
     # 3. everything together
-    values, res, _ = run(None, values, {}, 200)
+    values, res, _ = run(values, {}, 200)
     x = np.array([values[n] for n in names])
     if model == "cosh" and (values["ux_nm"], values["uy_nm"]) < (0.0, 0.0):
         idx = [names.index(n) for n in ("ux_nm", "uy_nm") if n in names]
@@ -925,7 +929,7 @@ def fit_profiles(data, thickness_nm, model="cosh", *, table=None, start=None,
                       float(shift_ratio))
 
 
-def _minima(profile, depth):
+def _minima(profile):
     """Resolved minima of a deficit profile (p, k): count per profile.
 
     A minimum counts when it is at least a quarter of the deepest one and
@@ -933,7 +937,7 @@ def _minima(profile, depth):
     tenth of the deepest (so a flat-bottomed or shouldered dip counts once).
     """
     counts = np.zeros(len(profile), dtype=int)
-    for i, (y, d) in enumerate(zip(profile, depth)):   # a handful of profiles, reporting only
+    for i, y in enumerate(profile):   # a few dozen profiles, reporting only
         base = np.max(y)
         deficit = base - y
         top = deficit.max()
@@ -1261,7 +1265,7 @@ def relaxation(crystal, zone, image, *, calibration, thickness_nm, model="cosh",
                        f"{_PLAUSIBLE_STRAIN:g}); the lines were probably misassigned")
     width = _fwhm(profiles.offset_px, fit.linear[:, :1] - fit.fitted)
     width_uniform = _fwhm(profiles.offset_px, fit.linear[:, :1] - fit.uniform)
-    split = _minima(fit.fitted, fit.linear[:, 2]) >= 2
+    split = _minima(fit.fitted) >= 2
     broadened = width > 1.25 * width_uniform
     if not fit.success:
         warnings.append(fit.message)
