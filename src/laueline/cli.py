@@ -531,9 +531,10 @@ def build_parser():
     p.add_argument("--thickness-nm", type=float, required=True, metavar="T",
                    help="foil thickness in nm (for example from 'laueline thickness')")
     shape = p.add_mutually_exclusive_group()
-    shape.add_argument("--model", choices=("uniform", "cosh"),
+    shape.add_argument("--model", choices=("uniform", "cosh", "relaxed-strain"),
                        help="relaxation through the foil: cosh (default; surface displacement "
-                            "decaying as cosh from the mid-plane) or uniform")
+                            "decaying as cosh from the mid-plane), relaxed-strain (the strain "
+                            "itself relaxing towards both surfaces) or uniform")
     shape.add_argument("--displacement-table", metavar="CSV",
                        help="relaxation from a table: z_nm with ux_nm, uy_nm, uz_nm or exz, "
                             "eyz, ezz (disk frame); its size is fitted")

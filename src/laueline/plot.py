@@ -293,14 +293,17 @@ def relaxation_figure(result, max_profiles=12):
             ax.set_ylabel("relative intensity", fontsize=7)
         ax.set_xlabel("offset (px)", fontsize=7)
     ax = axes[n]
-    z, slope, sigma = result.depth_profile()
-    for j, (name, colour) in enumerate((("x", _CROSSING), ("y", _RING))):
-        ax.plot(z, slope[:, j] * 1e3, color=colour, linewidth=1.2, label=f"du$_{name}$/dz")
-        ax.fill_between(z, (slope[:, j] - sigma[:, j]) * 1e3, (slope[:, j] + sigma[:, j]) * 1e3,
-                        color=colour, alpha=0.25, linewidth=0)
+    z, curves, sigma, labels = result.depth_profile()
+    factor = 1.0 if result.model == "relaxed-strain" else 1e3
+    for j, (label, colour) in enumerate(zip(labels, (_CROSSING, _RING))):
+        ax.plot(z, curves[:, j] * factor, color=colour, linewidth=1.2, label=label)
+        ax.fill_between(z, (curves[:, j] - sigma[:, j]) * factor,
+                        (curves[:, j] + sigma[:, j]) * factor, color=colour, alpha=0.25,
+                        linewidth=0)
     ax.axhline(0.0, color="#999999", linewidth=0.6)
     ax.set_xlabel("depth below entrance surface (nm)", fontsize=7)
-    ax.set_ylabel("relaxation du/dz (10$^{-3}$)", fontsize=7)
+    ax.set_ylabel("strain / mid-foil strain" if result.model == "relaxed-strain"
+                  else "relaxation du/dz (10$^{-3}$)", fontsize=7)
     ax.set_title(f"model {result.model}, t = {result.thickness_nm:g} nm", fontsize=8)
     ax.tick_params(labelsize=7)
     ax.legend(fontsize=7)

@@ -44,6 +44,13 @@ Relaxation families (w in the disk frame x, y, B):
     used in kinematic analyses of HOLZ line splitting in lamellae
     (Clement, Pantel, Kwakman and Rouviere 2004; Houdellier et al. 2006;
     both from memory).  Parameters ``ux_nm``, ``uy_nm``, ``decay_length_nm``.
+``relaxed-strain``
+    No displacement family but the strain itself relaxing towards both
+    surfaces: e(z) = e_mid f(z), f = 1 - r [cosh((z - t/2)/L) - 1] /
+    [cosh(t/(2L)) - 1], so the local excitation error is s + ds_mid f(z) and
+    g.u(z) = ds_mid integral_0^z f dz' (the surface layers draw a line nearer
+    the unstrained locus).  Parameters ``relaxed_fraction`` (r: 0 none, 1
+    fully relaxed surfaces) and ``decay_length_nm``.
 ``table``
     w(z) from a CSV table (:func:`read_displacement_table`), for example a
     finite-element model, times a fitted ``scale`` (1 = as given).
@@ -82,12 +89,13 @@ from .errors import InputError
 
 __all__ = ["MODELS", "RELAXATION_SCHEMA", "CAUTIONS", "DisplacementTable",
            "read_displacement_table", "relaxation_displacement", "kinematic_profile",
-           "excitation_errors", "strain_shifts", "LineProfiles", "measure_line_profiles",
+           "relaxed_strain_fraction", "relaxed_strain_phase_depth", "excitation_errors",
+           "strain_shifts", "LineProfiles", "measure_line_profiles",
            "ProfileData", "ProfileFit", "fit_profiles", "profile_data", "RelaxationResult",
            "relaxation", "LineAssessment", "assess_line_profiles", "line_shape_warning"]
 
 RELAXATION_SCHEMA = "laueline.relaxation/1"
-MODELS = ("uniform", "cosh", "table")
+MODELS = ("uniform", "cosh", "relaxed-strain", "table")
 STRAIN_COMPONENTS = ("exx", "eyy", "ezz", "eyz", "exz", "exy")
 _VOIGT = ((0, 0), (1, 1), (2, 2), (1, 2), (0, 2), (0, 1))
 _N_SLABS = 256           # depth slabs of the profile integral
@@ -105,8 +113,9 @@ CAUTIONS = (
 )
 
 PARAMETERS = {"uniform": (), "cosh": ("ux_nm", "uy_nm", "decay_length_nm"),
-              "table": ("scale",)}
+              "relaxed-strain": ("relaxed_fraction", "decay_length_nm"), "table": ("scale",)}
 PARAMETER_UNITS = {"ux_nm": "nm", "uy_nm": "nm", "decay_length_nm": "nm", "scale": "",
+                   "relaxed_fraction": "",
                    **{c: "" for c in STRAIN_COMPONENTS},
                    "center_x": "px", "center_y": "px", "rotation": "deg",
                    "instrument_sigma_px": "px"}
@@ -258,6 +267,30 @@ def relaxation_displacement(model, values, z_nm, thickness_nm, table=None):
             out[..., k] = scale * np.interp(z, table.z_nm, table.u_nm[:, k])
         return out
     raise InputError(f"unknown relaxation model '{model}'; choose one of {', '.join(MODELS)}")
+
+
+def relaxed_strain_fraction(fraction, decay_length_nm, z_nm, thickness_nm):
+    """f(z) of the ``relaxed-strain`` family: the strain at depth z over the mid-foil strain.
+
+    f = 1 - r [cosh((z - t/2)/L) - 1] / [cosh(t/(2L)) - 1]: 1 at mid-foil,
+    1 - r at both surfaces.
+    """
+    half = 0.5 * thickness_nm / decay_length_nm
+    x = 0.5 * (np.asarray(z_nm, dtype=float) - 0.5 * thickness_nm) / decay_length_nm
+    return 1.0 - fraction * (np.sinh(x) / math.sinh(0.5 * half)) ** 2
+
+
+def relaxed_strain_phase_depth(fraction, decay_length_nm, z_nm, thickness_nm):
+    """integral from t/2 to z of (f - 1) dz', nm, for :func:`relaxed_strain_fraction`.
+
+    Closed form -r [L sinh((z - t/2)/L) - (z - t/2)] / [cosh(t/(2L)) - 1]; the
+    phase of reflection g is then its mid-foil shift of the excitation error
+    times this depth.
+    """
+    length = float(decay_length_nm)
+    zc = np.asarray(z_nm, dtype=float) - 0.5 * thickness_nm
+    denom = 2.0 * math.sinh(0.25 * thickness_nm / length) ** 2      # cosh(t/2L) - 1
+    return -fraction * (length * np.sinh(zc / length) - zc) / denom
 
 
 # ---------------------------------------------------------------------------
@@ -613,7 +646,7 @@ class _Model:
         self.engine = _ProfileEngine(data.s_at_offset[:, 1], self.d_ext, thickness_nm, n_slabs)
         g_len = float(np.median(np.linalg.norm(data.g_frame[:, :2], axis=1)))
         # finite-difference steps: 1e-4 of a displacement of one cycle, of t, of a pixel
-        self.steps = {"ux_nm": 1e-5 / g_len, "uy_nm": 1e-5 / g_len,
+        self.steps = {"ux_nm": 1e-5 / g_len, "uy_nm": 1e-5 / g_len, "relaxed_fraction": 1e-4,
                       "decay_length_nm": 1e-4 * thickness_nm, "scale": 1e-4,
                       "instrument_sigma_px": 1e-4}
         self.upper = _bounds(self.free, thickness_nm, float(np.max(np.abs(data.offset_px))))[1]
@@ -628,7 +661,12 @@ class _Model:
         e = np.array([v[c] for c in STRAIN_COMPONENTS]) * _STRAIN_UNIT
         det = np.array([v["center_x"], v["center_y"], v["rotation"]])
         shift = data.strain_shift @ e + data.detector_shift @ det + extra_shift
-        if relax and self.shape_names:
+        if relax and self.model == "relaxed-strain":
+            # local excitation error s + ds_mid f(z): phase ds_mid integral (f - 1) dz
+            depth = relaxed_strain_phase_depth(v["relaxed_fraction"], v["decay_length_nm"],
+                                               self.z_nm, self.t)
+            gu = (data.strain_shift @ e)[:, None] * 10.0 * depth[None, :]
+        elif relax and self.shape_names:
             u = relaxation_displacement(self.model, [v[n] for n in self.shape_names],
                                         self.z_nm, self.t, self.table)
             gu = 10.0 * data.g_frame @ u.T      # 1/A times nm -> cycles
@@ -682,8 +720,13 @@ class _Model:
         rigid_names = list(STRAIN_COMPONENTS) + ["center_x", "center_y", "rotation"]
         h = 0.01 / (10.0 * self.t)                                      # 1/100 of 1/t
         d_shift = ((self.evaluate(v, h) - r0) / h).reshape(p, k)
+        shape_depends_on_strain = self.model == "relaxed-strain"
         for j, name in enumerate(self.free):
-            if name in rigid_names:
+            if name in STRAIN_COMPONENTS and shape_depends_on_strain:
+                vv = dict(v)
+                vv[name] = v[name] + 1e-3                               # 1e-6 strain
+                jac[:, j] = (self.evaluate(vv) - r0) / 1e-3
+            elif name in rigid_names:
                 jac[:, j] = (d_shift * rigid[:, rigid_names.index(name), None]).ravel()
             else:
                 step = self.steps[name] * (1.0 if x[j] <= self.upper[j] - self.steps[name]
@@ -703,6 +746,9 @@ def _bounds(names, thickness_nm, half_width_px):
         elif n == "instrument_sigma_px":
             lo.append(0.2)
             hi.append(max(0.25 * half_width_px, 0.5))
+        elif n == "relaxed_fraction":
+            lo.append(-1.0)
+            hi.append(2.0)
         elif n == "scale":
             lo.append(-10.0)
             hi.append(10.0)
@@ -831,7 +877,7 @@ def fit_profiles(data, thickness_nm, model="cosh", *, table=None, start=None,
     values = {c: 0.0 for c in STRAIN_COMPONENTS}
     values.update(center_x=0.0, center_y=0.0, rotation=0.0)
     values.update({"ux_nm": 0.0, "uy_nm": 0.0, "decay_length_nm": thickness_nm / 5.0,
-                   "scale": 1.0, "instrument_sigma_px": 1.0})
+                   "scale": 1.0, "instrument_sigma_px": 1.0, "relaxed_fraction": 0.5})
     for k, v in start.items():
         values[k] = v / _STRAIN_UNIT if k in STRAIN_COMPONENTS else float(v)
     m = _Model(data, thickness_nm, model, table, instrument_sigma_px, n_slabs,
@@ -877,6 +923,15 @@ def fit_profiles(data, thickness_nm, model="cosh", *, table=None, start=None,
             if cost < best[0]:
                 best = (cost, a, b)
         values.update(ux_nm=best[1], uy_nm=best[2], decay_length_nm=length)
+    if model == "relaxed-strain" and scan and "relaxed_fraction" not in m.fixed:
+        best = (np.inf, 0.5, thickness_nm / 6.0)
+        for frac in (0.25, 0.5, 0.75, 1.0):
+            for length in (thickness_nm / 12.0, thickness_nm / 6.0, thickness_nm / 3.0):
+                trial = dict(values, relaxed_fraction=frac, decay_length_nm=length)
+                cost = float(np.sum(m.residuals(np.array([trial[n] for n in names])) ** 2))
+                if cost < best[0]:
+                    best = (cost, frac, length)
+        values.update(relaxed_fraction=best[1], decay_length_nm=best[2])
     # 3. everything together
     values, res, _ = run(values, {}, 200)
     x = np.array([values[n] for n in names])
@@ -1006,25 +1061,33 @@ class RelaxationResult:
                 [self.fit.units[i] for i in idx])
 
     def depth_profile(self, n=101):
-        """Depths (nm), the relaxation strain du/dz (disk frame x, y; (n, 2)) and its sigma.
+        """The fitted relaxation against depth, with 1-sigma bands.
 
-        du/dz is twice the tensor shear e_xz, e_yz of the relaxation (disk
-        frame, z toward the source) added to the mid-foil strain; its
-        uncertainty is propagated from the covariance by finite differences.
+        Returns (z_nm (n,), curves (n, m), sigmas (n, m), labels): for the
+        displacement families du/dz of the relaxation in the disk frame x and y
+        (twice the tensor shears e_xz, e_yz added to the mid-foil strain); for
+        ``relaxed-strain`` the strain at depth over the mid-foil strain.
+        Uncertainties are propagated from the covariance by finite differences.
         """
         z = np.linspace(0.0, self.thickness_nm, n)
-        names, values, _, _ = self.parameters
-        shape = [nm for nm in names if nm in PARAMETERS[self.model]]
+        shape = [nm for nm in self.fit.names if nm in PARAMETERS[self.model]]
         idx = [self.fit.names.index(nm) for nm in shape]
+        if self.model == "relaxed-strain":
+            labels = ["e(z) / e_mid"]
 
-        def slope(vals):
-            u = relaxation_displacement(self.model, vals, z, self.thickness_nm, self.table)
-            return np.gradient(u[:, :2], z, axis=0)
+            def curves(vals):
+                return relaxed_strain_fraction(vals[0], vals[1], z, self.thickness_nm)[:, None]
+        else:
+            labels = ["du_x/dz", "du_y/dz"]
+
+            def curves(vals):
+                u = relaxation_displacement(self.model, vals, z, self.thickness_nm, self.table)
+                return np.gradient(u[:, :2], z, axis=0)
 
         base = np.asarray([self.fit.values[i] for i in idx], dtype=float)
-        grad = slope(base)
+        values = curves(base)
         if not idx:
-            return z, grad, np.zeros_like(grad)
+            return z, values, np.zeros_like(values), labels
         cov = self.fit.covariance[np.ix_(idx, idx)]
         jac = []
         for k in range(len(idx)):
@@ -1032,10 +1095,10 @@ class RelaxationResult:
                            else 1e-3)
             step = base.copy()
             step[k] += h
-            jac.append((slope(step) - grad) / h)
-        jac = np.stack(jac, axis=-1)                         # (n, 2, q)
+            jac.append((curves(step) - values) / h)
+        jac = np.stack(jac, axis=-1)                         # (n, m, q)
         var = np.einsum("nij,jk,nik->ni", jac, cov, jac)
-        return z, grad, np.sqrt(np.maximum(var, 0.0))
+        return z, values, np.sqrt(np.maximum(var, 0.0)), labels
 
     def to_dict(self):
         """The ``laueline.relaxation/1`` document."""
@@ -1057,7 +1120,7 @@ class RelaxationResult:
                 "depth": float(self.fit.linear[i, 2]),
                 "columns_px": p.columns_px[i][[0, -1]].tolist(),
             })
-        z, slope, slope_sigma = self.depth_profile(41)
+        z, curves, curve_sigma, labels = self.depth_profile(41)
         det = self.detector
         return {
             "schema": RELAXATION_SCHEMA,
@@ -1077,9 +1140,8 @@ class RelaxationResult:
             "fit_parameters": {"names": self.fit.names, "values": self.fit.values,
                                "sigmas": self.fit.sigmas, "units": self.fit.units},
             "correlation": self.fit.correlation,
-            "depth_profile": {"z_nm": z, "dudz_x": slope[:, 0], "dudz_y": slope[:, 1],
-                              "dudz_x_sigma": slope_sigma[:, 0],
-                              "dudz_y_sigma": slope_sigma[:, 1], "frame": "disk (x, y)"},
+            "depth_profile": {"z_nm": z, "quantities": labels, "values": curves.T,
+                              "sigmas": curve_sigma.T, "frame": "disk (x, y, beam)"},
             "lines": lines,
             "n_split": int(np.sum(self.split)), "n_broadened": int(np.sum(self.broadened)),
             "chi2": self.fit.chi2, "dof": self.fit.dof,
