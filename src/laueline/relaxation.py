@@ -945,7 +945,8 @@ def fit_profiles(data, thickness_nm, model="cosh", *, table=None, start=None,
     scale = np.linalg.norm(jac, axis=0)
     if np.any(scale == 0):
         dead = [names[j] for j in np.flatnonzero(scale == 0)]
-        raise InputError(f"degenerate fit: the profiles do not depend on {', '.join(dead)}")
+        raise InputError(f"degenerate fit: the profiles do not depend on {', '.join(dead)}; "
+                         "hold it, or fit --model uniform when the lines show no relaxation")
     _, sv, vt = np.linalg.svd(jac / scale, full_matrices=False)
     cov = (vt.T / np.maximum(sv, 1e-300) ** 2) @ vt / np.outer(scale, scale)
     inflated = dof > 0 and chi2 > dof
@@ -1220,12 +1221,15 @@ def relaxation(crystal, zone, image, *, calibration, thickness_nm, model="cosh",
 
     Steps: detect the lines (:func:`laueline.images.detect.detect_lines`);
     fit one strain to them with the calibration held
-    (:func:`laueline.refine.refine_image`), which assigns the lines and gives
-    the start values; measure the profile across each assigned line along
-    its predicted exact locus (:func:`measure_line_profiles`); fit the
+    (:func:`laueline.refine.refine_image`), which gives the pattern centre,
+    rotation and start strain (when that strain is imprecise, as split lines
+    often make it, the reference cell's loci are used instead); measure the
+    profile across every predicted line along its exact locus, in stretches
+    (:func:`measure_line_profiles`), leaving out those too weak; fit the
     mid-foil strain, the pattern centre and rotation, the relaxation
     parameters and the instrument blur to all profiles at once
-    (:func:`fit_profiles`).
+    (:func:`fit_profiles`); then measure and fit once more along the loci of
+    the fitted mid-foil strain, so that no locus runs askew to its line.
 
     Parameters
     ----------
@@ -1320,6 +1324,17 @@ def relaxation(crystal, zone, image, *, calibration, thickness_nm, model="cosh",
     fitted_det = det.replace(center_px=(det.center_px[0] + v["center_x"],
                                         det.center_px[1] + v["center_y"]),
                              rotation_deg=det.rotation_deg + v["rotation"])
+    lo, hi = _bounds(fit.names, thickness_nm, float(np.max(np.abs(profiles.offset_px))))
+    at_bound = [n for n, v, a, b in zip(fit.names, fit.values, lo, hi)
+                if np.isfinite(a) and (v <= a + 1e-6 * (b - a) or v >= b - 1e-6 * (b - a))]
+    if at_bound:
+        warnings.append(f"{', '.join(at_bound)} ended at the edge of the allowed range: the "
+                        "model hardly describes these profiles")
+    if fit.dof > 0 and fit.chi2 / fit.dof > _PLAUSIBLE_CHI2_PER_DOF:
+        fit.success = False
+        fit.message = (f"implausible: chi-square per degree of freedom {fit.chi2 / fit.dof:.1f} "
+                       f"(above {_PLAUSIBLE_CHI2_PER_DOF:g}): the {model} model does not "
+                       "describe these profiles; try another --model")
     if np.max(np.abs(fit.values[strain_idx])) >= _PLAUSIBLE_STRAIN:
         fit.success = False
         fit.message = (f"implausible: a mid-foil strain component of "
@@ -1355,6 +1370,9 @@ def relaxation(crystal, zone, image, *, calibration, thickness_nm, model="cosh",
 
 
 _PLAUSIBLE_STRAIN = 0.02   # beyond 2 % a single HOLZ pattern's kinematic fit is not credible
+# the profiles' own scatter sets their sigmas, so a right model gives chi2/dof near 1;
+# dynamical effects add a little; five times that is a wrong model (common practice)
+_PLAUSIBLE_CHI2_PER_DOF = 5.0
 
 
 def _profile_pass(detector, strain, start, half_width_px, scan, warnings, *, image, crystal,
