@@ -543,7 +543,10 @@ def measure_line_profiles(image, loci_px, hkl, disk_center_px, disk_radius_px, *
             out["hkl"].append(hkl[i])
             out["segment"].append(k)
             out["intensity"].append(np.nanmean(v, axis=0))
-            out["sigma"].append(np.nanstd(v, axis=0, ddof=1) / np.sqrt(count))
+            # a noise-free image leaves only rounding in the scatter: floor at 1e-4 of
+            # the flank level (16-bit quantisation of a bright disk)
+            out["sigma"].append(np.maximum(np.nanstd(v, axis=0, ddof=1) / np.sqrt(count),
+                                           1e-4))
             out["columns"].append(pts[idx][used])
             out["normals"].append(normal[idx][used])
             out["n"].append(int(count.min()))
