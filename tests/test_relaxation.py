@@ -138,7 +138,7 @@ def test_symmetric_relaxation_gives_symmetric_split_profile():
 def test_fit_engine_matches_profile_integral():
     # the fit evaluates profiles on fixed grids with a precomputed phase table;
     # it must agree with the direct slab sum (itself checked against quad above)
-    from laueline.relaxation import _ProfileEngine
+    from laueline.relaxation.profile import _ProfileEngine
 
     t_nm = 250.0
     z = np.linspace(0.0, t_nm, 257)
