@@ -356,6 +356,42 @@ def _cmd_thickness(args):
     return 0
 
 
+def _cmd_relaxation(args):
+    from . import report
+    from .images.io import read_image
+    from .refine import calibration_from_document
+    from .relaxation import read_displacement_table, relaxation, relaxation_text
+
+    report.check_outputs([args.json], args.force, args.figure)
+    crystal = _load_crystal(args)
+    table = None
+    model = args.model or "cosh"
+    if args.displacement_table:
+        table = read_displacement_table(args.displacement_table, args.thickness_nm)
+        model = "table"
+    calibration = calibration_from_document(report.read_json(args.calibration, "laueline.fit"))
+    image, _ = read_image(args.image)
+    result = relaxation(crystal, args.zone, image, calibration=calibration,
+                        thickness_nm=args.thickness_nm, model=model, table=table,
+                        x_axis=args.x_axis, min_strength=args.min_strength,
+                        half_width_px=args.half_width_px, segments=args.segments,
+                        instrument_sigma_px=args.instrument_sigma_px, disk_px=args.disk_px)
+    print(relaxation_text(result))
+
+    def figure():
+        from .plot import relaxation_figure
+
+        return relaxation_figure(result)
+
+    document = result.to_dict()
+    document.update(image=str(args.image), calibration=str(args.calibration))
+    _finish(args, document, figure)
+    if not result.success:
+        sys.stderr.write(f"laueline: {result.fit.message}\n")
+        return EXIT_NOT_CONVERGED
+    return 0
+
+
 def _cmd_survey(args):
     from . import report
     from .survey import survey
@@ -707,6 +743,44 @@ def build_parser():
                    help="force the index of the first fringe instead of searching")
     _add_output_options(p)
     p.set_defaults(run=_cmd_thickness)
+
+    p = sub.add_parser("relaxation", help="fit split or broadened lines of a thin lamella",
+                       description="Fit the profiles of the HOLZ lines of one pattern to the "
+                                   "strain at mid-foil and its relaxation through the foil "
+                                   "(kinematic line-profile model), with the voltage and "
+                                   "camera scale of a reference calibration held.")
+    p.add_argument("structure", help="CIF file or bundled structure name")
+    p.add_argument("--zone", nargs=3, type=int, required=True, metavar=("U", "V", "W"),
+                   help="zone axis [u v w], pointing toward the source")
+    p.add_argument("--x-axis", nargs=3, type=int, metavar=("H", "K", "L"),
+                   help="reflection fixing the disk x direction (default: as 'predict')")
+    p.add_argument("--b-iso", type=float, metavar="B",
+                   help="one isotropic B in A^2 for all atoms")
+    p.add_argument("--image", required=True, metavar="FILE", help="the pattern (TIFF, PNG, .npy)")
+    p.add_argument("--calibration", required=True, metavar="CAL.json",
+                   help="reference fit ('laueline refine ... --json'): voltage and scale held")
+    p.add_argument("--thickness-nm", type=float, required=True, metavar="T",
+                   help="foil thickness in nm (for example from 'laueline thickness')")
+    shape = p.add_mutually_exclusive_group()
+    shape.add_argument("--model", choices=("uniform", "cosh", "relaxed-strain"),
+                       help="relaxation through the foil: cosh (default; surface displacement "
+                            "decaying as cosh from the mid-plane), relaxed-strain (the strain "
+                            "itself relaxing towards both surfaces) or uniform")
+    shape.add_argument("--displacement-table", metavar="CSV",
+                       help="relaxation from a table: z_nm with ux_nm, uy_nm, uz_nm or exz, "
+                            "eyz, ezz (disk frame); its size is fitted")
+    p.add_argument("--half-width-px", type=float, metavar="W",
+                   help="half-width of each profile (default: from the thickness)")
+    p.add_argument("--instrument-sigma-px", type=float, metavar="S",
+                   help="Gaussian blur of a line by the instrument, px (default: fitted)")
+    p.add_argument("--segments", type=int, default=2,
+                   help="profiles per line, taken along stretches of it (2)")
+    p.add_argument("--min-strength", type=float, default=0.1,
+                   help="weaker lines are neither profiled nor kept clear of (0.1)")
+    p.add_argument("--disk-px", nargs=3, type=float, metavar=("X", "Y", "R"),
+                   help="disk centre and radius in px instead of finding it")
+    _add_output_options(p)
+    p.set_defaults(run=_cmd_relaxation)
 
     p = sub.add_parser("survey", help="rank zone axes by the strain precision they deliver",
                        description="Rank zone axes by the predicted precision of the strain "

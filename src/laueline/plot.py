@@ -22,9 +22,9 @@ from __future__ import annotations
 import numpy as np
 
 
-__all__ = ["pattern_figure", "fit_figure", "thickness_figure", "survey_figure", "robust_log_limits",
-           "survey_map_coordinates", "detection_figure", "map_figure", "save_figure",
-           "style_figure", "draw_disk_lines", "hkl_label", "PALETTE"]
+__all__ = ["pattern_figure", "fit_figure", "thickness_figure", "relaxation_figure",
+           "survey_figure", "robust_log_limits", "survey_map_coordinates", "detection_figure",
+           "map_figure", "save_figure", "style_figure", "draw_disk_lines", "hkl_label", "PALETTE"]
 
 PALETTE = {
     "paper": "#fbf9f4",      # figure background
@@ -477,6 +477,55 @@ def thickness_figure(result):
         ap.set_xlabel("position along g")
         ap.set_ylabel("intensity")
         ap.set_title("profile: disks, Bragg line and dark fringes", fontsize=10)
+    return fig
+
+
+def relaxation_figure(result, max_profiles=12):
+    """Measured and fitted profile of each line, and the fitted relaxation against depth.
+
+    Each small panel shows one measured profile (points with 1-sigma bars),
+    the fit with the relaxation (solid) and a line of the same strain but
+    uniform through the foil (dashed); the last panel shows du/dz of the
+    relaxation (disk frame x and y, with 1-sigma bands) against depth.
+    """
+    p = result.profiles
+    n = min(len(p), max_profiles)
+    ncols = 4
+    nrows = -(-(n + 1) // ncols)
+    fig = _new_figure(2.6 * ncols, 2.2 * nrows + 0.3)
+    axes = np.atleast_1d(fig.subplots(nrows, ncols)).ravel()
+    d = p.offset_px
+    for k in range(n):
+        ax = axes[k]
+        ax.errorbar(d, p.intensity[k], yerr=p.sigma[k], fmt=".", markersize=2, color="#555555",
+                    elinewidth=0.5, capsize=0)
+        ax.plot(d, result.fit.fitted[k], color=_CROSSING, linewidth=1.2)
+        ax.plot(d, result.fit.uniform[k], color=_LINE, linewidth=0.8, linestyle=(0, (4, 2)))
+        tag = "split" if result.split[k] else ("broadened" if result.broadened[k] else "")
+        ax.set_title(f"{hkl_label(p.hkl[k])} part {p.segment[k] + 1} {tag}", fontsize=8)
+        ax.tick_params(labelsize=7)
+        if k % ncols == 0:
+            ax.set_ylabel("relative intensity", fontsize=7)
+        ax.set_xlabel("offset (px)", fontsize=7)
+    ax = axes[n]
+    z, curves, sigma, labels = result.depth_profile()
+    factor = 1.0 if result.model == "relaxed-strain" else 1e3
+    for j, (label, colour) in enumerate(zip(labels, (_CROSSING, _RING))):
+        ax.plot(z, curves[:, j] * factor, color=colour, linewidth=1.2, label=label)
+        ax.fill_between(z, (curves[:, j] - sigma[:, j]) * factor,
+                        (curves[:, j] + sigma[:, j]) * factor, color=colour, alpha=0.25,
+                        linewidth=0)
+    ax.axhline(0.0, color="#999999", linewidth=0.6)
+    ax.set_xlabel("depth below entrance surface (nm)", fontsize=7)
+    ax.set_ylabel("strain / mid-foil strain" if result.model == "relaxed-strain"
+                  else "relaxation du/dz (10$^{-3}$)", fontsize=7)
+    ax.set_title(f"model {result.model}, t = {result.thickness_nm:g} nm", fontsize=8)
+    ax.tick_params(labelsize=7)
+    ax.legend(fontsize=7)
+    for extra in axes[n + 1:]:
+        extra.set_visible(False)
+    fig.suptitle("line profiles (kinematic model): measured, fitted, uniform strain (dashed)",
+                 fontsize=9)
     return fig
 
 
