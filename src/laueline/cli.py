@@ -359,7 +359,7 @@ def _cmd_thickness(args):
 def _cmd_relaxation(args):
     from . import report
     from .images.io import read_image
-    from .refine import calibration_from_document
+    from .fit import Calibration
     from .relaxation import read_displacement_table, relaxation, relaxation_text
 
     report.check_outputs([args.json], args.force, args.figure)
@@ -369,11 +369,13 @@ def _cmd_relaxation(args):
     if args.displacement_table:
         table = read_displacement_table(args.displacement_table, args.thickness_nm)
         model = "table"
-    calibration = calibration_from_document(report.read_json(args.calibration, "laueline.fit"))
+    cal = Calibration.from_document(report.read_json(args.calibration, "laueline.fit"),
+                                    source=args.calibration)
+    calibration = (cal.kv, cal.detector)
     image, _ = read_image(args.image)
     result = relaxation(crystal, args.zone, image, calibration=calibration,
                         thickness_nm=args.thickness_nm, model=model, table=table,
-                        x_axis=args.x_axis, min_strength=args.min_strength,
+                        x_axis=args.x_axis, min_strength=args.profile_min_strength,
                         half_width_px=args.half_width_px, segments=args.segments,
                         instrument_sigma_px=args.instrument_sigma_px, disk_px=args.disk_px)
     print(relaxation_text(result))
@@ -775,8 +777,9 @@ def build_parser():
                    help="Gaussian blur of a line by the instrument, px (default: fitted)")
     p.add_argument("--segments", type=int, default=2,
                    help="profiles per line, taken along stretches of it (2)")
-    p.add_argument("--min-strength", type=float, default=0.1,
-                   help="weaker lines are neither profiled nor kept clear of (0.1)")
+    p.add_argument("--profile-min-strength", type=float, default=0.1,
+                   help="weaker lines are neither profiled nor kept clear of (0.1; a "
+                        "profile needs more contrast than a line position)")
     p.add_argument("--disk-px", nargs=3, type=float, metavar=("X", "Y", "R"),
                    help="disk centre and radius in px instead of finding it")
     _add_output_options(p)

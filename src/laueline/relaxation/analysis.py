@@ -250,7 +250,7 @@ def relaxation(crystal, zone, image, *, calibration, thickness_nm, model="cosh",
     zone : sequence of 3 int
     image : ndarray (rows, cols)
     calibration : (kv, Detector)
-        From a reference fit (:func:`laueline.refine.calibration_from_document`);
+        From a reference fit (:class:`laueline.fit.Calibration`);
         the voltage and the scale are held.
     thickness_nm : float
         Foil thickness (for example from :mod:`laueline.thickness`).
