@@ -35,9 +35,11 @@ def _new_figure(width, height):
     return Figure(figsize=(width, height), layout="constrained")
 
 
-def save_figure(fig, path):
-    """Save a figure; the format follows the file suffix."""
-    fig.savefig(path, dpi=150)
+def save_figure(fig, path, force=False):
+    """Save a figure atomically; the format follows the file suffix (see laueline.io.outputs)."""
+    from .io.outputs import save_figure as write
+
+    write(fig, path, force=force)
 
 
 def _halo():
