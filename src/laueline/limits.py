@@ -38,12 +38,19 @@ class Range:
     def describe(self):
         lo = "(" if self.low_open else "["
         hi = ")" if self.high_open else "]"
-        return f"{lo}{self.low:g}, {self.high:g}{hi}"
+        return f"{lo}{_number(self.low)}, {_number(self.high)}{hi}"
 
     def contains(self, v):
         above = v > self.low if self.low_open else v >= self.low
         below = v < self.high if self.high_open else v <= self.high
         return above and below
+
+
+def _number(v):
+    """Integers as integers (up to 2^63), the rest in %g."""
+    if math.isfinite(v) and v == int(v) and abs(v) < 2 ** 63:
+        return str(int(v))
+    return f"{v:g}"
 
 
 _INDEX = Range(-99, 99, "Miller indices and zone axes beyond 99 describe no usable "
@@ -96,8 +103,12 @@ RANGES = {
     "fringes_px": Range(0.0, 1e6, "fringe distances are positive", low_open=True),
     "position_sigma_px": Range(0.0, 1e6, "an uncertainty is positive", low_open=True),
     "first_index": Range(1, 1000, "fringes are counted from 1"),
+    # the same quantities under the library's parameter names
+    "first_fringe_index": Range(1, 1000, "fringes are counted from 1"),
+    "fringes_sigma": Range(0.0, 1e6, "an uncertainty is positive", low_open=True),
+    "separation_sigma": Range(0.0, 1e6, "an uncertainty is positive", low_open=True),
     # rendering
-    "size": Range(16, 16384, "images from 16 to 16384 px a side"),
+    "size": Range(32, 4096, "rendered images are 32 to 4096 px a side"),
     "line_width_mrad": Range(0.0, 10.0, "a line width is positive and below 10 mrad",
                              low_open=True),
     "line_depth": Range(0.0, 1.0, "a line removes between none and all of the intensity"),
@@ -106,7 +117,7 @@ RANGES = {
     "background_angle_deg": Range(-360.0, 360.0, "an angle lies within one turn"),
     "blur_px": Range(0.0, 100.0, "a detector blur is at most 100 px"),
     "dose": Range(0.0, 1e12, "counts per pixel from 0 (no noise) to 1e12"),
-    "seed": Range(0, 2 ** 63 - 1, "a noise seed is a non-negative integer"),
+    "seed": Range(0, 2 ** 32 - 1, "a noise seed is a non-negative integer"),
 }
 
 
@@ -140,7 +151,7 @@ def check_value(name, value, label=None):
                          f"{' '.join(f'{v:g}' for v in values)}")
     bad = [v for v in values if not limit.contains(v)]
     if bad:
-        raise InputError(f"{label} = {bad[0]:g} is outside {limit.describe()}: {limit.reason}")
+        raise InputError(f"{label} = {_number(bad[0])} is outside {limit.describe()}: {limit.reason}")
     if limit.nonzero_vector and values.size > 1 and not np.any(values):
         raise InputError(f"{label} must not be all zeros")
 

@@ -41,6 +41,7 @@ import numpy as np
 
 from .crystal import MAX_REFLECTIONS, Crystal
 from .errors import InputError
+from .limits import check_inputs
 from .frame import ZoneFrame, default_x_axis, frame_rotations, reduce_indices, zone_frame
 from .optics import Beam, make_beam
 
@@ -462,6 +463,7 @@ def predict(crystal, zone, kv=200.0, disk_mrad=6.0, *, x_axis=None, gmax=4.0,
     -------
     Pattern
     """
+    check_inputs(min_strength=min_strength, min_angle_deg=min_angle_deg)
     disk_mrad = float(disk_mrad)
     if not math.isfinite(disk_mrad) or disk_mrad <= 0:
         raise InputError(f"the disk radius must be positive, got {disk_mrad:g} mrad")

@@ -42,6 +42,7 @@ import numpy as np
 from .crystal import basis_from_cell, cell_from_basis
 from .detector import Detector, rotation_matrix
 from .errors import InputError
+from .limits import check_inputs
 from .frame import default_x_axis, reduce_indices
 from .lines import (crossing_angles_deg, crossing_positions, line_parameters_batch,
                     locus_distances, predict)
@@ -299,6 +300,9 @@ def refine(crystal, zone, points, *, kv=200.0, model="strain", x_axis=None, free
     -------
     FitResult
     """
+    check_inputs(rotation_deg=rotation_deg, scale_px_per_mrad=scale_px_per_mrad,
+                 center_px=center_px, match_mrad=match_mrad, min_strength=min_strength,
+                 min_angle_deg=min_angle_deg)
     if len(points) == 0:
         raise InputError("no points to fit")
     n = len(points)
