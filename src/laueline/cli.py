@@ -29,8 +29,14 @@ class _Parser(argparse.ArgumentParser):
         sys.exit(EXIT_INPUT)
 
 
+def _add_block_option(p):
+    p.add_argument("--block", metavar="NAME",
+                   help="the CIF data block to read (data_NAME), when the file holds several")
+
+
 def _add_crystal_options(p):
     p.add_argument("structure", help="CIF file or bundled structure name (see 'laueline structures')")
+    _add_block_option(p)
     p.add_argument("--zone", nargs=3, type=int, required=True, metavar=("U", "V", "W"),
                    help="zone axis [u v w], pointing toward the source")
     p.add_argument("--kv", type=float, default=200.0, help="accelerating voltage in kV (200)")
@@ -75,7 +81,7 @@ def _finish(args, document=None, figure=None, extra=()):
 def _load_crystal(args):
     from .crystal import read_crystal
 
-    crystal = read_crystal(args.structure)
+    crystal = read_crystal(args.structure, block=getattr(args, "block", None))
     if getattr(args, "b_iso", None) is not None:
         crystal = crystal.with_b_iso(args.b_iso)
     return crystal
@@ -457,6 +463,7 @@ def build_parser():
                                    "Allen 1981).")
     p.add_argument("structure", nargs="?",
                    help="CIF file or bundled structure (with --hkl)")
+    _add_block_option(p)
     p.add_argument("--hkl", nargs=3, type=int, metavar=("H", "K", "L"),
                    help="the reflection excited in two-beam condition")
     p.add_argument("--d-spacing-A", dest="d_spacing_A", type=float, metavar="D",
@@ -483,6 +490,7 @@ def build_parser():
                                    "after a reference calibration (centre and rotation free, "
                                    "voltage and scale held).")
     p.add_argument("structure", help="CIF file or bundled structure name")
+    _add_block_option(p)
     p.add_argument("--kv", type=float, default=200.0, help="accelerating voltage in kV (200)")
     p.add_argument("--disk-mrad", type=float, default=6.0,
                    help="convergence semi-angle in mrad (6)")
@@ -646,6 +654,8 @@ def _check_conflicts(args, given, labels):
                       "the structure is only used with --hkl; give one")
         if args.d_spacing_A is not None and args.b_iso is not None:
             _conflict("--d-spacing-A", "--b-iso", "B needs a structure with --hkl")
+        if args.block is not None and args.structure is None:
+            _conflict("--block", "no structure", "a data block is chosen in a CIF file")
         if args.profile and args.position_sigma_px is not None:
             _conflict("--profile", "--position-sigma-px",
                       "a profile's fringe uncertainties come from the profile itself")

@@ -469,7 +469,7 @@ def read_crystal(source, *, name=None, block=None):
         raise InputError(f"{label}: no data block with a unit cell (_cell_length_a)")
     names = [b.name for b in blocks]
     if block is not None:
-        chosen = [b for b in blocks if b.name == str(block)]
+        chosen = [b for b in blocks if b.name.lower() == str(block).lower()]
         if not chosen:
             raise InputError(f"{label}: no data block named '{block}' with a unit cell "
                              f"(blocks: {', '.join(names)})")

@@ -46,8 +46,11 @@ _H2_OVER_2PI_M0_E_VA2 = _c.h ** 2 / (2 * math.pi * _c.m_e * _c.e) * 1e20  # V an
 def _check_kv(kv):
     from .limits import check_value
 
+    kv = float(kv)
+    if not math.isfinite(kv) or kv <= 0:
+        raise InputError(f"the accelerating voltage must be positive, got {kv:g} kV")
     check_value("kv", kv)
-    return float(kv)
+    return kv
 
 
 def wavelength_A(kv):
