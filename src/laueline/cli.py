@@ -643,6 +643,10 @@ def _conflict(a, b, why):
     raise InputError(f"{a} and {b} cannot be used together: {why}")
 
 
+def _ignored(option, why):
+    raise InputError(f"{option} would be ignored: {why}")
+
+
 def _check_conflicts(args, given, labels):
     """Options that contradict each other or that the command would ignore."""
     cmd = args.command
@@ -655,7 +659,7 @@ def _check_conflicts(args, given, labels):
         if args.d_spacing_A is not None and args.b_iso is not None:
             _conflict("--d-spacing-A", "--b-iso", "B needs a structure with --hkl")
         if args.block is not None and args.structure is None:
-            _conflict("--block", "no structure", "a data block is chosen in a CIF file")
+            _ignored("--block", "a data block is chosen in a structure's CIF file")
         if args.profile and args.position_sigma_px is not None:
             _conflict("--profile", "--position-sigma-px",
                       "a profile's fringe uncertainties come from the profile itself")
@@ -664,12 +668,11 @@ def _check_conflicts(args, given, labels):
             x, y = args.center_px
             width, height = args.size
             if not (0 <= x < width and 0 <= y < height):
-                _conflict("--center-px", "--size",
-                          f"the pattern centre ({x:g}, {y:g}) lies outside the "
-                          f"{width} x {height} px image")
+                raise InputError(f"--center-px {x:g} {y:g} lies outside the {width} x "
+                                 f"{height} px image of --size; the pattern would be blank")
     elif cmd == "predict":
         if args.mark_crossings and not args.figure:
-            _conflict("--mark-crossings", "no --figure", "crossings are marked in a figure")
+            _ignored("--mark-crossings", "crossings are marked in a figure; add --figure PATH")
     elif cmd == "refine":
         if args.points is not None and args.disk_px is not None:
             _conflict("--disk-px", "--points", "the disk is only searched for in an --image")

@@ -105,8 +105,9 @@ def check_outputs(paths, force=False, figure=None, inputs=()):
     for path in items:
         key = os.path.realpath(path)
         if key in seen:
-            raise InputError(f"{seen[key]} and {path} name the same output file; "
-                             "give each output its own name")
+            same = (f"{path} is named for two outputs" if str(seen[key]) == str(path)
+                    else f"{seen[key]} and {path} name the same output file")
+            raise InputError(f"{same}; give each output its own name")
         seen[key] = path
         if path.name in ("", ".", "..") or str(path).endswith(os.sep):
             raise InputError(f"cannot write {path}: it names a folder, not a file")
