@@ -137,7 +137,7 @@ CASES = (
     _numbers(PREDICT, "--kv", "nan", "inf", "-inf", "-200", "0", "0.001", "1e7", "abc")
     + _numbers(PREDICT, "--disk-mrad", "nan", "0", "-3", "1e9")
     + _numbers(PREDICT, "--gmax", "nan", "0", "-1", "100", "inf")
-    + _numbers(PREDICT, "--min-strength", "nan", "-0.1", "2")
+    + _numbers(PREDICT, "--min-strength", "nan", "-0.1", "1e3")
     + _numbers(PREDICT, "--min-angle-deg", "nan", "-5", "90")
     + _numbers(PREDICT, "--b-iso", "nan", "-20", "1e6")
     + _numbers(PREDICT, "--strain", "nan 0 0 0 0 0", "-1 0 0 0 0 0", "0 0 0 0 0 inf",
@@ -191,7 +191,7 @@ CASES = (
     + _numbers(REFINE, "--scale-px-per-mrad", "nan", "0", "-40", "inf")
     + _numbers(REFINE, "--kv", "nan", "0.001")
     + _numbers(REFINE, "--disk-mrad", "-1", "nan")
-    + _numbers(REFINE, "--min-strength", "5", "nan")
+    + _numbers(REFINE, "--min-strength", "500", "nan")
     + _numbers(REFINE, "--min-angle-deg", "-1")
     + _numbers(REFINE, "--cubic-elastic-GPa", "nan 1 1", "1e9 1 1")
     + _numbers(REFINE, "--disk-px", "1 2 3")

@@ -697,7 +697,11 @@ def _check_input_files(args, labels):
             continue
         path = Path(value)
         label = labels.get(dest, dest)
-        if not path.exists():
+        try:
+            exists = path.exists()
+        except OSError as exc:
+            raise InputError(f"cannot read {path} ({label}): {exc.strerror}") from None
+        if not exists:
             raise InputError(f"cannot read {path} ({label}): no such file")
         if not path.is_file():
             raise InputError(f"cannot read {path} ({label}): not a file")

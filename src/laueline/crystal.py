@@ -63,6 +63,9 @@ _STRUCTURE_FACTOR_CHUNK = 2_000_000
 
 _CLOSE_ATOMS_A = 0.5
 
+#: Largest CIF file read (a 100,000-atom cell takes about 10 MB).
+_MAX_CIF_BYTES = 100_000_000
+
 #: Above this many atoms in the cell the spglib cross-check (seconds per
 #: thousand atoms) is skipped.
 _SPGLIB_MAX_SITES = 2000
@@ -443,7 +446,11 @@ def read_crystal(source, *, name=None, block=None):
 
     path = Path(str(source))
     label = str(source)
-    if not path.is_file():
+    try:
+        is_file = path.is_file()
+    except OSError as exc:
+        raise InputError(f"cannot read {path}: {exc.strerror}") from None
+    if not is_file:
         bundled = _resolve_bundled(str(source))
         if bundled is None:
             raise InputError(
@@ -453,6 +460,9 @@ def read_crystal(source, *, name=None, block=None):
         name = name or bundled
         label = f"bundled:{bundled}"
     else:
+        if path.stat().st_size > _MAX_CIF_BYTES:
+            raise InputError(f"{path}: {path.stat().st_size / 1e6:.0f} MB is beyond any CIF of "
+                             f"a crystal structure (limit {_MAX_CIF_BYTES / 1e6:.0f} MB)")
         try:
             text = path.read_text(encoding="utf-8", errors="replace")
         except OSError as exc:
@@ -625,8 +635,9 @@ def _expand_sites(frac, occ, rotations, translations, orth):
 def _close_pairs(frac, orth, radius):
     """Pairs (i, j, distance) of sites closer than ``radius`` angstrom, periodic.
 
-    A k-d tree over the sites and their 26 neighbouring cell copies keeps the
-    memory linear in the number of sites.
+    A k-d tree holds the sites and those periodic copies that lie within
+    ``radius`` of the cell, so the memory and work grow linearly with the
+    number of sites.
     """
     from scipy.spatial import cKDTree
 
@@ -634,14 +645,21 @@ def _close_pairs(frac, orth, radius):
     if n < 2:
         return np.zeros(0, int), np.zeros(0, int), np.zeros(0)
     frac = np.mod(frac, 1.0)
+    # margin in fractional units: radius over the spacing of each family of cell faces
+    margin = radius * np.linalg.norm(np.linalg.inv(orth), axis=1)
     shifts = np.array([(i, j, k) for i in (-1, 0, 1) for j in (-1, 0, 1) for k in (-1, 0, 1)])
-    cart = frac @ orth.T
-    copies = (frac[None, :, :] + shifts[:, None, :]).reshape(-1, 3) @ orth.T
-    pairs = cKDTree(cart).sparse_distance_matrix(cKDTree(copies), radius,
-                                                  output_type="ndarray")
-    i, j, dist = pairs["i"], pairs["j"] % n, pairs["v"]
-    keep = i < j
-    i, j, dist = i[keep], j[keep], dist[keep]
+    shifts = shifts[np.argsort(np.abs(shifts).sum(axis=1), kind="stable")]  # (0, 0, 0) first
+    copies = frac[None, :, :] + shifts[:, None, :]
+    near = np.all((copies > -margin) & (copies < 1 + margin), axis=2)
+    near[0] = True
+    shift_index, site = np.nonzero(near)
+    points = copies[shift_index, site] @ orth.T
+    pairs = cKDTree(points).query_pairs(radius, output_type="ndarray")
+    p, q = pairs[:, 0], pairs[:, 1]
+    keep = ((shift_index[p] == 0) | (shift_index[q] == 0)) & (site[p] != site[q])
+    p, q = p[keep], q[keep]
+    dist = np.linalg.norm(points[p] - points[q], axis=1)
+    i, j = np.minimum(site[p], site[q]), np.maximum(site[p], site[q])
     if len(i):  # one pair may be found through several copies: keep the shortest
         order = np.lexsort((dist, j, i))
         i, j, dist = i[order], j[order], dist[order]
@@ -735,8 +753,8 @@ def _crystal_from_small(small, name, label):
             small.determine_and_set_spacegroup(order)
         except (RuntimeError, ValueError) as exc:
             raise InputError(f"{label}: cannot determine the space group ({exc})") from None
-        if small.spacegroup is None:
-            continue
+        if small.spacegroup is None or small.spacegroup.xhm() in {t[2] for t in trials}:
+            continue  # unknown, or the same group again (both origin choices of P 1)
         expansion = _expand(small, small.spacegroup, orth)
         trials.append((expansion.overlaps + len(expansion.overfull),
                        len(expansion.site_index), small.spacegroup.xhm(), order, expansion))

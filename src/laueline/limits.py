@@ -66,7 +66,8 @@ RANGES = {
                        low_open=True),
     "gmax": Range(0.0, 20.0, "scattering factors are negligible beyond |g| = 20 1/A",
                   low_open=True),
-    "min_strength": Range(0.0, 1.0, "strengths are relative to the strongest HOLZ line"),
+    "min_strength": Range(0.0, 100.0, "strengths are relative to the strongest HOLZ line "
+                          "(zero-layer lines may exceed 1)"),
     "min_angle_deg": Range(0.0, 90.0, "two lines cross at 90 deg at most", high_open=True),
     "b_iso": Range(0.0, 50.0, "a Debye-Waller B above 50 A^2 leaves no HOLZ line; "
                               "B < 0 is unphysical"),

@@ -58,6 +58,9 @@ FIGURE_SUFFIXES = (".png", ".svg", ".pdf")
 #: Marker in the names of temporary files (``.NAME.XXXXXX.partial.SUFFIX``).
 TEMPORARY_MARK = ".partial"
 
+#: Longest file name most file systems accept (POSIX NAME_MAX on Linux).
+_NAME_MAX = 255
+
 _UMASK = os.umask(0)
 os.umask(_UMASK)
 
@@ -99,10 +102,20 @@ def check_outputs(paths, force=False, figure=None, inputs=()):
         its folder is missing or refuses new files, or it exists and
         ``force`` is false.
     """
+    try:
+        _check_outputs(paths, force, figure, inputs)
+    except OSError as exc:  # a name the file system refuses outright (too long, ...)
+        raise InputError(f"cannot write {exc.filename or ''}: {exc.strerror}") from None
+
+
+def _check_outputs(paths, force, figure, inputs):
     items = [Path(p) for p in paths if p is not None] + ([Path(figure)] if figure else [])
     seen = {}
     probed = set()
     for path in items:
+        if len(os.fsencode(path.name)) > _NAME_MAX:
+            raise InputError(f"cannot write {path}: the file name is longer than {_NAME_MAX} "
+                             "bytes")
         key = os.path.realpath(path)
         if key in seen:
             same = (f"{path} is named for two outputs" if str(seen[key]) == str(path)
@@ -120,6 +133,9 @@ def check_outputs(paths, force=False, figure=None, inputs=()):
             raise InputError(f"cannot write {path}: {parent} is not a folder")
         if (path.exists() or path.is_symlink()) and not force:
             raise InputError(f"{path} exists; pass --force to overwrite it")
+        if path.exists() and not path.is_file():
+            raise InputError(f"cannot write {path}: it exists and is not a regular file "
+                             "(a device, pipe or socket is never replaced)")
         folder = os.path.realpath(parent)
         if folder not in probed:
             _probe_folder(parent)
