@@ -15,7 +15,6 @@ import os
 import signal
 import subprocess
 import sys
-import time
 from pathlib import Path
 
 import numpy as np
@@ -205,6 +204,7 @@ CASES = (
     + [REFINE[:-2] + ["--json", "{t}/pts.csv", "--force"],
        REFINE[:-2] + ["--json", "{t}/exists.json"],
        REFINE + ["--sample-x", "0", "0", "0", "--sample-z", "0", "0", "1"],
+       REFINE + ["--calibration", "{t}/wrong.json", "--kv", "300"],
        ["refine", "Si", "--zone", "2", "3", "0"],
        ]
     # -- thickness ---------------------------------------------------------------------
@@ -265,7 +265,7 @@ CASES = (
                  "90"]]
     # -- detect (outputs and numbers; reading images is tested with the images) -------
     + _numbers(DETECT, "--min-angle-deg", "nan")
-    + _numbers(DETECT, "--disk-px", "1 2 nan")
+    + _numbers(DETECT, "--disk-px", "1 2 nan", "100 100 0", "100 100 -5")
     + [DETECT[:-2] + ["--json", "{t}/exists.json"],
        DETECT + ["--figure", "{t}/d.gif"],
        DETECT[:2] + ["--json", "{t}/img.npy", "--force"]]

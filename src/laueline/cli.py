@@ -647,9 +647,12 @@ def _ignored(option, why):
     raise InputError(f"{option} would be ignored: {why}")
 
 
-def _check_conflicts(args, given, labels):
+def _check_conflicts(args, given):
     """Options that contradict each other or that the command would ignore."""
     cmd = args.command
+    disk_px = getattr(args, "disk_px", None)
+    if disk_px is not None and disk_px[2] <= 0:
+        raise InputError(f"--disk-px radius must be positive, got {disk_px[2]:g}")
     if cmd == "thickness":
         if args.d_spacing_A is not None and args.hkl is not None:
             _conflict("--d-spacing-A", "--hkl", "both give the reflection; give one")
@@ -676,15 +679,13 @@ def _check_conflicts(args, given, labels):
     elif cmd == "refine":
         if args.points is not None and args.disk_px is not None:
             _conflict("--disk-px", "--points", "the disk is only searched for in an --image")
+        if args.calibration is not None and "kv" in given:
+            _conflict("--kv", "--calibration", "the calibration's effective voltage is held; "
+                      "leave --kv out")
         if args.image is not None and "match_mrad" in given:
             _conflict("--match-mrad", "--image",
                       "the matching gate applies to point files; image lines are matched "
                       "by their detection")
-        if args.disk_px is not None and args.disk_px[2] <= 0:
-            raise InputError(f"--disk-px radius must be positive, got {args.disk_px[2]:g}")
-    elif cmd == "survey":
-        if args.top is not None and args.top < 1:
-            raise InputError("--top must be at least 1")
 
 
 def _check_input_files(args, labels):
@@ -735,7 +736,7 @@ def _check_arguments(parser, args, argv):
     sub = _command_parser(parser, args.command)
     labels = _option_labels(sub)
     _check_numbers(args, labels)
-    _check_conflicts(args, _given_options(sub, argv), labels)
+    _check_conflicts(args, _given_options(sub, argv))
     _check_input_files(args, labels)
 
 

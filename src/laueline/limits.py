@@ -152,7 +152,8 @@ def check_value(name, value, label=None):
                          f"{' '.join(f'{v:g}' for v in values)}")
     bad = [v for v in values if not limit.contains(v)]
     if bad:
-        raise InputError(f"{label} = {_number(bad[0])} is outside {limit.describe()}: {limit.reason}")
+        raise InputError(f"{label} = {_number(bad[0])} is outside {limit.describe()}: "
+                         f"{limit.reason}")
     if limit.nonzero_vector and values.size > 1 and not np.any(values):
         raise InputError(f"{label} must not be all zeros")
 
