@@ -63,6 +63,9 @@ CIFS = {
     "occ3": cif("Si1 Si 0 0 0 3 0.006\n"),
     "occ_neg": cif("Si1 Si 0 0 0 -1 0.006\n"),
     "occ_text": cif("Si1 Si 0 0 0 full 0.006\n"),
+    "occ_zero": cif("Si1 Si 0 0 0 0 0.006\n"),
+    "length_tiny": cif(a=0.001, sg="P 1"),
+    "huge_cell": cif(a=9999, sg="P 1"),
     "u_neg": cif("Si1 Si 0 0 0 1 -0.1\n"),
     "u_huge": cif("Si1 Si 0 0 0 1 5\n"),
     "b_neg": cif().replace("_atom_site_U_iso_or_equiv", "_atom_site_B_iso_or_equiv")

@@ -540,8 +540,8 @@ def _check_cif_values(block, label):
             raise InputError(f"{label}: {tag} is missing")
         cell.append(_cif_number(raw, tag, label))
     lengths, angles = np.array(cell[:3]), np.array(cell[3:])
-    if np.any(lengths <= 0) or np.any(lengths > 1e4):
-        raise InputError(f"{label}: cell lengths must be positive angstrom below 1e4, got "
+    if np.any(lengths < 1) or np.any(lengths > 1e4):  # no crystal has an edge below 1 A
+        raise InputError(f"{label}: cell lengths must lie between 1 and 1e4 A, got "
                          f"{' '.join(f'{v:g}' for v in lengths)}")
     if np.any(angles <= 0) or np.any(angles >= 180):
         raise InputError(f"{label}: cell angles must lie between 0 and 180 deg, got "
@@ -802,6 +802,8 @@ def _crystal_from_small(small, name, label):
     if min(site_b) < 0:
         raise InputError(f"{label}: the anisotropic displacements give a negative U_eq; "
                          "displacement parameters are non-negative")
+    if not np.any(expansion.occupancy > 0):
+        raise InputError(f"{label}: every site has occupancy 0; the cell scatters nothing")
     elements = [site_elements[k] for k in expansion.site_index]
     frac = expansion.fractional
     occ = expansion.occupancy

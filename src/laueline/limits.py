@@ -17,7 +17,11 @@ import numpy as np
 
 from .errors import InputError
 
-__all__ = ["Range", "RANGES", "check_inputs", "check_value"]
+__all__ = ["Range", "RANGES", "MAX_LINES", "check_inputs", "check_value"]
+
+#: Most deficit lines one disk may hold: their crossings are searched over
+#: all n (n - 1) / 2 pairs, about 1 GB of work arrays at this size.
+MAX_LINES = 3000
 
 
 @dataclass(frozen=True)
