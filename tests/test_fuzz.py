@@ -92,10 +92,11 @@ def _files(folder):
     return out
 
 
-@pytest.fixture()
-def folder(tmp_path):
-    """A folder with the inputs and obstacles the cases name."""
-    t = tmp_path
+@pytest.fixture(scope="module")
+def folder(tmp_path_factory):
+    """A folder with the inputs and obstacles the cases name (shared: every case
+    checks that it leaves the folder exactly as it found it)."""
+    t = tmp_path_factory.mktemp("fuzz")
     for name, text in CIFS.items():
         (t / f"{name}.cif").write_text(text, encoding="utf-8")
     (t / "good.cif").write_text(cif())
