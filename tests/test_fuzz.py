@@ -327,6 +327,29 @@ def test_large_structure_refused_cleanly(tmp_path, capsys):
     assert not (tmp_path / "out.json").exists()
 
 
+def test_reader_closing_the_pipe_loses_no_file(tmp_path, monkeypatch):
+    """``laueline predict ... --json x | head -1``: the text is cut, the file is whole."""
+    import io
+    import json
+
+    fd = os.open(os.devnull, os.O_WRONLY)
+
+    class ClosedPipe(io.StringIO):
+        def write(self, text):
+            raise BrokenPipeError(32, "Broken pipe")
+
+        def fileno(self):
+            return fd
+
+    monkeypatch.setattr(sys, "stdout", ClosedPipe())
+    path = tmp_path / "p.json"
+    try:
+        code = main(["predict", "Si", "--zone", "1", "1", "0", "--json", str(path)])
+    finally:
+        os.close(fd)
+    assert code == 0 and json.loads(path.read_text())["schema"] == "laueline.pattern/1"
+
+
 # ---------------------------------------------------------------------------
 # interruption
 # ---------------------------------------------------------------------------

@@ -800,13 +800,43 @@ def _signal_name(signum):
                                                       f"{signal.Signals(signum).name}")
 
 
+class _ClosablePipe:
+    """stdout that falls silent when its reader goes away (``laueline ... | head``),
+    so that the command still finishes and writes its files."""
+
+    def __init__(self, stream):
+        self._stream = stream
+
+    def write(self, text):
+        try:
+            return self._stream.write(text)
+        except BrokenPipeError:
+            import os
+
+            os.dup2(os.open(os.devnull, os.O_WRONLY), self._stream.fileno())
+            return len(text)
+
+    def flush(self):
+        try:
+            self._stream.flush()
+        except BrokenPipeError:
+            import os
+
+            os.dup2(os.open(os.devnull, os.O_WRONLY), self._stream.fileno())
+
+    def __getattr__(self, name):
+        return getattr(self._stream, name)
+
+
 def _run(parser, args, argv):
     """Check everything, run the command with its outputs staged, name them at the end."""
+    import contextlib
     import warnings
 
     _check_arguments(parser, args, argv)
     plan = _output_plan(args)
-    with plan.active(), warnings.catch_warnings():
+    with plan.active(), warnings.catch_warnings(), \
+            contextlib.redirect_stdout(_ClosablePipe(sys.stdout)):
         # numerical libraries' warnings are not messages for the user; laueline's
         # own warnings travel in the results and the report
         warnings.simplefilter("ignore", RuntimeWarning)
@@ -816,6 +846,7 @@ def _run(parser, args, argv):
             plan.commit()  # a fit's JSON with "success": false is still wanted
             raise
         plan.commit()
+        sys.stdout.flush()  # through the wrapper: a closed pipe is not an error
     return status
 
 
