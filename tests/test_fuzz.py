@@ -327,6 +327,41 @@ def test_large_structure_refused_cleanly(tmp_path, capsys):
     assert not (tmp_path / "out.json").exists()
 
 
+def _library_calls():
+    from laueline import read_crystal
+    from laueline.images.render import RenderSettings, render_pattern
+    from laueline.lines import predict
+    from laueline.points import Points
+    from laueline.refine import refine
+    from laueline.thickness import thickness_from_fringes
+
+    si = read_crystal("Si")
+    pts = Points(np.array([[100.0, 120.0], [130.0, 90.0]]))
+    return [
+        (lambda: predict(si, (1, 1, 0), 200, 6, min_strength=float("nan")), "min_strength"),
+        (lambda: predict(si, (1, 1, 0), 0.001, 6), "kv"),
+        (lambda: thickness_from_fringes([10, 20, 30], 100, d_spacing_A=0.001), "d_spacing_A"),
+        (lambda: thickness_from_fringes([10, 20, 30], 100, d_spacing_A=2,
+                                        first_fringe_index=0), "first_fringe_index"),
+        (lambda: thickness_from_fringes([10, 20, 30], 100, d_spacing_A=2, fringes_sigma=-1),
+         "fringes_sigma"),
+        (lambda: refine(si, (2, 3, 0), pts, match_mrad=0), "match_mrad"),
+        (lambda: refine(si, (2, 3, 0), pts, rotation_deg=float("nan")), "rotation_deg"),
+        (lambda: render_pattern(si, (1, 1, 0), 200, 6, RenderSettings(seed=-1)), "seed"),
+        (lambda: render_pattern(si, (1, 1, 0), 200, 6, RenderSettings(scale_px_per_mrad=0)),
+         "scale_px_per_mrad"),
+        (lambda: render_pattern(si, (1, 1, 0), 200, 6, RenderSettings(dose=1e30)), "dose"),
+    ]
+
+
+def test_library_refuses_the_same_values_naming_the_parameter():
+    from laueline.errors import InputError
+
+    for call, name in _library_calls():
+        with pytest.raises(InputError, match=name):
+            call()
+
+
 def test_reader_closing_the_pipe_loses_no_file(tmp_path, monkeypatch):
     """``laueline predict ... --json x | head -1``: the text is cut, the file is whole."""
     import io
