@@ -278,3 +278,178 @@ def test_unknown_name():
 def test_names_resolve_by_part():
     assert read_crystal("rutile").name == "TiO2-rutile"
     assert read_crystal("si").name == "Si"
+
+
+# -- disorder, alloys, validation, blocks, large cells ------------------------
+
+def _direct_sum(path, hkl):
+    """F(hkl) = sum occ f(s) exp(2 pi i h.x) over gemmi's own unit-cell site list
+    (which is right for sites on special positions, not for split ones) with
+    gemmi's International Tables C 4.3.2.2 factors, for B = 0."""
+    small = gemmi.read_small_structure(str(path))
+    cell = small.cell
+    out = []
+    for h in hkl:
+        stol2 = cell.calculate_1_d2(list(h)) / 4 if any(h) else 0.0
+        out.append(sum(site.occ * site.element.c4322.calculate_sf(stol2)
+                       * np.exp(2j * np.pi * np.dot(h, site.fract.tolist()))
+                       for site in small.get_all_unit_cell_sites()))
+    return np.array(out)
+
+
+def _gemmi_sf(path, hkl):
+    """Electron structure factors from gemmi's own calculator (an independent sum
+    over the site list and all symmetry operations, International Tables C 4.3.2.2
+    factors), for B = 0."""
+    small = gemmi.read_small_structure(str(path))
+    small.setup_cell_images()
+    calc = gemmi.StructureFactorCalculatorE(small.cell)
+    return np.array([calc.calculate_sf_from_small_structure(small, h) for h in hkl])
+
+
+SPLIT_SITE = """
+data_split
+_cell_length_a 5.0
+_cell_length_b 6.0
+_cell_length_c 7.0
+_cell_angle_alpha 80
+_cell_angle_beta 85
+_cell_angle_gamma 95
+_symmetry_space_group_name_H-M 'P -1'
+loop_
+_atom_site_label
+_atom_site_type_symbol
+_atom_site_fract_x
+_atom_site_fract_y
+_atom_site_fract_z
+_atom_site_occupancy
+Cu1 Cu 0.03 0 0 0.5
+O1 O 0.3 0.2 0.4 1
+"""
+
+
+def test_split_site_keeps_its_total_occupancy(tmp_path):
+    # Cu at x = 0.03 with occupancy 0.5 in P-1: its inversion image lies 0.3 A away,
+    # an alternative position of one Cu atom.  F(000) must count one whole Cu.
+    p = write(tmp_path, SPLIT_SITE)
+    c = read_crystal(p)
+    coefs = {el: sum(gemmi.Element(el).c4322.get_coefs()[:5]) for el in ("Cu", "O")}
+    # f(0) = sum of the five Gaussian amplitudes a_i (International Tables C 4.3.2.2)
+    assert c.forward_scattering() == pytest.approx(coefs["Cu"] + 2 * coefs["O"], rel=1e-9)
+    hkl = [(0, 0, 0), (1, 0, 0), (2, 1, -1), (3, 0, 2), (1, -2, 3)]
+    # gemmi's calculator works in single precision: agreement to 1e-6 relative
+    np.testing.assert_allclose(c.structure_factors(hkl), _gemmi_sf(p, hkl), rtol=1e-6,
+                               atol=1e-6)
+    assert any("disorder" in n for n in c.notes)
+    assert not any("closer than" in n and "pairs" in n for n in c.notes)
+
+
+def test_special_position_keeps_the_given_occupancy(tmp_path):
+    # Cu exactly on the inversion centre with occupancy 0.5: half an atom (CIF
+    # convention, occupancy of the site), not a whole one
+    p = write(tmp_path, SPLIT_SITE.replace("Cu1 Cu 0.03 0 0 0.5", "Cu1 Cu 0 0 0 0.5"))
+    c = read_crystal(p)
+    hkl = [(0, 0, 0), (1, 2, 0), (2, -1, 3)]
+    # gemmi's factors are single precision: agreement to 1e-6 relative
+    np.testing.assert_allclose(c.structure_factors(hkl), _direct_sum(p, hkl), rtol=1e-6,
+                               atol=1e-6)
+    assert c.elements.count("Cu") == 1
+
+
+def test_alloy_on_shared_sites(tmp_path):
+    # Si0.5Ge0.5 in the diamond structure: one site, two elements
+    p = write(tmp_path, """
+    data_sige
+    _cell_length_a 5.54
+    _cell_length_b 5.54
+    _cell_length_c 5.54
+    _cell_angle_alpha 90
+    _cell_angle_beta 90
+    _cell_angle_gamma 90
+    _symmetry_space_group_name_H-M 'F d -3 m:1'
+    loop_
+    _atom_site_label
+    _atom_site_type_symbol
+    _atom_site_fract_x
+    _atom_site_fract_y
+    _atom_site_fract_z
+    _atom_site_occupancy
+    Si1 Si 0 0 0 0.5
+    Ge1 Ge 0 0 0 0.5
+    """)
+    c = read_crystal(p)
+    assert any("share sites" in n and "Ge" in n and "Si" in n for n in c.notes)
+    assert not any("pairs of atoms" in n for n in c.notes)
+    hkl = [(0, 0, 0), (1, 1, 1), (2, 2, 0), (3, 1, 1)]
+    np.testing.assert_allclose(c.structure_factors(hkl), _direct_sum(p, hkl), rtol=1e-6,
+                               atol=1e-6)
+    assert c.formula == "SiGe"
+
+
+CELL_90 = ("data_x\n_cell_length_a 4\n_cell_length_b 4\n_cell_length_c 4\n"
+           "_cell_angle_alpha {al}\n_cell_angle_beta {be}\n_cell_angle_gamma {ga}\n"
+           "_symmetry_space_group_name_H-M 'P 1'\n")
+SITE_COLUMNS = ("loop_\n_atom_site_label\n_atom_site_type_symbol\n_atom_site_fract_x\n"
+                "_atom_site_fract_y\n_atom_site_fract_z\n_atom_site_occupancy\n"
+                "_atom_site_B_iso_or_equiv\n")
+
+
+@pytest.mark.parametrize("angles, row, message", [
+    # metric determinant 1 - 3 cos^2 + 2 cos^3 < 0 for 150 deg: no cell
+    ((150, 150, 150), "Cu1 Cu 0 0 0 1 0.5", "do not form a cell"),
+    ((60, 60, 170), "Cu1 Cu 0 0 0 1 0.5", "do not form a cell"),
+    ((90, 90, 90), "Cu1 Cu ? 0 0 1 0.5", "unknown"),
+    ((90, 90, 90), "Cu1 Cu 0 0 half 1 0.5", "not a finite number"),
+    ((90, 90, 90), "Cu1 Cu 0 0 0 3 0.5", "occupancy 3"),
+    ((90, 90, 90), "Cu1 Cu 0 0 0 -1 0.5", "occupancy -1"),
+    ((90, 90, 90), "Cu1 Cu 0 0 0 1 -20", "non-negative"),
+    ((90, 90, 90), "Cu1 Cu 0 0 0 0.7 0.5\nNi1 Ni 0 0 0 0.6 0.5", "total occupancy"),
+])
+def test_cif_values_checked_before_symmetry_libraries(tmp_path, angles, row, message):
+    text = CELL_90.format(al=angles[0], be=angles[1], ga=angles[2]) + SITE_COLUMNS + row + "\n"
+    p = tmp_path / "bad.cif"
+    p.write_text(text)
+    with pytest.raises(InputError, match=message):
+        read_crystal(p)
+
+
+def test_several_blocks_need_a_choice(tmp_path):
+    one = CELL_90.format(al=90, be=90, ga=90) + SITE_COLUMNS + "Cu1 Cu 0 0 0 1 0.5\n"
+    p = tmp_path / "two.cif"
+    p.write_text(one + one.replace("data_x", "data_y").replace("Cu1 Cu", "Ni1 Ni"))
+    with pytest.raises(InputError, match="--block"):
+        read_crystal(p)
+    assert read_crystal(p, block="y").elements == ("Ni",)
+    assert read_crystal(p, block="X").elements == ("Cu",)  # CIF block names ignore case
+    with pytest.raises(InputError, match="no data block named 'z'"):
+        read_crystal(p, block="z")
+
+
+def test_close_pairs_match_a_brute_force_search():
+    from laueline.crystal import _close_pairs
+
+    rng = np.random.default_rng(5)
+    frac = rng.random((200, 3))
+    orth = basis_from_cell(7.0, 8.0, 6.5, 80, 100, 110)
+    i, j, dist = _close_pairs(frac, orth, 1.2)
+    # brute force: every pair against every neighbouring lattice translation (-1..1
+    # suffices: the cell is over 5 A wide in every direction, the radius 1.2 A)
+    shifts = np.stack(np.meshgrid(*[np.arange(-1, 2)] * 3, indexing="ij"), -1).reshape(-1, 3)
+    diff = frac[:, None, None, :] - frac[None, :, None, :] + shifts
+    d = np.linalg.norm(diff @ orth.T, axis=-1).min(axis=2)
+    bi, bj = np.nonzero(np.triu(d < 1.2, 1))
+    assert set(zip(i.tolist(), j.tolist())) == set(zip(bi.tolist(), bj.tolist()))
+    np.testing.assert_allclose(dist, d[i, j], rtol=1e-12)
+
+
+def test_structure_factor_work_refused_before_it_starts():
+    import dataclasses
+
+    from laueline.crystal import MAX_STRUCTURE_FACTOR_TERMS
+
+    si = read_crystal("Si")
+    n = MAX_STRUCTURE_FACTOR_TERMS // 1000 + 1
+    big = dataclasses.replace(si, fractional=np.zeros((n, 3)), elements=("Si",) * n,
+                              occupancy=np.ones(n), b_iso=np.zeros(n))
+    with pytest.raises(InputError, match="limit"):
+        big.structure_factors(np.ones((1000, 3)))

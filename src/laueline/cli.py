@@ -53,8 +53,14 @@ class _Choices:
         return iter(self._values())
 
 
+def _add_block_option(p):
+    p.add_argument("--block", metavar="NAME",
+                   help="the CIF data block to read (data_NAME), when the file holds several")
+
+
 def _add_crystal_options(p):
     p.add_argument("structure", help="CIF file or bundled structure name (see 'laueline structures')")
+    _add_block_option(p)
     p.add_argument("--zone", nargs=3, type=int, required=True, metavar=("U", "V", "W"),
                    help="zone axis [u v w], pointing toward the source")
     p.add_argument("--kv", type=float, default=200.0, help="accelerating voltage in kV (200)")
@@ -89,7 +95,7 @@ def _finish(args, document=None, figure=None, extra=()):
     if getattr(args, "figure", None) and figure is not None:
         from .plot import save_figure
 
-        save_figure(figure(), args.figure)
+        save_figure(figure(), args.figure, force=args.force)
     written = [p for p in (getattr(args, "json", None), *extra, getattr(args, "figure", None))
                if p]
     if written:
@@ -99,7 +105,7 @@ def _finish(args, document=None, figure=None, extra=()):
 def _load_crystal(args):
     from .crystal import read_crystal
 
-    crystal = read_crystal(args.structure)
+    crystal = read_crystal(args.structure, block=getattr(args, "block", None))
     if getattr(args, "b_iso", None) is not None:
         crystal = crystal.with_b_iso(args.b_iso)
     return crystal
@@ -430,8 +436,9 @@ def _truth_path(out):
 
 def _cmd_render(args):
     from . import report
-    from .images.io import IMAGE_SUFFIXES, write_image
+    from .images.io import IMAGE_SUFFIXES
     from .images.render import RenderSettings, render_pattern
+    from .io.outputs import write_image
 
     from pathlib import Path
 
@@ -725,6 +732,7 @@ def build_parser():
                                    "Allen 1981).")
     p.add_argument("structure", nargs="?",
                    help="CIF file or bundled structure (with --hkl)")
+    _add_block_option(p)
     p.add_argument("--hkl", nargs=3, type=int, metavar=("H", "K", "L"),
                    help="the reflection excited in two-beam condition")
     p.add_argument("--d-spacing-A", dest="d_spacing_A", type=float, metavar="D",
@@ -791,6 +799,7 @@ def build_parser():
                                    "voltage and scale held), counting only the lines visible "
                                    "at the foil thickness and with an error per line.")
     p.add_argument("structure", help="CIF file or bundled structure name")
+    _add_block_option(p)
     p.add_argument("--kv", type=float, default=200.0, help="accelerating voltage in kV (200)")
     p.add_argument("--disk-mrad", type=float, default=6.0,
                    help="convergence semi-angle in mrad (6)")
@@ -939,23 +948,318 @@ def build_parser():
     return parser
 
 
+# ---------------------------------------------------------------------------
+# checks at the door: numbers, conflicting options, input files, outputs
+# ---------------------------------------------------------------------------
+
+#: Options naming text files laueline reads (dest names); they must be UTF-8.
+_TEXT_INPUTS = ("points", "calibration", "profile", "stiffness_gpa")
+#: Options naming any input file (outputs may not overwrite them).
+_INPUTS = _TEXT_INPUTS + ("structure", "image", "pattern")
+
+
+def _command_parser(parser, command):
+    for action in parser._subparsers._group_actions:
+        if command in action.choices:
+            return action.choices[command]
+    return parser
+
+
+def _option_labels(subparser):
+    """dest -> the option as the user types it (``--kv``), or the positional name."""
+    return {a.dest: (a.option_strings[-1] if a.option_strings else a.dest)
+            for a in subparser._actions}
+
+
+def _given_options(subparser, argv):
+    """Destinations of the options that appear on the command line (abbreviations too)."""
+    strings = {s: a.dest for a in subparser._actions for s in a.option_strings}
+    given = set()
+    for token in argv:
+        if not token.startswith("--"):
+            continue
+        name = token.split("=", 1)[0]
+        if name in strings:
+            given.add(strings[name])
+        else:
+            matches = {d for s, d in strings.items() if s.startswith(name)}
+            if len(matches) == 1:
+                given |= matches
+    return given
+
+
+def _check_numbers(args, labels):
+    """Every numeric option finite and within its range of :data:`laueline.limits.RANGES`."""
+    import math
+
+    from .limits import RANGES, check_value
+
+    for dest, value in vars(args).items():
+        values = value if isinstance(value, list) else [value]
+        if not values or not all(isinstance(v, (int, float)) and not isinstance(v, bool)
+                                 for v in values):
+            continue
+        label = labels.get(dest, dest)
+        if dest in RANGES:
+            check_value(dest, value, label)
+        elif not all(math.isfinite(v) for v in values):
+            raise InputError(f"{label} must be finite, got {' '.join(map(str, values))}")
+
+
+def _conflict(a, b, why):
+    raise InputError(f"{a} and {b} cannot be used together: {why}")
+
+
+def _ignored(option, why):
+    raise InputError(f"{option} would be ignored: {why}")
+
+
+def _check_conflicts(args, given):
+    """Options that contradict each other or that the command would ignore."""
+    cmd = args.command
+    disk_px = getattr(args, "disk_px", None)
+    if disk_px is not None and disk_px[2] <= 0:
+        raise InputError(f"--disk-px radius must be positive, got {disk_px[2]:g}")
+    if cmd == "thickness":
+        if args.d_spacing_A is not None and args.hkl is not None:
+            _conflict("--d-spacing-A", "--hkl", "both give the reflection; give one")
+        if args.d_spacing_A is not None and args.structure is not None:
+            _conflict("--d-spacing-A", "a structure",
+                      "the structure is only used with --hkl; give one")
+        if args.d_spacing_A is not None and args.b_iso is not None:
+            _conflict("--d-spacing-A", "--b-iso", "B needs a structure with --hkl")
+        if args.block is not None and args.structure is None:
+            _ignored("--block", "a data block is chosen in a structure's CIF file")
+        if args.profile and args.position_sigma_px is not None:
+            _conflict("--profile", "--position-sigma-px",
+                      "a profile's fringe uncertainties come from the profile itself")
+    elif cmd == "render":
+        if args.center_px is not None:
+            x, y = args.center_px
+            width, height = args.size
+            if not (0 <= x < width and 0 <= y < height):
+                raise InputError(f"--center-px {x:g} {y:g} lies outside the {width} x "
+                                 f"{height} px image of --size; the pattern would be blank")
+    elif cmd == "predict":
+        if args.mark_crossings and not args.figure:
+            _ignored("--mark-crossings", "crossings are marked in a figure; add --figure PATH")
+    elif cmd == "refine":
+        if args.points is not None and args.disk_px is not None:
+            _conflict("--disk-px", "--points", "the disk is only searched for in an --image")
+        if args.calibration is not None and "kv" in given:
+            _conflict("--kv", "--calibration", "the calibration's effective voltage is held; "
+                      "leave --kv out")
+        if args.image is not None and "match_mrad" in given:
+            _conflict("--match-mrad", "--image",
+                      "the matching gate applies to point files; image lines are matched "
+                      "by their detection")
+
+
+def _check_input_files(args, labels):
+    """Input files exist, are files, and text inputs decode as UTF-8."""
+    from pathlib import Path
+
+    for dest in _TEXT_INPUTS:
+        value = getattr(args, dest, None)
+        if value is None:
+            continue
+        path = Path(value)
+        label = labels.get(dest, dest)
+        try:
+            exists = path.exists()
+        except OSError as exc:
+            raise InputError(f"cannot read {path} ({label}): {exc.strerror}") from None
+        if not exists:
+            raise InputError(f"cannot read {path} ({label}): no such file")
+        if not path.is_file():
+            raise InputError(f"cannot read {path} ({label}): not a file")
+        try:
+            path.read_bytes().decode("utf-8")
+        except OSError as exc:
+            raise InputError(f"cannot read {path} ({label}): {exc.strerror}") from None
+        except UnicodeDecodeError as exc:
+            raise InputError(f"{path} ({label}) is not UTF-8 text (byte {exc.start}); "
+                             "save it as UTF-8") from None
+
+
+def _csv_outputs(args):
+    return list(_csv_pair(args.csv)) if getattr(args, "csv", None) else []
+
+
+def _output_plan(args):
+    """The outputs of the command, registered before any work and checked together."""
+    from .io.outputs import OutputPlan
+
+    paths = [getattr(args, "json", None), *_csv_outputs(args), getattr(args, "figure", None)]
+    if args.command == "render":
+        paths += [args.out, _truth_path(args.out)]
+    plan = OutputPlan(paths, force=getattr(args, "force", False))
+    plan.check(figure=getattr(args, "figure", None),
+               inputs=[getattr(args, d, None) for d in _INPUTS])
+    return plan
+
+
+def _check_arguments(parser, args, argv):
+    sub = _command_parser(parser, args.command)
+    labels = _option_labels(sub)
+    _check_numbers(args, labels)
+    _check_conflicts(args, _given_options(sub, argv))
+    _check_input_files(args, labels)
+
+
+# ---------------------------------------------------------------------------
+# signals
+# ---------------------------------------------------------------------------
+
+class _Interrupted(BaseException):
+    """Raised by the signal handler so that temporaries are removed on the way out."""
+
+    def __init__(self, signum):
+        super().__init__(signum)
+        self.signum = signum
+
+
+def _on_signal(signum, frame):
+    import signal
+
+    for s in _HANDLED_SIGNALS:  # a second signal must not interrupt the clean-up
+        signal.signal(s, signal.SIG_IGN)
+    raise _Interrupted(signum)
+
+
+def _handled_signals():
+    import signal
+
+    return tuple(getattr(signal, n) for n in ("SIGINT", "SIGTERM", "SIGHUP")
+                 if hasattr(signal, n))
+
+
+_HANDLED_SIGNALS = _handled_signals()
+
+
+def _install_signal_handlers():
+    """Install the handlers in the main thread; return the previous ones."""
+    import signal
+    import threading
+
+    if threading.current_thread() is not threading.main_thread():
+        return {}
+    previous = {}
+    for s in _HANDLED_SIGNALS:
+        try:
+            previous[s] = signal.signal(s, _on_signal)
+        except (OSError, ValueError):
+            pass
+    return previous
+
+
+def _restore_signal_handlers(previous):
+    import signal
+
+    for s, handler in previous.items():
+        signal.signal(s, handler)
+
+
+def _signal_name(signum):
+    import signal
+
+    return {signal.SIGINT: "interrupted (Ctrl-C)"}.get(signum, "terminated by signal "
+                                                      f"{signal.Signals(signum).name}")
+
+
+class _ClosablePipe:
+    """stdout that falls silent when its reader goes away (``laueline ... | head``),
+    so that the command still finishes and writes its files."""
+
+    def __init__(self, stream):
+        self._stream = stream
+
+    def write(self, text):
+        try:
+            return self._stream.write(text)
+        except BrokenPipeError:
+            import os
+
+            os.dup2(os.open(os.devnull, os.O_WRONLY), self._stream.fileno())
+            return len(text)
+
+    def flush(self):
+        try:
+            self._stream.flush()
+        except BrokenPipeError:
+            import os
+
+            os.dup2(os.open(os.devnull, os.O_WRONLY), self._stream.fileno())
+
+    def __getattr__(self, name):
+        return getattr(self._stream, name)
+
+
+def _run(parser, args, argv):
+    """Check everything, run the command with its outputs staged, name them at the end."""
+    import contextlib
+    import warnings
+
+    _check_arguments(parser, args, argv)
+    plan = _output_plan(args)
+    with plan.active(), warnings.catch_warnings(), \
+            contextlib.redirect_stdout(_ClosablePipe(sys.stdout)):
+        # numerical libraries' warnings are not messages for the user; laueline's
+        # own warnings travel in the results and the report
+        warnings.simplefilter("ignore", RuntimeWarning)
+        try:
+            status = args.run(args)
+        except FitError:
+            plan.commit()  # a fit's JSON with "success": false is still wanted
+            raise
+        plan.commit()
+        sys.stdout.flush()  # through the wrapper: a closed pipe is not an error
+    return status
+
+
 def main(argv=None):
-    """Entry point of the ``laueline`` console script; returns the exit status."""
-    parser = build_parser()
-    args = parser.parse_args(argv)
+    """Entry point of the ``laueline`` console script; returns the exit status.
+
+    0 success, 2 bad input, 3 a fit that did not converge, 128 + N after
+    signal N (130 for Ctrl-C, 143 for SIGTERM).  Every failure prints one
+    line on stderr; no output file is left behind or half-written.
+    """
+    import os
+
+    argv = sys.argv[1:] if argv is None else [str(a) for a in argv]
+    previous = _install_signal_handlers()
     try:
-        return args.run(args)
+        parser = build_parser()
+        args = parser.parse_args(argv)
+        return _run(parser, args, argv)
     except InputError as exc:
         sys.stderr.write(f"laueline: error: {exc}\n")
         return EXIT_INPUT
     except FitError as exc:
         sys.stderr.write(f"laueline: fit did not converge: {exc}\n")
         return EXIT_NOT_CONVERGED
-    except BrokenPipeError:  # output piped into head or less and closed early
-        import os
+    except (_Interrupted, KeyboardInterrupt) as exc:
+        import signal
 
+        signum = getattr(exc, "signum", signal.SIGINT)
+        sys.stderr.write(f"laueline: {_signal_name(signum)}; no output written\n")
+        return 128 + int(signum)
+    except MemoryError:
+        sys.stderr.write("laueline: error: not enough memory for this job; reduce --gmax, "
+                         "the image size or the structure\n")
+        return EXIT_INPUT
+    except BrokenPipeError:  # output piped into head or less and closed early
         os.dup2(os.open(os.devnull, os.O_WRONLY), sys.stdout.fileno())
         return 0
+    except Exception as exc:  # an internal fault: one line, the details on request
+        if os.environ.get("LAUELINE_TRACEBACK"):
+            raise
+        first = str(exc).splitlines()[0] if str(exc) else ""
+        sys.stderr.write(f"laueline: internal error ({type(exc).__name__}: {first}); please "
+                         "report it (LAUELINE_TRACEBACK=1 shows the details)\n")
+        return 1
+    finally:
+        _restore_signal_handlers(previous)
 
 
 if __name__ == "__main__":  # pragma: no cover

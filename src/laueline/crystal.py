@@ -48,13 +48,27 @@ __all__ = [
     "cell_from_basis",
     "strain_tensor",
     "MAX_REFLECTIONS",
+    "MAX_STRUCTURE_FACTOR_TERMS",
 ]
 
 #: Largest number of (h, k, l) grid points an enumeration may allocate.
 #: 2e7 points use about 0.5 GB per float64 vector triple.
 MAX_REFLECTIONS = 20_000_000
 
+#: Largest number of (reflection, atom) terms a structure-factor sum may take
+#: (a few seconds of work); larger jobs are refused before they start.
+MAX_STRUCTURE_FACTOR_TERMS = 50_000_000
+#: Terms evaluated at once, bounding the memory to a few hundred MB.
+_STRUCTURE_FACTOR_CHUNK = 2_000_000
+
 _CLOSE_ATOMS_A = 0.5
+
+#: Largest CIF file read (a 100,000-atom cell takes about 10 MB).
+_MAX_CIF_BYTES = 100_000_000
+
+#: Above this many atoms in the cell the spglib cross-check (seconds per
+#: thousand atoms) is skipped.
+_SPGLIB_MAX_SITES = 2000
 
 
 def basis_from_cell(a, b, c, alpha, beta, gamma):
@@ -305,10 +319,21 @@ class Crystal:
         the Debye-Waller factors exp(-B s^2).
         """
         hkl = np.atleast_2d(np.asarray(hkl, dtype=float))
+        terms = len(hkl) * self.n_sites
+        if terms > MAX_STRUCTURE_FACTOR_TERMS:
+            raise InputError(
+                f"structure factors of {len(hkl)} reflections over {self.n_sites} atoms "
+                f"({terms:.2g} terms) exceed the limit of {MAX_STRUCTURE_FACTOR_TERMS:.0g}; "
+                "use a smaller --gmax (gmax=) or a smaller cell")
         g2 = np.sum(self.g_vectors(hkl) ** 2, axis=1)
-        f = self.scattering_factors(g2 / 4.0)
-        phase = np.exp(2j * np.pi * (hkl @ self.fractional.T))
-        return np.sum(f * phase, axis=1)
+        out = np.empty(len(hkl), dtype=complex)
+        chunk = max(1, _STRUCTURE_FACTOR_CHUNK // max(self.n_sites, 1))
+        for start in range(0, len(hkl), chunk):  # memory bounded by the chunk, not n x sites
+            part = slice(start, start + chunk)
+            f = self.scattering_factors(g2[part] / 4.0)
+            phase = np.exp(2j * np.pi * (hkl[part] @ self.fractional.T))
+            out[part] = np.sum(f * phase, axis=1)
+        return out
 
     def forward_scattering(self):
         """Sum of occ * f(0) over the cell in angstrom (F at g = 0)."""
@@ -387,7 +412,7 @@ def _resolve_bundled(name):
     return None
 
 
-def read_crystal(source, *, name=None):
+def read_crystal(source, *, name=None, block=None):
     """Read a crystal from a CIF file or a bundled structure name.
 
     Parameters
@@ -397,6 +422,9 @@ def read_crystal(source, *, name=None):
         ``'rutile'``...; see :func:`bundled_structures`).
     name : str, optional
         Name to give the crystal; defaults to the bundled name or block name.
+    block : str, optional
+        Name of the data block to read (``data_NAME``); required when the
+        file holds several blocks with a unit cell.
 
     Returns
     -------
@@ -418,7 +446,11 @@ def read_crystal(source, *, name=None):
 
     path = Path(str(source))
     label = str(source)
-    if not path.is_file():
+    try:
+        is_file = path.is_file()
+    except OSError as exc:
+        raise InputError(f"cannot read {path}: {exc.strerror}") from None
+    if not is_file:
         bundled = _resolve_bundled(str(source))
         if bundled is None:
             raise InputError(
@@ -428,6 +460,9 @@ def read_crystal(source, *, name=None):
         name = name or bundled
         label = f"bundled:{bundled}"
     else:
+        if path.stat().st_size > _MAX_CIF_BYTES:
+            raise InputError(f"{path}: {path.stat().st_size / 1e6:.0f} MB is beyond any CIF of "
+                             f"a crystal structure (limit {_MAX_CIF_BYTES / 1e6:.0f} MB)")
         try:
             text = path.read_text(encoding="utf-8", errors="replace")
         except OSError as exc:
@@ -442,12 +477,245 @@ def read_crystal(source, *, name=None):
     blocks = [b for b in doc if b.find_value("_cell_length_a") is not None]
     if not blocks:
         raise InputError(f"{label}: no data block with a unit cell (_cell_length_a)")
-    block = blocks[0]
+    names = [b.name for b in blocks]
+    if block is not None:
+        chosen = [b for b in blocks if b.name.lower() == str(block).lower()]
+        if not chosen:
+            raise InputError(f"{label}: no data block named '{block}' with a unit cell "
+                             f"(blocks: {', '.join(names)})")
+        cif_block = chosen[0]
+    elif len(blocks) > 1:
+        raise InputError(f"{label} holds {len(blocks)} structures (data blocks "
+                         f"{', '.join(names)}); choose one with --block NAME (block=)")
+    else:
+        cif_block = blocks[0]
+    _check_cif_values(cif_block, label)
     try:
-        small = gemmi.make_small_structure_from_block(block)
+        small = gemmi.make_small_structure_from_block(cif_block)
     except (RuntimeError, ValueError) as exc:
         raise InputError(f"{label}: cannot interpret the CIF ({exc})") from None
     return _crystal_from_small(small, name or small.name or path.stem, label)
+
+
+_UNKNOWN = ("?", ".")
+
+#: Largest B (angstrom^2) accepted from a CIF; beyond it no HOLZ line survives.
+_MAX_B = 100.0
+
+
+def _cif_column(block, tag):
+    """Raw strings of ``tag`` (a loop column or a single value); [] when absent."""
+    return list(block.find_values(tag))
+
+
+def _cif_number(raw, what, label, unknown_ok=False):
+    """A finite number from a CIF value (standard uncertainty in brackets allowed)."""
+    import gemmi
+
+    if raw in _UNKNOWN:
+        if unknown_ok:
+            return None
+        raise InputError(f"{label}: {what} is '{raw}' (unknown); a number is needed")
+    value = gemmi.cif.as_number(raw)
+    if not math.isfinite(value):
+        raise InputError(f"{label}: {what} is '{raw}', not a finite number")
+    return value
+
+
+def _check_cif_values(block, label):
+    """Check the numbers of a CIF block before gemmi or spglib compute with them.
+
+    Cell lengths positive, angles forming a cell (positive metric determinant
+    1 - cos^2 alpha - cos^2 beta - cos^2 gamma + 2 cos alpha cos beta cos gamma,
+    International Tables Vol. B, 1.1.2), coordinates that are numbers,
+    occupancies in [0, 1], displacement parameters U, B >= 0.
+    """
+    cell = []
+    for tag in ("_cell_length_a", "_cell_length_b", "_cell_length_c",
+                "_cell_angle_alpha", "_cell_angle_beta", "_cell_angle_gamma"):
+        raw = block.find_value(tag)
+        if raw is None and "angle" in tag:
+            raw = "90"  # CIF default for a missing angle
+        if raw is None:
+            raise InputError(f"{label}: {tag} is missing")
+        cell.append(_cif_number(raw, tag, label))
+    lengths, angles = np.array(cell[:3]), np.array(cell[3:])
+    if np.any(lengths < 1) or np.any(lengths > 1e4):  # no crystal has an edge below 1 A
+        raise InputError(f"{label}: cell lengths must lie between 1 and 1e4 A, got "
+                         f"{' '.join(f'{v:g}' for v in lengths)}")
+    if np.any(angles <= 0) or np.any(angles >= 180):
+        raise InputError(f"{label}: cell angles must lie between 0 and 180 deg, got "
+                         f"{' '.join(f'{v:g}' for v in angles)}")
+    ca, cb, cg = np.cos(np.radians(angles))
+    metric = 1 - ca * ca - cb * cb - cg * cg + 2 * ca * cb * cg
+    if metric <= 1e-6:  # V = abc sqrt(metric); below this the cell is flat
+        raise InputError(f"{label}: cell angles {' '.join(f'{v:g}' for v in angles)} deg do "
+                         "not form a cell (their metric determinant is not positive)")
+    labels = _cif_column(block, "_atom_site_label")
+    for axis in "xyz":
+        for i, raw in enumerate(_cif_column(block, f"_atom_site_fract_{axis}")):
+            site = labels[i] if i < len(labels) else f"#{i + 1}"
+            value = _cif_number(raw, f"site {site} coordinate {axis}", label)
+            if abs(value) > 1e3:
+                raise InputError(f"{label}: site {site} coordinate {axis} = {value:g} is not a "
+                                 "fractional coordinate")
+    for i, raw in enumerate(_cif_column(block, "_atom_site_occupancy")):
+        value = _cif_number(raw, "an occupancy", label, unknown_ok=True)
+        if value is not None and not 0 <= value <= 1:
+            site = labels[i] if i < len(labels) else f"#{i + 1}"
+            raise InputError(f"{label}: site {site} has occupancy {value:g}; occupancies "
+                             "lie between 0 and 1")
+    b_per_u = 8 * math.pi ** 2
+    for tag, scale in (("_atom_site_U_iso_or_equiv", b_per_u), ("_atom_site_B_iso_or_equiv", 1),
+                       ("_atom_site_aniso_U_11", b_per_u), ("_atom_site_aniso_U_22", b_per_u),
+                       ("_atom_site_aniso_U_33", b_per_u), ("_atom_site_aniso_B_11", 1),
+                       ("_atom_site_aniso_B_22", 1), ("_atom_site_aniso_B_33", 1)):
+        for raw in _cif_column(block, tag):
+            value = _cif_number(raw, tag, label, unknown_ok=True)
+            if value is not None and not 0 <= value * scale <= _MAX_B:
+                raise InputError(f"{label}: {tag} = {value:g}; displacement parameters are "
+                                 f"non-negative (and B below {_MAX_B:g} A^2)")
+
+
+#: Symmetry images closer than this (angstrom) are one position: a special
+#: position whose coordinates are rounded in the CIF.
+_SAME_POSITION_A = 0.02
+#: Occupancy sums may exceed 1 by rounding (three sites of 0.334).
+_OCCUPANCY_TOLERANCE = 0.01
+
+
+def _periodic_distances(frac_a, frac_b, orth):
+    """Shortest distances (angstrom) between fractional points, last axes broadcast."""
+    diff = frac_a - frac_b
+    diff -= np.round(diff)
+    return np.linalg.norm(diff @ orth.T, axis=-1)
+
+
+def _expand_sites(frac, occ, rotations, translations, orth):
+    """Symmetry images of every site, keeping the total occupancy of split sites.
+
+    Images closer than ``_SAME_POSITION_A`` are one special position (the
+    occupancy given applies to it, as CIF defines).  Images further apart but
+    within ``_CLOSE_ATOMS_A`` are alternative positions of a disordered atom
+    when occupancy x number of such images <= 1: all are kept, so the site
+    keeps its total occupancy.  Otherwise they are a special position given
+    imprecisely and are merged.
+
+    Returns
+    -------
+    keep : ndarray of bool, shape (n_sites, n_ops)
+        Which image (site i, operation k) is kept.
+    images : ndarray, shape (n_sites, n_ops, 3)
+        Fractional coordinates of all images, in [0, 1).
+    split, merged : ndarray of bool, shape (n_sites,)
+        Sites kept as split positions / merged as imprecise special positions.
+    """
+    images = np.mod(np.einsum("kij,nj->nki", rotations, frac) + translations, 1.0)
+    n, m = images.shape[:2]
+    keep = np.ones((n, m), dtype=bool)
+    split = np.zeros(n, dtype=bool)
+    merged = np.zeros(n, dtype=bool)
+    earlier = np.tri(m, k=-1, dtype=bool)  # [j, k]: image k comes before image j
+    chunk = max(1, 2_000_000 // (m * m))
+    for start in range(0, n, chunk):  # bounded memory: chunk x m x m distances
+        sl = slice(start, start + chunk)
+        img = images[sl]
+        d = _periodic_distances(img[:, :, None, :], img[:, None, :, :], orth)
+        first = ~np.any((d < _SAME_POSITION_A) & earlier, axis=2)
+        near = (d < _CLOSE_ATOMS_A) & first[:, None, :] & first[:, :, None]
+        cluster = np.where(first, near.sum(axis=2), 0).max(axis=1)
+        crowded = (cluster > 1) & (occ[sl] * cluster > 1 + _OCCUPANCY_TOLERANCE)
+        wide = ~np.any((d < _CLOSE_ATOMS_A) & earlier & first[:, None, :], axis=2) & first
+        keep[sl] = np.where(crowded[:, None], wide, first)
+        split[sl] = (cluster > 1) & ~crowded
+        merged[sl] = crowded
+    return keep, images, split, merged
+
+
+def _close_pairs(frac, orth, radius):
+    """Pairs (i, j, distance) of sites closer than ``radius`` angstrom, periodic.
+
+    A k-d tree holds the sites and those periodic copies that lie within
+    ``radius`` of the cell, so the memory and work grow linearly with the
+    number of sites.
+    """
+    from scipy.spatial import cKDTree
+
+    n = len(frac)
+    if n < 2:
+        return np.zeros(0, int), np.zeros(0, int), np.zeros(0)
+    frac = np.mod(frac, 1.0)
+    # margin in fractional units: radius over the spacing of each family of cell faces
+    margin = radius * np.linalg.norm(np.linalg.inv(orth), axis=1)
+    shifts = np.array([(i, j, k) for i in (-1, 0, 1) for j in (-1, 0, 1) for k in (-1, 0, 1)])
+    shifts = shifts[np.argsort(np.abs(shifts).sum(axis=1), kind="stable")]  # (0, 0, 0) first
+    copies = frac[None, :, :] + shifts[:, None, :]
+    near = np.all((copies > -margin) & (copies < 1 + margin), axis=2)
+    near[0] = True
+    shift_index, site = np.nonzero(near)
+    points = copies[shift_index, site] @ orth.T
+    pairs = cKDTree(points).query_pairs(radius, output_type="ndarray")
+    p, q = pairs[:, 0], pairs[:, 1]
+    keep = ((shift_index[p] == 0) | (shift_index[q] == 0)) & (site[p] != site[q])
+    p, q = p[keep], q[keep]
+    dist = np.linalg.norm(points[p] - points[q], axis=1)
+    i, j = np.minimum(site[p], site[q]), np.maximum(site[p], site[q])
+    if len(i):  # one pair may be found through several copies: keep the shortest
+        order = np.lexsort((dist, j, i))
+        i, j, dist = i[order], j[order], dist[order]
+        first = np.ones(len(i), dtype=bool)
+        first[1:] = (i[1:] != i[:-1]) | (j[1:] != j[:-1])
+        i, j, dist = i[first], j[first], dist[first]
+    return i, j, dist
+
+
+@dataclass(frozen=True)
+class _Expansion:
+    """The unit-cell content of one symmetry choice, with its overlap diagnosis."""
+
+    site_index: np.ndarray   # CIF site of each atom
+    fractional: np.ndarray
+    occupancy: np.ndarray
+    overlaps: int            # pairs of atoms closer than _CLOSE_ATOMS_A that cannot coexist
+    overfull: list           # (labels, total occupancy) of positions holding more than 1
+    shared: list             # element pairs sharing one position (substitutional disorder)
+    split: tuple             # labels of sites split over nearby positions
+    merged: tuple            # labels of sites merged onto a special position
+
+
+def _expand(small, sg, orth):
+    sites = small.sites
+    frac = np.array([[s.fract.x, s.fract.y, s.fract.z] for s in sites], dtype=float)
+    occ = np.array([s.occ for s in sites], dtype=float)
+    ops = list(sg.operations())
+    rotations = np.array([np.array(op.rot) / op.DEN for op in ops])
+    translations = np.array([np.array(op.tran) / op.DEN for op in ops])
+    keep, images, split, merged = _expand_sites(frac, occ, rotations, translations, orth)
+    site_index, op_index = np.nonzero(keep)
+    fractional = images[site_index, op_index]
+    occupancy = occ[site_index]
+    i, j, dist = _close_pairs(fractional, orth, _CLOSE_ATOMS_A)
+    pair_occ = occupancy[i] + occupancy[j]
+    same = dist < _SAME_POSITION_A
+    coexist = pair_occ <= 1 + _OCCUPANCY_TOLERANCE
+    overlaps = int(np.sum(~same & ~coexist))
+    # total occupancy of every position shared by several sites
+    total = occupancy.copy()
+    np.add.at(total, i[same], occupancy[j[same]])
+    np.add.at(total, j[same], occupancy[i[same]])
+    labels = [s.label for s in sites]
+    overfull = []
+    for a in np.flatnonzero(total > 1 + _OCCUPANCY_TOLERANCE)[:1]:
+        partners = j[same & (i == a)].tolist() + i[same & (j == a)].tolist()
+        names = sorted({labels[site_index[k]] for k in [a, *partners]})
+        overfull.append((names, float(total[a])))
+    elements = [s.element.name for s in sites]
+    shared = sorted({tuple(sorted((elements[site_index[a]], elements[site_index[b]])))
+                     for a, b in zip(i[same], j[same])
+                     if elements[site_index[a]] != elements[site_index[b]]})
+    return _Expansion(site_index, fractional, occupancy, overlaps, overfull, shared,
+                      tuple(labels[k] for k in np.flatnonzero(split)),
+                      tuple(labels[k] for k in np.flatnonzero(merged)))
 
 
 def _crystal_from_small(small, name, label):
@@ -478,45 +746,68 @@ def _crystal_from_small(small, name, label):
         small.spacegroup_hm = "P 1"
         orders = ["1"]
 
+    orth = np.array(cell.orth.mat, dtype=float)
     trials = []
     for order in orders:
         try:
             small.determine_and_set_spacegroup(order)
         except (RuntimeError, ValueError) as exc:
             raise InputError(f"{label}: cannot determine the space group ({exc})") from None
-        if small.spacegroup is None:
-            continue
-        sites = small.get_all_unit_cell_sites()
-        trials.append((_count_close_pairs(sites, cell), len(sites),
-                       small.spacegroup.xhm(), order, sites))
+        if small.spacegroup is None or small.spacegroup.xhm() in {t[2] for t in trials}:
+            continue  # unknown, or the same group again (both origin choices of P 1)
+        expansion = _expand(small, small.spacegroup, orth)
+        trials.append((expansion.overlaps + len(expansion.overfull),
+                       len(expansion.site_index), small.spacegroup.xhm(), order, expansion))
     if not trials:
         raise InputError(f"{label}: the space group given in the CIF is not recognised")
     distinct = {t[2] for t in trials}
     trials.sort(key=lambda t: (t[0], t[1]))
-    close, _, xhm, order, sites = trials[0]
+    _, _, xhm, order, expansion = trials[0]
     small.determine_and_set_spacegroup(order)
     sg = small.spacegroup
     if len(distinct) > 1:
         notes.append(f"the Hermann-Mauguin symbol leaves the origin choice open; "
                      f"{xhm} chosen because it places the atoms without overlaps")
-    if close:
-        notes.append(f"{close} pairs of atoms closer than {_CLOSE_ATOMS_A} A after "
-                     "symmetry expansion: check the space-group setting")
+    if expansion.overfull:
+        names, total = expansion.overfull[0]
+        raise InputError(f"{label}: sites {', '.join(names)} share one position with a total "
+                         f"occupancy of {total:.3g}; at most 1 fits on a site")
+    if expansion.overlaps:
+        notes.append(f"{expansion.overlaps} pairs of atoms closer than {_CLOSE_ATOMS_A} A "
+                     "after symmetry expansion: check the space-group setting")
+    for a, b in expansion.shared:
+        notes.append(f"{a} and {b} share sites (substitutional disorder): each keeps its "
+                     "occupancy")
+    if expansion.split:
+        notes.append(f"site{'s' if len(expansion.split) > 1 else ''} "
+                     f"{', '.join(expansion.split)}: symmetry images closer than "
+                     f"{_CLOSE_ATOMS_A} A kept as alternative positions (disorder); the total "
+                     "occupancy is preserved")
+    if expansion.merged:
+        notes.append(f"site{'s' if len(expansion.merged) > 1 else ''} "
+                     f"{', '.join(expansion.merged)} lie within {_CLOSE_ATOMS_A} A of a special "
+                     "position: their symmetry images are merged")
 
-    elements, frac, occ, b_iso = [], [], [], []
+    site_elements, site_b = [], []
     aniso_reduced = False
-    for site in sites:
-        elements.append(site.element.name)
-        frac.append([site.fract.x, site.fract.y, site.fract.z])
-        occ.append(site.occ)
+    for site in small.sites:
+        site_elements.append(site.element.name)
         u = site.u_iso
         if site.aniso.nonzero():
             u = cell.calculate_u_eq(site.aniso)
             aniso_reduced = True
-        b_iso.append(8 * math.pi ** 2 * u)
+        site_b.append(8 * math.pi ** 2 * u)
     if aniso_reduced:
         notes.append("anisotropic displacements reduced to the isotropic equivalent U_eq")
-    b_iso = np.array(b_iso)
+    if min(site_b) < 0:
+        raise InputError(f"{label}: the anisotropic displacements give a negative U_eq; "
+                         "displacement parameters are non-negative")
+    if not np.any(expansion.occupancy > 0):
+        raise InputError(f"{label}: every site has occupancy 0; the cell scatters nothing")
+    elements = [site_elements[k] for k in expansion.site_index]
+    frac = expansion.fractional
+    occ = expansion.occupancy
+    b_iso = np.array(site_b)[expansion.site_index]
     if np.all(b_iso == 0):
         notes.append("the CIF gives no displacement parameters: B = 0 (no Debye-Waller damping)")
 
@@ -537,24 +828,16 @@ def _crystal_from_small(small, name, label):
         notes=tuple(dict.fromkeys(notes)),
         source=label,
     )
+    if crystal.n_sites > _SPGLIB_MAX_SITES:
+        return dataclasses.replace(crystal, notes=crystal.notes + (
+            f"{crystal.n_sites} atoms in the cell: the spglib cross-check of the space group "
+            f"is skipped above {_SPGLIB_MAX_SITES}",))
     check = _spglib_number(crystal)
     if check is not None and check != crystal.space_group_number:
         crystal = dataclasses.replace(crystal, notes=crystal.notes + (
             f"spglib finds space group {check} on the expanded cell, the CIF gives "
             f"{crystal.space_group_number}; selection rules follow the CIF",))
     return crystal
-
-
-def _count_close_pairs(sites, cell):
-    if len(sites) < 2:
-        return 0
-    frac = np.array([[s.fract.x, s.fract.y, s.fract.z] for s in sites])
-    diff = frac[:, None, :] - frac[None, :, :]
-    diff -= np.round(diff)
-    orth = np.array(cell.orth.mat)
-    dist = np.linalg.norm(diff @ orth.T, axis=2)
-    iu = np.triu_indices(len(sites), 1)
-    return int(np.sum(dist[iu] < _CLOSE_ATOMS_A))
 
 
 def _spglib_number(crystal):

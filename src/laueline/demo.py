@@ -23,6 +23,7 @@ truth.
 
 from __future__ import annotations
 
+import contextlib
 from pathlib import Path
 
 import numpy as np
@@ -54,34 +55,94 @@ def scenario_strain(crystal):
     return axes.T @ from_voigt(SCENARIO["strain_sample"]) @ axes
 
 
-def render_scenario(folder, force=False):
+#: Files the demonstration writes into its folder.
+DEMO_FILES = ("reference.tif", "reference.truth.json", "channel.tif", "channel.truth.json",
+              "reference.csv", "channel.csv", "calibration.json", "channel-fit.json",
+              "channel-fit.png", "reference-detection.png", "line-scan.png")
+
+
+def _scenario_files(folder):
+    folder = Path(folder)
+    return [folder / f"{name}{suffix}" for name in ("reference", "channel")
+            for suffix in (".tif", ".truth.json")]
+
+
+def _prepare_folder(folder):
+    """Check ``folder`` can hold the outputs; create it if missing. Returns True if created."""
+    from .errors import InputError
+
+    folder = Path(folder)
+    if folder.exists():
+        if not folder.is_dir():
+            raise InputError(f"{folder} exists and is not a folder; name a folder for the "
+                             "demonstration's files")
+        return False
+    parent = folder.parent
+    if not parent.is_dir():
+        raise InputError(f"cannot create {folder}: folder {parent} does not exist")
+    try:
+        folder.mkdir()
+    except OSError as exc:
+        raise InputError(f"cannot create {folder}: {exc.strerror}") from None
+    return True
+
+
+def _remove_if_empty(folder):
+    try:
+        folder.rmdir()
+    except OSError:  # not empty (files of an earlier run) or gone: leave it
+        pass
+
+
+def render_scenario(folder, force=False, plan=None):
     """Render the reference and channel patterns with their truth files into ``folder``.
+
+    All four files are checked before rendering and named together at the
+    end (see :mod:`laueline.io.outputs`).  With ``plan``, an active
+    :class:`~laueline.io.outputs.OutputPlan` holding the files, they are
+    only staged in it.
 
     Returns the paths of the two images.
     """
     from . import report
     from .crystal import read_crystal
-    from .images.io import write_image
     from .images.render import RenderSettings, render_pattern
+    from .io.outputs import OutputPlan, write_image
 
     folder = Path(folder)
-    folder.mkdir(parents=True, exist_ok=True)
-    si = read_crystal(SCENARIO["structure"])
-    paths = {}
-    for name, strain in [("reference", None), ("channel", scenario_strain(si))]:
-        settings = RenderSettings(rotation_deg=SCENARIO["rotation_deg"],
-                                  seed=SCENARIO["seeds"][name])
-        image, truth = render_pattern(si, SCENARIO["zone"], SCENARIO["effective_kv"],
-                                      SCENARIO["disk_mrad"], settings, strain=strain,
-                                      x_axis=SCENARIO["x_axis"])
-        truth["scenario"] = {k: (list(v) if isinstance(v, tuple) else v)
-                             for k, v in SCENARIO.items() if k != "seeds"}
-        truth["region"] = name
-        path = folder / f"{name}.tif"
-        truth["image"] = path.name
-        write_image(path, image, force=force)
-        report.write_json(truth, folder / f"{name}.truth.json", force=force)
-        paths[name] = path
+    own = plan is None
+    created = False
+    if own:
+        created = _prepare_folder(folder)
+        plan = OutputPlan(_scenario_files(folder), force=force)
+    try:
+        if own:
+            plan.check()
+        si = read_crystal(SCENARIO["structure"])
+        paths = {}
+        with contextlib.ExitStack() as stack:
+            if own:
+                stack.enter_context(plan.active())
+            for name, strain in [("reference", None), ("channel", scenario_strain(si))]:
+                settings = RenderSettings(rotation_deg=SCENARIO["rotation_deg"],
+                                          seed=SCENARIO["seeds"][name])
+                image, truth = render_pattern(si, SCENARIO["zone"], SCENARIO["effective_kv"],
+                                              SCENARIO["disk_mrad"], settings, strain=strain,
+                                              x_axis=SCENARIO["x_axis"])
+                truth["scenario"] = {k: (list(v) if isinstance(v, tuple) else v)
+                                     for k, v in SCENARIO.items() if k != "seeds"}
+                truth["region"] = name
+                path = folder / f"{name}.tif"
+                truth["image"] = path.name
+                write_image(path, image, force=force)
+                report.write_json(truth, folder / f"{name}.truth.json", force=force)
+                paths[name] = path
+            if own:
+                plan.commit()
+    except BaseException:
+        if created:
+            _remove_if_empty(folder)
+        raise
     return paths
 
 
@@ -104,10 +165,11 @@ def scenario_points(truth, n=30, noise_px=0.25, seed=0):
     return (xy, np.array([c["hkl_a"] for c in rows]), np.array([c["hkl_b"] for c in rows]))
 
 
-def write_scenario_points(folder, force=False):
+def write_scenario_points(folder, force=False, plan=None):
     """Write ``reference.csv`` and ``channel.csv``, digitised crossings of both patterns.
 
-    Needs the truth files of :func:`render_scenario` in ``folder``.
+    Needs the truth files of :func:`render_scenario` in ``folder`` (staged in
+    ``plan``, an active :class:`laueline.io.outputs.OutputPlan`, if given).
     """
     from . import report
     from .points import write_points
@@ -115,7 +177,10 @@ def write_scenario_points(folder, force=False):
     folder = Path(folder)
     paths = {}
     for name in ("reference", "channel"):
-        truth = report.read_json(folder / f"{name}.truth.json", "laueline.truth")
+        truth_path = folder / f"{name}.truth.json"
+        if plan is not None:
+            truth_path = plan.staged_path(truth_path)
+        truth = report.read_json(truth_path, "laueline.truth")
         xy, hkl_a, hkl_b = scenario_points(truth, seed=SCENARIO["seeds"][name])
         paths[name] = folder / f"{name}.csv"
         write_points(paths[name], xy, hkl_a, hkl_b, force=force)
@@ -125,46 +190,74 @@ def write_scenario_points(folder, force=False):
 def run_demo(out="laueline-demo", force=False, stream=None):
     """Run the whole demonstration, writing images, JSON and figures into ``out``.
 
+    Every output is checked before any work starts and all are named
+    together at the end; a failure or an interruption leaves none of them.
+
     Returns
     -------
     (calibration FitResult, channel FitResult)
     """
+    out = Path(out)
+    created = _prepare_folder(out)
+    try:
+        return _run_demo(out, force, stream)
+    except BaseException:
+        if created:
+            _remove_if_empty(out)
+        raise
+
+
+def _run_demo(out, force, stream):
     import sys
 
-    from . import report
-    from .crystal import read_crystal
-    from .images.detect import detect_lines
-    from .images.io import read_image
-    from .plot import detection_figure, fit_figure, save_figure
-    from .fit import CAUTIONS, refine_image
-    from .strain import cubic_stiffness, sample_axes
+    from .io.outputs import OutputPlan
 
     stream = stream or sys.stdout
 
     def say(text=""):
         print(text, file=stream)
 
-    out = Path(out)
-    out.mkdir(parents=True, exist_ok=True)
-    outputs = [out / n for n in ("reference.tif", "channel.tif", "reference.csv", "channel.csv",
-                                 "calibration.json",
-                                 "channel-fit.json", "channel-fit.png",
-                                 "reference-detection.png", "line-scan.zarr", "line-scan.png")]
-    report.check_outputs(outputs, force)
+    outputs = [out / n for n in DEMO_FILES]
+    plan = OutputPlan(outputs, force=force)
+    plan.check()
+    store = out / "line-scan.zarr"
+    if store.exists() and not force:
+        from .errors import InputError
+
+        raise InputError(f"{store} exists; pass --force to overwrite it")
+    with plan.active():
+        cal, fit = _demo_steps(out, force, plan, say)
+        plan.commit()
+    say(f"   wrote {', '.join(p.name for p in outputs)} in {out}/")
+    return cal, fit
+
+
+def _demo_steps(out, force, plan, say):
+    """Render, calibrate and fit, staging every file in ``plan``."""
+    from . import report
+    from .crystal import read_crystal
+    from .images.detect import detect_lines
+    from .images.io import read_image
+    from .io.outputs import save_figure
+    from .plot import detection_figure, fit_figure
+    from .fit import CAUTIONS, refine_image
+    from .strain import cubic_stiffness, sample_axes
+
     si = read_crystal(SCENARIO["structure"])
     say("laueline demo: an invented test structure (described in examples/README.md)")
     say(f"  Si [2 3 0], nominal {SCENARIO['nominal_kv']:g} kV, disk "
         f"{SCENARIO['disk_mrad']:g} mrad; reference in the substrate, measurement in the "
         "channel")
-    paths = render_scenario(out, force=force)
-    points = write_scenario_points(out, force=force)
+    paths = render_scenario(out, force=force, plan=plan)
+    points = write_scenario_points(out, force=force, plan=plan)
     say(f"  rendered {paths['reference'].name} and {paths['channel'].name} in {out}/, with "
         f"their crossings digitised by hand in {points['reference'].name} and "
         f"{points['channel'].name}")
 
-    ref_image, sat = read_image(paths["reference"])
+    ref_image, sat = read_image(plan.staged_path(paths["reference"]))
     ref_det = detect_lines(ref_image, saturation=sat, source=str(paths["reference"]))
-    save_figure(detection_figure(ref_det, ref_image), out / "reference-detection.png")
+    save_figure(detection_figure(ref_det, ref_image), out / "reference-detection.png",
+                force=force)
     cal = refine_image(si, SCENARIO["zone"], ref_det, kv=SCENARIO["nominal_kv"], model="fixed",
                        free=["kv"], x_axis=SCENARIO["x_axis"], disk_mrad=SCENARIO["disk_mrad"],
                        mirror=False)
@@ -178,7 +271,7 @@ def run_demo(out="laueline-demo", force=False, stream=None):
     scale_sigma = cal.detector_sigma["scale_px_per_mrad"]
     say(f"   camera scale {cal.detector.scale_px_per_mrad:.4f} +- {scale_sigma:.4f} px/mrad")
 
-    image, sat = read_image(paths["channel"])
+    image, sat = read_image(plan.staged_path(paths["channel"]))
     det = detect_lines(image, saturation=sat, source=str(paths["channel"]))
     axes = sample_axes(si.basis, SCENARIO["sample_x"], SCENARIO["sample_z"])
     stiffness = cubic_stiffness(*SCENARIO["elastic_GPa"])
@@ -187,7 +280,7 @@ def run_demo(out="laueline-demo", force=False, stream=None):
     report.write_json(report.fit_document(fit, calibration_source=str(out / "calibration.json"),
                                           points_source=str(paths["channel"])),
                       out / "channel-fit.json", force=force)
-    save_figure(fit_figure(fit, si, image=image), out / "channel-fit.png")
+    save_figure(fit_figure(fit, si, image=image), out / "channel-fit.png", force=force)
 
     from .strain import stress, voigt
 
@@ -218,9 +311,8 @@ def run_demo(out="laueline-demo", force=False, stream=None):
         say(f"   warning: {w}")
     for c in CAUTIONS:
         say(f"   caution: {c}")
-    run_line_scan(out, si, (cal.kv, cal.detector), ref_image, say, force=force)
+    run_line_scan(out, si, cal.calibration(), ref_image, say, force=force)
     say("")
-    say(f"   wrote {', '.join(p.name for p in outputs)} in {out}/")
     return cal, fit
 
 
@@ -272,7 +364,7 @@ def run_line_scan(out, crystal, calibration, reference_image, say, force=False):
     scan = scan_from_array(images, step_nm=LINE_SCAN["step_nm"], source="demo line scan")
     scan.nav_coords["scan"] = (position, "nm")
     ds = map_strain(scan, plan, out=Path(out) / "line-scan.zarr", force=force, progress=False)
-    save_figure(map_figure(ds), Path(out) / "line-scan.png")
+    save_figure(map_figure(ds), Path(out) / "line-scan.png", force=force)
     truth = line_scan_strain(position)
     value = np.asarray(ds["sample_exx"].values)
     sigma = np.asarray(ds["sigma_sample_exx"].values)

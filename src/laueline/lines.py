@@ -41,6 +41,7 @@ import numpy as np
 
 from .crystal import MAX_REFLECTIONS, Crystal
 from .errors import InputError
+from .limits import MAX_LINES, check_inputs
 from .frame import ZoneFrame, default_x_axis, frame_rotations, reduce_indices, zone_frame
 from .optics import Beam, make_beam
 from .results import ResultMixin, format_indices
@@ -492,6 +493,7 @@ def predict(crystal, zone, kv=200.0, disk_mrad=6.0, *, x_axis=None, gmax=4.0,
     -------
     Pattern
     """
+    check_inputs(min_strength=min_strength, min_angle_deg=min_angle_deg)
     disk_mrad = float(disk_mrad)
     if not math.isfinite(disk_mrad) or disk_mrad <= 0:
         raise InputError(f"the disk radius must be positive, got {disk_mrad:g} mrad")
@@ -551,6 +553,9 @@ def predict(crystal, zone, kv=200.0, disk_mrad=6.0, *, x_axis=None, gmax=4.0,
     lp = LineParameters(params.g_perp[idx], params.g_perp_norm[idx], params.gz[idx], params.c[idx])
     f_kept = f_abs[keep][order]
     strength_kept = strength[keep][order]
+    if len(idx) > MAX_LINES:
+        raise InputError(f"{len(idx)} lines enter the disk, above the limit of {MAX_LINES}; "
+                         "raise --min-strength (min_strength=) or lower --gmax (gmax=)")
     points = _locus_points(lp, radius, n_points) * 1e3
 
     pairs, xy, angles = _all_crossings(lp, radius, min_angle_deg)

@@ -46,9 +46,12 @@ _H2_OVER_2PI_M0_E_VA2 = _H ** 2 / (2 * math.pi * _M0 * _E) * 1e20  # V angstrom^
 
 
 def _check_kv(kv):
+    from .limits import check_value
+
     kv = float(kv)
     if not math.isfinite(kv) or kv <= 0:
         raise InputError(f"the accelerating voltage must be positive, got {kv:g} kV")
+    check_value("kv", kv)
     return kv
 
 

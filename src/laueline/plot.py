@@ -113,9 +113,14 @@ def style_figure(fig):
     return fig
 
 
-def save_figure(fig, path):
-    """Save a figure in laueline's style; the format follows the file suffix."""
-    style_figure(fig).savefig(path, dpi=150, facecolor=fig.get_facecolor())
+def save_figure(fig, path, force=False):
+    """Save a figure in laueline's style, atomically; the format follows the file suffix.
+
+    See :func:`laueline.io.outputs.save_figure`.
+    """
+    from .io.outputs import save_figure as write
+
+    write(style_figure(fig), path, force=force)
 
 
 def _halo(width=2.4):

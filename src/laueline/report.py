@@ -2,20 +2,20 @@
 
 Every JSON document carries ``"schema"``, naming its kind and version
 (``laueline.pattern/1`` ...); keys and meanings are fixed by the README.
-Files are never overwritten unless the caller passes ``force=True``.
+Files are written atomically by :mod:`laueline.io.outputs` and never
+overwritten unless the caller passes ``force=True``.
 """
 
 from __future__ import annotations
 
-import csv
 import json
 import math
-import os
 from pathlib import Path
 
 import numpy as np
 
 from .errors import InputError
+from .io import outputs
 
 __all__ = [
     "PATTERN_SCHEMA",
@@ -43,7 +43,7 @@ __all__ = [
 ]
 
 PATTERN_SCHEMA = "laueline.pattern/1"
-FIGURE_SUFFIXES = (".png", ".svg", ".pdf")
+FIGURE_SUFFIXES = outputs.FIGURE_SUFFIXES
 
 F_UNIT = ("angstrom; kinematic electron structure factor sum_j occ_j f_j exp(-B_j s^2) "
           "exp(2 pi i h.x_j) with neutral-atom factors of International Tables C 4.3.2.2, "
@@ -60,86 +60,13 @@ def format_hkl(hkl):
     return format_indices(hkl)
 
 
-def check_outputs(paths, force=False, figure=None):
-    """Refuse, before any work, to overwrite files or write into missing folders."""
-    for path in [p for p in paths if p is not None] + ([figure] if figure else []):
-        path = Path(path)
-        if path.exists() and not force:
-            raise InputError(f"{path} exists; pass --force to overwrite it")
-        if not path.parent.exists() and str(path.parent) not in ("", "."):
-            raise InputError(f"cannot write {path}: folder {path.parent} does not exist")
-    if figure is not None and Path(figure).suffix.lower() not in FIGURE_SUFFIXES:
-        raise InputError(f"figure {figure}: the suffix must be one of "
-                         f"{', '.join(FIGURE_SUFFIXES)}")
-
-
-def _clean(value):
-    if isinstance(value, dict):
-        return {k: _clean(v) for k, v in value.items()}
-    if isinstance(value, (list, tuple)):
-        return [_clean(v) for v in value]
-    if isinstance(value, np.ndarray):
-        return _clean(value.tolist())
-    if isinstance(value, (np.integer,)):
-        return int(value)
-    if isinstance(value, (np.floating, float)):
-        value = float(value)
-        return value if math.isfinite(value) else None
-    if isinstance(value, np.bool_):
-        return bool(value)
-    return value
-
-
-def _json_default(value):
-    if isinstance(value, np.ndarray):
-        return value.tolist()
-    if isinstance(value, np.integer):
-        return int(value)
-    if isinstance(value, np.floating):
-        return float(value)
-    if isinstance(value, np.bool_):
-        return bool(value)
-    raise TypeError(f"{type(value).__name__} is not JSON serialisable")
-
-
-def json_text(document):
-    """JSON text of a document: numpy values converted, non-finite numbers as null.
-
-    One pass through the C encoder, compact separators; only a document
-    holding a NaN or an infinity is cleaned first (a second pass).
-    """
-    try:
-        return json.dumps(document, separators=(",", ":"), allow_nan=False,
-                          default=_json_default)
-    except ValueError:
-        return json.dumps(_clean(document), separators=(",", ":"), allow_nan=False)
-
-
-def write_json(document, path, force=False):
-    """Write a JSON document (numpy values converted, non-finite -> null)."""
-    path = Path(path)
-    check_outputs([path], force)
-    text = json_text(document)
-    tmp = path.with_name(path.name + ".part")
-    tmp.write_text(text + "\n", encoding="utf-8")
-    os.replace(tmp, path)
-
-
-def write_csv(path, header, rows, force=False):
-    """Write a CSV table with a header row."""
-    path = Path(path)
-    check_outputs([path], force)
-    with open(path, "w", newline="", encoding="utf-8") as fh:
-        writer = csv.writer(fh)
-        writer.writerow(header)
-        for row in rows:
-            writer.writerow([_csv_cell(v) for v in row])
-
-
-def _csv_cell(v):
-    if isinstance(v, (float, np.floating)):
-        return f"{float(v):.10g}"
-    return v
+# Files are written by laueline.io.outputs (atomic, exclusive without force);
+# these names stay here for callers of the report module.
+check_outputs = outputs.check_outputs
+write_json = outputs.write_json
+write_csv = outputs.write_csv
+json_text = outputs.json_text
+_clean = outputs.json_ready
 
 
 def read_json(path, schema_prefix):
@@ -149,6 +76,11 @@ def read_json(path, schema_prefix):
         doc = json.loads(path.read_text(encoding="utf-8"))
     except OSError as exc:
         raise InputError(f"cannot read {path}: {exc.strerror}") from None
+    except UnicodeDecodeError:
+        raise InputError(f"{path} is not UTF-8 text (expected a laueline JSON document)") \
+            from None
+    except RecursionError:
+        raise InputError(f"{path}: JSON nested too deeply") from None
     except json.JSONDecodeError as exc:
         raise InputError(f"{path} is not JSON ({exc.msg}, line {exc.lineno})") from None
     schema = doc.get("schema") if isinstance(doc, dict) else None

@@ -55,6 +55,7 @@ from functools import reduce
 import numpy as np
 
 from .errors import InputError
+from .limits import check_inputs
 from .lines import crossing_positions, predict
 from .strain import from_voigt, voigt
 from .thickness import two_beam_intensity
@@ -501,6 +502,7 @@ def survey(crystal, *, kv=200.0, disk_mrad=6.0, max_index=7, near=None, max_tilt
     progress : bool
         Show a progress bar on stderr for surveys longer than a second.
     """
+    check_inputs(max_tilt_deg=max_tilt_deg, sigma_mrad=sigma_mrad)
     if component is not None and component not in COMPONENTS:
         raise InputError(f"unknown component '{component}'; choose one of "
                          f"{', '.join(COMPONENTS)}")

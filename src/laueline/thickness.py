@@ -32,6 +32,7 @@ from dataclasses import dataclass, field
 import numpy as np
 
 from .errors import InputError
+from .limits import check_inputs
 from .optics import relativistic_factor, wavelength_A
 
 __all__ = ["ThicknessResult", "thickness_from_fringes", "kinematic_extinction_distance_nm",
@@ -157,6 +158,8 @@ def thickness_from_fringes(fringes, separation, *, kv=200.0, d_spacing_A=None, c
     -------
     ThicknessResult
     """
+    check_inputs(kv=kv, d_spacing_A=d_spacing_A, first_fringe_index=first_fringe_index,
+                 fringes_sigma=fringes_sigma, separation_sigma=separation_sigma)
     x = np.asarray(fringes, dtype=float).ravel()
     if len(x) < 2:
         raise InputError("at least two fringes are needed (three or more to choose the "

@@ -18,6 +18,7 @@ import numpy as np
 
 from ..detector import Detector
 from ..errors import InputError
+from ..limits import check_inputs
 from ..lines import locus_distances, predict
 
 __all__ = ["RenderSettings", "render_pattern", "TRUTH_SCHEMA"]
@@ -100,6 +101,8 @@ def render_pattern(crystal, zone, kv=200.0, disk_mrad=6.0, settings=None, *, str
         their loci in pixels, and the true crossing positions in pixels.
     """
     settings = settings or RenderSettings()
+    check_inputs(scale_px_per_mrad=settings.scale_px_per_mrad, dose=settings.dose,
+                 seed=settings.seed)
     rows, cols = (int(v) for v in settings.shape)
     if rows < 32 or cols < 32 or rows * cols > 4096 * 4096:
         raise InputError(f"image size {cols} x {rows} px is outside 32..4096")
