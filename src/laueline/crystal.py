@@ -632,15 +632,17 @@ def _expand_sites(frac, occ, rotations, translations, orth):
     return keep, images, split, merged
 
 
+_DIRECT_PAIRS_LIMIT = 1500  # points: up to this many, all distances (18 MB) beat a k-d tree
+
+
 def _close_pairs(frac, orth, radius):
     """Pairs (i, j, distance) of sites closer than ``radius`` angstrom, periodic.
 
     A k-d tree holds the sites and those periodic copies that lie within
     ``radius`` of the cell, so the memory and work grow linearly with the
-    number of sites.
+    number of sites.  Small cells (the usual case) are compared directly,
+    which spares every command the import of the spatial index.
     """
-    from scipy.spatial import cKDTree
-
     n = len(frac)
     if n < 2:
         return np.zeros(0, int), np.zeros(0, int), np.zeros(0)
@@ -654,8 +656,14 @@ def _close_pairs(frac, orth, radius):
     near[0] = True
     shift_index, site = np.nonzero(near)
     points = copies[shift_index, site] @ orth.T
-    pairs = cKDTree(points).query_pairs(radius, output_type="ndarray")
-    p, q = pairs[:, 0], pairs[:, 1]
+    if len(points) <= _DIRECT_PAIRS_LIMIT:
+        d2 = np.sum((points[:, None, :] - points[None, :, :]) ** 2, axis=2)
+        p, q = np.nonzero(np.triu(d2 <= radius * radius, k=1))
+    else:
+        from scipy.spatial import cKDTree
+
+        pairs = cKDTree(points).query_pairs(radius, output_type="ndarray")
+        p, q = pairs[:, 0], pairs[:, 1]
     keep = ((shift_index[p] == 0) | (shift_index[q] == 0)) & (site[p] != site[q])
     p, q = p[keep], q[keep]
     dist = np.linalg.norm(points[p] - points[q], axis=1)

@@ -608,6 +608,12 @@ def _single_kwargs(kwargs):
             "calibration", "disk_mrad", "min_strength", "min_angle_deg", "match_mrad",
             "match_px", "pixel_frame", "source")
     spec = {k: kwargs.pop(k) for k in keys if k in kwargs}
+    from ..limits import check_inputs
+
+    check_inputs(**{k: v for k, v in spec.items()
+                    if k in ("center_px", "scale_px_per_mrad", "rotation_deg", "disk_mrad",
+                             "min_strength", "min_angle_deg", "match_mrad")},
+                 **{k: kwargs[k] for k in ("kv",) if k in kwargs})
     return spec, kwargs
 
 
