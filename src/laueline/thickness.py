@@ -319,21 +319,174 @@ class ProfileDetection:
     warnings: list = field(default_factory=list)
 
 
-def _segments(mask):
-    padded = np.concatenate([[False], mask, [False]])
-    change = np.flatnonzero(np.diff(padded.astype(int)))
-    return list(zip(change[::2], change[1::2] - 1))
+def _uniform(x, y):
+    """The profile on evenly spaced positions (interpolated when the spacing varies)."""
+    steps = np.diff(x)
+    step = float(np.median(steps))
+    if np.ptp(steps) <= 0.01 * step:
+        return x, y, step
+    grid = np.linspace(x[0], x[-1], int(round((x[-1] - x[0]) / step)) + 1)
+    return grid, np.interp(grid, x, y), float(grid[1] - grid[0])
 
 
-def _edge(position, smooth, start, stop, level):
-    """First crossing below ``level`` walking from index ``start`` toward ``stop``."""
-    step = 1 if stop > start else -1
-    for k in range(start, stop, step):
-        a, b = smooth[k], smooth[k + step]
-        if a >= level > b:
-            f = (a - level) / (a - b)
-            return position[k] + f * (position[k + step] - position[k])
-    return position[stop]
+def _jump_weights(window, gap):
+    """Weights extrapolating a straight line fitted to ``window`` samples across ``gap``.
+
+    The samples lie at distances gap + 0.5, gap + 1.5, ... from the point of
+    extrapolation (in samples); the result applied to them gives the line's
+    value there.
+    """
+    u = gap + 0.5 + np.arange(window)
+    du = u - u.mean()
+    return 1.0 / window - u.mean() * du / np.sum(du * du)
+
+
+def step_response(intensity, window=8, gap=2):
+    """Signed height of a step between every pair of neighbouring samples.
+
+    Straight lines are fitted to ``window`` samples on each side, leaving
+    ``gap`` samples out next to the step (where a blurred edge rises), and
+    extrapolated to the mid-point; the response is the right value minus the
+    left one.  Smooth curvature (fringes) cancels to first order, while a
+    disk edge responds with its full height whatever its blur up to about
+    ``gap`` samples.
+
+    Returns
+    -------
+    jump : ndarray, shape (n - 1,)
+        Element k is the step between samples k and k + 1 (zero where the
+        windows do not fit in the profile).
+    noise_factor : float
+        Standard deviation of the response per unit standard deviation of
+        independent noise in the samples.
+    """
+    y = np.asarray(intensity, dtype=float)
+    n = len(y)
+    c = _jump_weights(window, gap)
+    reach = gap + window
+    jump = np.zeros(n - 1)
+    if n > 2 * reach:
+        # right[k] = sum_i c_i y[k + 1 + gap + i]; left[k] = sum_i c_i y[k - gap - i]
+        right = np.correlate(y, c, mode="valid")          # right[j] = sum c_i y[j + i]
+        left = np.correlate(y, c[::-1], mode="valid")     # left[j] = sum c_i y[j + w - 1 - i]
+        k = np.arange(reach - 1, n - 1 - reach + 1)
+        jump[k] = right[k + 1 + gap] - left[k - gap - window + 1]
+    return jump, float(math.sqrt(2 * np.sum(c * c)))
+
+
+def _noise_level(y):
+    """Robust standard deviation of independent sample noise (second differences)."""
+    d2 = y[2:] - 2 * y[1:-1] + y[:-2]
+    return float(1.4826 * np.median(np.abs(d2 - np.median(d2))) / math.sqrt(6))
+
+
+def _strongest_steps(jump, reach):
+    """The step response with its side lobes and lesser neighbours zeroed.
+
+    A linear-extrapolation step filter answers a sharp edge with side lobes of
+    the opposite sign, up to 0.7 of the main response for windows of 8 samples
+    or more, one window away.  A sample is kept when it is the largest of its
+    sign within ``reach`` and no response of the other sign nearby is more
+    than 1.25 times larger (which a side lobe's parent always is).
+    """
+    from scipy.ndimage import maximum_filter1d
+
+    size = 2 * reach + 1
+    pos = np.clip(jump, 0, None)
+    neg = np.clip(-jump, 0, None)
+    max_pos, max_neg = maximum_filter1d(pos, size), maximum_filter1d(neg, size)
+    keep_pos = (pos > 0) & (pos >= max_pos) & (1.25 * pos >= max_neg)
+    keep_neg = (neg > 0) & (neg >= max_neg) & (1.25 * neg >= max_pos)
+    return np.where(keep_pos | keep_neg, jump, 0.0)
+
+
+def _find_disks(y, jump, noise, noise_jump, reach):
+    """Sample indices (rise, fall) of the direct disk and the shift to the diffracted one.
+
+    The direct disk is the strongest rise of the step response and the
+    strongest fall after it.  The diffracted disk has the same width (both are
+    images of the one condenser aperture) and must hold every sample that
+    stands clear of the background beyond the direct disk; within the shifts
+    that allow this, its edges are placed where rise and fall together step
+    most.  Its outer fringes may be as dark as the background, so its own
+    edges are not required to show.
+
+    Returns
+    -------
+    rise, fall : int
+        Steps (between sample k and k + 1) of the direct disk.
+    shift : int
+        Best shift in samples.
+    shift_range : (int, int)
+        The shifts that keep all of the diffracted signal inside the disk.
+    """
+    from scipy.ndimage import uniform_filter1d
+
+    n = len(y)
+    steps = _strongest_steps(jump, reach)
+    min_width = max(5, n // 50)
+    rise = int(np.argmax(steps))
+    # the direct disk's edges are sharp steps of a tenth of the profile's range
+    # or more, far above the noise
+    floor = max(5 * noise_jump, 0.1 * float(np.ptp(y)))
+    if steps[rise] < floor:
+        raise InputError("the profile does not show two disks (direct and diffracted): no "
+                         "sharp disk edge found")
+    after = steps[rise + min_width:]
+    if len(after) == 0 or after.min() > -floor:
+        raise InputError("the profile does not show two disks (direct and diffracted): "
+                         "check the profile runs through both")
+    fall = rise + min_width + int(np.argmin(after))
+    width = fall - rise
+    outside = y[:max(rise - reach, 0)]
+    size = 2 * reach + 1
+    smooth = uniform_filter1d(y, size)
+    start = fall + 2 * size              # clear of the direct disk's smoothed edge
+    beyond = smooth[start:]
+    if len(beyond) < width:
+        raise InputError("the profile ends before a second disk as wide as the first: check "
+                         "it runs through both disks along +g, direct disk first")
+    background = float(np.median(outside)) if len(outside) >= 10 else \
+        float(np.percentile(beyond, 5))
+    signal = np.flatnonzero(beyond > background + 5 * noise / math.sqrt(size))
+    if len(signal) == 0:
+        raise InputError("no diffracted disk stands out from the background after the "
+                         "direct disk")
+    first, last = signal[0] + start, signal[-1] + start
+    lo, hi = last - fall, first - rise      # shifts keeping [first, last] inside the box
+    if lo > hi:                              # signal wider than the disk: centre it
+        lo = hi = int(round((first + last - rise - fall) / 2))
+    lo, hi = max(lo - reach, width), min(hi + reach, len(jump) - 1 - fall)
+    if lo > hi:
+        raise InputError("the profile does not show two separate disks of the same width "
+                         "(direct and diffracted)")
+    shifts = np.arange(lo, hi + 1)
+    score = steps[rise + shifts] - steps[fall + shifts]
+    return rise, fall, int(shifts[np.argmax(score)]), (int(lo), int(hi))
+
+
+def _edge_crossing(x, light, k, window, gap):
+    """Sub-sample position of a step found between samples k and k + 1.
+
+    The step's mid-level is half-way between the straight lines extrapolated
+    from both sides (as in :func:`step_response`); the edge is where the
+    lightly smoothed profile crosses it nearest to the step.  Returns the
+    position and the slope there (profile units per position unit).
+    """
+    n = len(light)
+    c = _jump_weights(window, gap)
+    left = float(c @ light[np.clip(k - gap - np.arange(window), 0, n - 1)])
+    right = float(c @ light[np.clip(k + 1 + gap + np.arange(window), 0, n - 1)])
+    level = 0.5 * (left + right)
+    j_all = np.arange(max(k - gap - 1, 0), min(k + gap + 2, n - 1))
+    a, b = light[j_all], light[j_all + 1]
+    crossing = ((a - level) * (b - level) <= 0) & (a != b)
+    if not np.any(crossing):
+        return x[k] + 0.5 * (x[k + 1] - x[k]), 0.0
+    j = j_all[crossing][np.argmin(np.abs(j_all[crossing] - k))]
+    f = (level - light[j]) / (light[j + 1] - light[j])
+    slope = abs(light[j + 1] - light[j]) / (x[j + 1] - x[j])
+    return x[j] + f * (x[j + 1] - x[j]), slope
 
 
 def detect_profile(position, intensity):
@@ -348,60 +501,69 @@ def detect_profile(position, intensity):
     position is the centre of symmetry of the fringes on both sides (or the
     disk centre when only one side shows fringes).
     """
-    from scipy.ndimage import binary_closing, uniform_filter1d
+    from scipy.ndimage import uniform_filter1d
     from scipy.signal import find_peaks
 
-    x = np.asarray(position, dtype=float)
-    y = np.asarray(intensity, dtype=float)
+    x0 = np.asarray(position, dtype=float)
+    y0 = np.asarray(intensity, dtype=float)
+    x, y, step = _uniform(x0, y0)
     n = len(x)
-    step = float(np.median(np.diff(x)))
+    if np.ptp(y) <= 0:
+        raise InputError("the profile is flat: no disks found")
     smooth = uniform_filter1d(y, size=max(3, n // 400 * 2 + 1))
     light = uniform_filter1d(y, size=3)
-    low, high = np.percentile(smooth, [5, 99])
-    if high <= low:
-        raise InputError("the profile is flat: no disks found")
-    mask = smooth > low + 0.25 * (high - low)
-    disks = None
-    for size in np.unique(np.geomspace(1, max(2, n // 8), 40).astype(int)):
-        closed = binary_closing(mask, structure=np.ones(size)) if size > 1 else mask
-        segs = [sg for sg in _segments(closed) if sg[1] - sg[0] + 1 >= max(5, n // 50)]
-        if len(segs) == 2:
-            w = [sg[1] - sg[0] + 1 for sg in segs]
-            if min(w) >= 0.7 * max(w):
-                disks = segs
-                break
-    if disks is None:
-        raise InputError("the profile does not show two disks of similar width (direct and "
-                         "diffracted): check the profile runs through both")
+    window, gap = int(np.clip(n // 120, 8, 16)), 2
+    jump, factor = step_response(y, window, gap)
+    noise = _noise_level(y)
+    noise_jump = max(noise * factor, 1e-3 * float(np.ptp(y)))
+    r0, f0, shift, shift_range = _find_disks(y, jump, noise, noise_jump, window + gap)
+    steps = _strongest_steps(jump, window + gap)
     warnings = []
     edges = np.empty((2, 2))
     edge_sigma = np.empty((2, 2))
-    noise = float(np.std(y - smooth)) if n > 10 else 0.0
-    for k, (i0, i1) in enumerate(disks):
-        # the disk's floor (inelastic background between fringes) sits above the
-        # outside level; the edge is where the lightly smoothed profile crosses
-        # half-way between the two
-        floor = np.percentile(smooth[i0:i1 + 1], 10)
-        top = floor if floor - low > 0.1 * (high - low) else np.percentile(smooth[i0:i1 + 1], 75)
-        level = low + 0.5 * (top - low)
-        reach = max(5, (i1 - i0) // 5)
-        for side, (start, inward, stop) in enumerate([(i0, 1, max(i0 - reach, 0)),
-                                                      (i1, -1, min(i1 + reach, n - 1))]):
-            while light[start] < level and abs(start - (i0, i1)[side]) < reach:
-                start += inward
-            edges[k, side] = _edge(x, light, start, stop, level)
-        for side, e in enumerate(edges[k]):
-            j = int(np.clip(np.searchsorted(x, e), 3, n - 4))
-            slope = np.max(np.abs(np.gradient(light[j - 3:j + 4], x[j - 3:j + 4])))
-            edge_sigma[k, side] = max(noise / slope if slope > 0 else step, step / math.sqrt(12))
+    for side, k in enumerate((r0, f0)):
+        pos, slope = _edge_crossing(x, light, k, window, gap)
+        edges[0, side] = pos
+        edge_sigma[0, side] = max(noise / slope if slope > 0 else step, step / math.sqrt(12))
+    # the diffracted disk is the direct disk moved by the separation: each of
+    # its edges that shows a clear step measures that separation once
+    shifts, shift_sigma = [], []
+    for side, k in enumerate((r0 + shift, f0 + shift)):
+        if abs(steps[k]) < 5 * noise_jump:
+            continue
+        pos, slope = _edge_crossing(x, light, k, window, gap)
+        sigma = max(noise / slope if slope > 0 else step, step / math.sqrt(12))
+        shifts.append(pos - edges[0, side])
+        shift_sigma.append(math.hypot(sigma, edge_sigma[0, side]))
+    if shifts:
+        w = 1.0 / np.square(shift_sigma)
+        separation = float(np.sum(w * np.array(shifts)) / np.sum(w))
+        separation_sigma = float(1.0 / math.sqrt(np.sum(w)))
+        if len(shifts) == 2:
+            separation_sigma = max(separation_sigma, abs(shifts[0] - shifts[1]) / 2)
+    else:
+        # no edge of its own: the disk lies somewhere in the range of shifts
+        # that keeps all of its signal inside it
+        separation = 0.5 * (shift_range[0] + shift_range[1]) * step
+        separation_sigma = max((shift_range[1] - shift_range[0]) * step / math.sqrt(12), step)
+        warnings.append("neither edge of the diffracted disk stands out from the "
+                        "background: its position rests on the direct disk's width and the "
+                        "best match of the step pattern")
+    if len(shifts) == 1:
+        warnings.append("one edge of the diffracted disk is as dark as the background: the "
+                        "disk is placed from its other edge and the direct disk's width")
+    edges[1] = edges[0] + separation
+    edge_sigma[1] = np.hypot(edge_sigma[0], separation_sigma)
     centres = edges.mean(axis=1)
-    centre_sigma = np.sqrt(np.sum(edge_sigma ** 2, axis=1)) / 2
-    if np.mean(y[disks[1][0]:disks[1][1] + 1]) > 1.2 * np.mean(y[disks[0][0]:disks[0][1] + 1]):
+    centre_sigma = np.array([math.hypot(*edge_sigma[0]) / 2,
+                             math.hypot(math.hypot(*edge_sigma[0]) / 2, separation_sigma)])
+    i0, i1 = np.searchsorted(x, edges[1])
+    direct_mean = float(np.mean(y[r0 + 1:f0 + 1]))
+    if np.mean(y[i0:i1]) > 1.2 * direct_mean:
         warnings.append("the second disk is brighter than the first: is the profile taken "
                         "along +g (direct disk first)?")
-    i0, i1 = disks[1]
-    margin = max(2, n // 400 * 2 + 3)  # the smoothing window, where edges blur in
-    lo, hi = i0 + margin, i1 - margin
+    margin = max(2, n // 400 * 2 + 3, gap + 2)  # where the smoothed edges blur in
+    lo, hi = i0 + margin, i1 - 1 - margin
     inner = smooth[lo:hi + 1]
     prominence = 0.08 * (inner.max() - inner.min())
     peaks, _ = find_peaks(-inner, prominence=prominence)
@@ -470,8 +632,7 @@ def detect_profile(position, intensity):
     fr, fs = fr[order], fs[order]
     keep = fr > 0
     return ProfileDetection(
-        position=x, intensity=y, disk_edges=edges, disk_centres=centres,
+        position=x0, intensity=y0, disk_edges=edges, disk_centres=centres,
         disk_centre_sigma=centre_sigma, bragg_position=bragg, minima=minima,
         minima_sigma=minima_sigma, fringes=fr[keep], fringes_sigma=fs[keep],
-        separation=float(centres[1] - centres[0]),
-        separation_sigma=float(math.hypot(*centre_sigma)), warnings=warnings)
+        separation=separation, separation_sigma=separation_sigma, warnings=warnings)
