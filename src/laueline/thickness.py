@@ -636,3 +636,394 @@ def detect_profile(position, intensity):
         disk_centre_sigma=centre_sigma, bragg_position=bragg, minima=minima,
         minima_sigma=minima_sigma, fringes=fr[keep], fringes_sigma=fs[keep],
         separation=separation, separation_sigma=separation_sigma, warnings=warnings)
+
+
+# ---------------------------------------------------------------------------
+# whole-profile fit with systematic-row Bloch waves
+# ---------------------------------------------------------------------------
+
+DEFAULT_ROW_BEAMS = 9
+
+
+def systematic_row(hkl, n_beams=DEFAULT_ROW_BEAMS):
+    """The beams n g of a systematic row, direct beam first, then g, -g, 2g, -2g, ...
+
+    Parameters
+    ----------
+    hkl : sequence of 3 int
+        The reflection g excited in the two-beam condition.
+    n_beams : int
+        Odd number of beams, 2 N + 1 with n = -N..N; at least 3.
+
+    Returns
+    -------
+    ndarray of int, shape (n_beams, 3)
+    """
+    n_beams = int(n_beams)
+    if n_beams < 3 or n_beams % 2 == 0:
+        raise InputError(f"n_beams must be an odd number of at least 3, got {n_beams}")
+    half = n_beams // 2
+    order = np.array([0] + [v for m in range(1, half + 1) for v in (m, -m)])
+    return order[:, None] * np.asarray(hkl, dtype=np.int64).reshape(1, 3)
+
+
+def _row_geometry(crystal, hkl, kv):
+    """Unit vector along g, a foil normal normal to it, |g| (1/A) and the wave number."""
+    from .optics import wave_number
+
+    g_vec = crystal.g_vectors(np.asarray(hkl, dtype=float).reshape(1, 3))[0]
+    g = float(np.linalg.norm(g_vec))
+    along = g_vec / g
+    helper = np.eye(3)[int(np.argmin(np.abs(along)))]
+    normal = np.cross(along, helper)
+    normal /= np.linalg.norm(normal)
+    return along, normal, g, wave_number(kv)
+
+
+def row_wavevectors(crystal, hkl, tilt_mrad, kv):
+    """Incident wave vectors for tilts along g (Cartesian, 1/angstrom).
+
+    ``tilt_mrad`` is the tangential component of the incident wave vector
+    along g over K, in mrad, measured from the exact Bragg condition of g
+    (where it is -500 lambda |g|); positive tilts move toward +g, which is
+    the direction along which a profile runs.  The outward foil normal is
+    normal to g, and the incident wave vector is
+    K (u g_hat - sqrt(1 - u^2) n) with u the tangential component.
+    """
+    along, normal, g, k = _row_geometry(crystal, hkl, kv)
+    u = np.asarray(tilt_mrad, dtype=float) * 1e-3 - 0.5 * g / k
+    return k * (u[:, None] * along - np.sqrt(1.0 - u * u)[:, None] * normal), normal
+
+
+def row_intensities(crystal, hkl, tilt_mrad, thickness_nm, *, kv,
+                    n_beams=DEFAULT_ROW_BEAMS, absorption_ratio=0.1):
+    """Direct and diffracted intensities of a systematic row against tilt.
+
+    Many-beam Bloch-wave intensities (:mod:`laueline.dynamical`) of the beams
+    n g, n = -N..N, for incident directions tilted along g.
+
+    Parameters
+    ----------
+    crystal : Crystal
+    hkl : sequence of 3 int
+    tilt_mrad : array_like, shape (m,)
+        Tilt from the exact Bragg condition of g (see :func:`row_wavevectors`).
+    thickness_nm : float
+    kv : float
+    n_beams : int
+        2 N + 1 beams of the row.
+    absorption_ratio : float
+        a in U'_g = a U_g.
+
+    Returns
+    -------
+    ndarray, shape (m, 2)
+        I_0 and I_g for unit incident intensity.
+    """
+    from .dynamical import bloch_intensities
+
+    k, normal = row_wavevectors(crystal, hkl, tilt_mrad, kv)
+    return bloch_intensities(crystal, systematic_row(hkl, n_beams), k, thickness_nm, kv=kv,
+                             absorption_ratio=absorption_ratio, foil_normal=normal,
+                             beams_out=[0, 1])
+
+
+class _RowStates:
+    """Bloch states of a systematic row on a tilt grid, for any thickness.
+
+    The eigen-decomposition does not depend on the thickness, so a fit that
+    tries many thicknesses solves it once.  The matrix is the one of
+    :mod:`laueline.dynamical` (its coupling and excitation terms); only the
+    propagation through the thickness is repeated here.
+    """
+
+    def __init__(self, crystal, hkl, tilt_mrad, kv, n_beams, absorption_ratio):
+        from .dynamical import coupling_matrix, excitation_matrices
+
+        beams = systematic_row(hkl, n_beams)
+        k, normal = row_wavevectors(crystal, hkl, tilt_mrad, kv)
+        coupling = coupling_matrix(crystal, beams, kv, absorption_ratio)
+        diagonal = excitation_matrices(crystal.g_vectors(beams), k)
+        mats = np.broadcast_to(coupling, (len(k),) + coupling.shape).copy()
+        idx = np.arange(len(beams))
+        mats[:, idx, idx] += diagonal
+        lam, vec = np.linalg.eig(mats)
+        e0 = np.zeros((len(k), len(beams), 1), dtype=complex)
+        e0[:, 0, 0] = 1.0
+        alpha = np.linalg.solve(vec, e0)[..., 0]
+        self.weights = vec[:, :2, :] * alpha[:, None, :]         # (m, 2, n)
+        self.rate = 2j * math.pi * lam / (2.0 * (-k @ normal))[:, None]   # per angstrom
+
+    def intensities(self, thickness_nm):
+        amp = np.einsum("mbj,mj->mb", self.weights, np.exp(self.rate * (thickness_nm * 10.0)))
+        return amp.real ** 2 + amp.imag ** 2
+
+
+@dataclass
+class ProfileFitResult:
+    """Thickness from a fit of systematic-row Bloch-wave intensities to a profile.
+
+    Positions and lengths are in the profile's unit ("px" below).  The
+    modelled profile is
+
+        b + blur * [c (D0 + D1) + A (D0 I_0(u0) + D1 I_g(u1))],
+
+    with D0, D1 the direct and diffracted disks (the direct disk's measured
+    edges, and the same moved by ``scale`` times 2 theta_B), u0 and u1 the
+    tilts from the Bragg condition seen at each position, ``blur`` a Gaussian
+    of standard deviation ``blur_px``, b the background, c a diffuse level
+    inside the disks and A the incident intensity.
+
+    ``thickness_sigma_nm`` is the total 1-sigma: the statistical part (from
+    the fit's covariance, scaled by its reduced chi-square) and the model
+    part (the largest change of the thickness when the absorption ratio is
+    halved or doubled, added in quadrature to the change when the row is
+    cut by two beams) added in quadrature.
+    """
+
+    thickness_nm: float
+    thickness_sigma_nm: float
+    thickness_statistical_sigma_nm: float
+    thickness_model_sigma_nm: float
+    model_variants: list
+    scale_px_per_mrad: float
+    scale_sigma_px_per_mrad: float
+    bragg_position: float
+    bragg_position_sigma: float
+    blur_px: float
+    background: float
+    diffuse: float
+    amplitude: float
+    reduced_chi2: float
+    n_samples: int
+    n_beams: int
+    absorption_ratio: float
+    hkl: tuple
+    kv: float
+    separation: float
+    position: np.ndarray
+    intensity: np.ndarray
+    fitted: np.ndarray
+    kelly_allen: ThicknessResult | None = None
+    detection: ProfileDetection | None = None
+    warnings: list = field(default_factory=list)
+
+
+def _coverage(position, step, lo, hi):
+    """Fraction of each sample's cell [p - step/2, p + step/2] inside [lo, hi]."""
+    a = np.maximum(position - 0.5 * step, lo)
+    b = np.minimum(position + 0.5 * step, hi)
+    return np.clip(b - a, 0.0, step) / step
+
+
+class _ProfileModel:
+    """Model of a two-disk profile for given thickness, scale, Bragg position and blur."""
+
+    def __init__(self, states, grid_mrad, x, y, step, edges, two_theta_mrad):
+        self.states, self.grid = states, grid_mrad
+        self.x, self.y, self.step = x, y, step
+        self.edges, self.two_theta = edges, two_theta_mrad
+        self.weights = np.ones_like(y)
+        self._cache = (None, None)
+
+    def _rows(self, thickness):
+        if self._cache[0] != thickness:
+            self._cache = (thickness, self.states.intensities(thickness))
+        return self._cache[1]
+
+    def basis(self, params):
+        from scipy.ndimage import gaussian_filter1d
+
+        thickness, scale, bragg, blur = params
+        rows = self._rows(thickness)
+        u0 = (self.x - bragg) / scale
+        u1 = u0 - self.two_theta
+        d0 = _coverage(self.x, self.step, *self.edges)
+        d1 = _coverage(self.x, self.step, *(self.edges + scale * self.two_theta))
+        i0 = np.interp(u0, self.grid, rows[:, 0])
+        ig = np.interp(u1, self.grid, rows[:, 1])
+        cols = np.stack([np.ones_like(self.x), d0 + d1, d0 * i0 + d1 * ig], axis=1)
+        return gaussian_filter1d(cols, blur / self.step, axis=0, mode="nearest")
+
+    def solve(self, params):
+        cols = self.basis(params)
+        w = self.weights[:, None]
+        coef = np.linalg.lstsq(cols * w, self.y * w[:, 0], rcond=None)[0]
+        return cols @ coef, coef
+
+    def residuals(self, params):
+        model, _ = self.solve(params)
+        return (self.y - model) * self.weights
+
+
+def _local_fit(model, start, lower, upper, x_scale):
+    from scipy.optimize import least_squares
+
+    return least_squares(model.residuals, np.clip(start, lower, upper), bounds=(lower, upper),
+                         x_scale=x_scale, method="trf", xtol=1e-10, ftol=1e-12, gtol=1e-10,
+                         diff_step=1e-6, max_nfev=400)
+
+
+def fit_profile(position, intensity, crystal, hkl, *, kv=200.0, n_beams=DEFAULT_ROW_BEAMS,
+                absorption_ratio=0.1, thickness_range_nm=(20.0, 1000.0)):
+    """Foil thickness from a two-beam profile by fitting many-beam intensities.
+
+    The profile runs along +g through the direct and the diffracted disk.
+    The direct disk's edges and the diffracted disk's position come from
+    :func:`detect_profile`; the Kelly-Allen construction on the same profile
+    (:func:`thickness_from_fringes`) is reported beside the fit and used to
+    start it.  The fit matches the systematic-row Bloch-wave intensities
+    (beams n g, n = -N..N, :mod:`laueline.dynamical`) to the measured
+    profile through both disks: thickness, scale (profile units per mrad),
+    position of the Bragg condition and Gaussian blur by least squares, with
+    the background, a diffuse level in the disks and the incident intensity
+    solved linearly at every step.  Samples are weighted as Poisson counts of
+    unknown gain (variance proportional to the modelled intensity).  The
+    thickness is first scanned (steps of 1 %) over the range given and
+    the best few minima refined, so the fit does not hang on one fringe
+    numbering.  The model's uncertainty is the change of the thickness when
+    the absorption ratio is halved and doubled and when the row loses two
+    beams.
+
+    Parameters
+    ----------
+    position, intensity : array_like
+        The profile (any position unit, increasing).
+    crystal : Crystal
+    hkl : sequence of 3 int
+        The reflection in two-beam condition (the profile runs along +g).
+    kv : float
+        Accelerating voltage.
+    n_beams : int
+        Beams of the systematic row, odd, 3 or more (9 by default).
+    absorption_ratio : float
+        a in U'_g = a U_g, [0, 1); 0.1 by default (common practice).
+    thickness_range_nm : (float, float)
+        Range scanned when the fringes give no Kelly-Allen start.
+
+    Returns
+    -------
+    ProfileFitResult
+    """
+    from .dynamical import check_absorption_ratio
+
+    a = check_absorption_ratio(absorption_ratio)
+    hkl = tuple(int(v) for v in np.asarray(hkl, dtype=int).ravel())
+    if len(hkl) != 3 or not any(hkl):
+        raise InputError("hkl must be three integers, not all zero")
+    if crystal.is_absent(np.array([hkl]))[0]:
+        raise InputError(f"({' '.join(map(str, hkl))}) is systematically absent: no two-beam "
+                         "condition")
+    systematic_row(hkl, n_beams)
+    lo_t, hi_t = (float(v) for v in thickness_range_nm)
+    if not (0 < lo_t < hi_t <= 2000.0):
+        raise InputError("thickness_range_nm must satisfy 0 < low < high <= 2000 nm")
+    x0 = np.asarray(position, dtype=float)
+    y0 = np.asarray(intensity, dtype=float)
+    det = detect_profile(x0, y0)
+    warnings = list(det.warnings)
+    kelly_allen = None
+    try:
+        kelly_allen = thickness_from_fringes(
+            det.fringes, det.separation, kv=kv, crystal=crystal, hkl=hkl,
+            fringes_sigma=det.fringes_sigma, separation_sigma=det.separation_sigma)
+        kelly_allen.profile = det
+    except InputError as exc:
+        warnings.append(f"no Kelly-Allen construction: {exc}")
+    x, y, step = _uniform(x0, y0)
+    _, _, g, k = _row_geometry(crystal, hkl, kv)
+    two_theta = 1e3 * g / k                          # disk separation, mrad
+    scale0 = det.separation / two_theta
+    bragg0 = det.bragg_position - det.separation
+    edges = det.disk_edges[0]
+    # tilts reached by either disk for scales within 15 % of the start
+    half_width = 0.5 * (edges[1] - edges[0]) / scale0
+    offset = abs(0.5 * (edges[0] + edges[1]) - bragg0) / scale0
+    reach = 1.15 * (half_width + offset) + 0.5
+    grid_step = min(0.02, 0.25 * step / scale0)
+    grid = np.arange(-reach, reach + grid_step, grid_step)
+
+    def build(n, ratio):
+        return _ProfileModel(_RowStates(crystal, hkl, grid, kv, n, ratio), grid, x, y, step,
+                             edges, two_theta)
+
+    model = build(n_beams, a)
+    blur0 = 1.0 * step
+    lower = np.array([1.0, 0.85 * scale0, bragg0 - 0.1 * det.separation, 0.05 * step])
+    upper = np.array([2000.0, 1.15 * scale0, bragg0 + 0.1 * det.separation, 20.0 * step])
+    x_scale = np.array([1.0, 0.001 * scale0, step, step])
+    # coarse scan of the thickness with the geometry held, unweighted
+    if kelly_allen is not None and np.isfinite(kelly_allen.thickness_nm):
+        centre = kelly_allen.thickness_nm
+        lo_s, hi_s = max(0.6 * centre, 1.0), min(1.5 * centre, 2000.0)
+    else:
+        lo_s, hi_s = lo_t, hi_t
+    trial = np.geomspace(lo_s, hi_s, int(math.log(hi_s / lo_s) / 0.01) + 2)
+    cost = np.array([np.sum(model.residuals((t, scale0, bragg0, blur0)) ** 2)
+                     for t in trial])
+    from scipy.signal import argrelmin
+
+    minima = argrelmin(np.concatenate([[np.inf], cost, [np.inf]]))[0] - 1
+    starts = trial[minima[np.argsort(cost[minima])][:4]]
+    best = None
+    for t in starts:
+        res = _local_fit(model, np.array([t, scale0, bragg0, blur0]), lower, upper, x_scale)
+        if best is None or res.cost < best.cost:
+            best = res
+    # Poisson weights of unknown gain from the unweighted solution, then refit
+    fitted, _ = model.solve(best.x)
+    floor = 0.02 * float(np.max(fitted))
+    model.weights = 1.0 / np.sqrt(np.maximum(fitted, floor))
+    best = _local_fit(model, best.x, lower, upper, x_scale)
+    fitted, coef = model.solve(best.x)
+    resid = model.residuals(best.x)
+    dof = max(len(y) - len(best.x) - 3, 1)
+    red_chi2 = float(np.sum(resid ** 2) / dof)
+    jac = best.jac
+    try:
+        cov = np.linalg.inv(jac.T @ jac) * red_chi2
+        sig = np.sqrt(np.clip(np.diag(cov), 0, None))
+    except np.linalg.LinAlgError:
+        sig = np.full(4, np.nan)
+        warnings.append("the fit's covariance is singular: no statistical uncertainty")
+    variants = []
+    for label, n, ratio in [("absorption ratio halved", n_beams, 0.5 * a),
+                            ("absorption ratio doubled", n_beams, min(2 * a, 0.95)),
+                            ("two beams fewer", max(n_beams - 2, 3), a)]:
+        if (n, ratio) == (n_beams, a):
+            continue
+        alt = build(n, ratio)
+        alt.weights = model.weights
+        r = _local_fit(alt, best.x, lower, upper, x_scale)
+        variants.append({"variant": label, "n_beams": n, "absorption_ratio": ratio,
+                         "thickness_nm": float(r.x[0])})
+    t_fit = float(best.x[0])
+    shifts = {v["variant"]: v["thickness_nm"] - t_fit for v in variants}
+    absorption = max([abs(v) for kk, v in shifts.items() if "absorption" in kk], default=0.0)
+    beams = abs(shifts.get("two beams fewer", 0.0))
+    model_sigma = math.hypot(absorption, beams)
+    total = math.hypot(float(sig[0]), model_sigma)
+    if red_chi2 > 4:
+        warnings.append(f"the model matches the profile poorly (reduced chi-square "
+                        f"{red_chi2:.1f}): check the reflection, the voltage and that the "
+                        "profile runs along +g through both disks")
+    for i, name in enumerate(["thickness", "scale", "Bragg position", "blur"]):
+        if np.isclose(best.x[i], lower[i]) or np.isclose(best.x[i], upper[i]):
+            warnings.append(f"the fitted {name} sits at the bound of its search range")
+    if kelly_allen is not None and kelly_allen.first_fringe_index is not None:
+        ka = kelly_allen.thickness_nm
+        if abs(ka - t_fit) > 3 * math.hypot(kelly_allen.thickness_sigma_nm, total):
+            warnings.append(f"the Kelly-Allen construction gives {ka:.1f} nm, "
+                            f"{100 * (ka / t_fit - 1):+.1f} % from the many-beam fit: its "
+                            "two-beam assumption does not hold for this row and thickness")
+    return ProfileFitResult(
+        thickness_nm=t_fit, thickness_sigma_nm=total,
+        thickness_statistical_sigma_nm=float(sig[0]), thickness_model_sigma_nm=model_sigma,
+        model_variants=variants, scale_px_per_mrad=float(best.x[1]),
+        scale_sigma_px_per_mrad=float(sig[1]), bragg_position=float(best.x[2]),
+        bragg_position_sigma=float(sig[2]), blur_px=float(best.x[3]),
+        background=float(coef[0]), diffuse=float(coef[1]), amplitude=float(coef[2]),
+        reduced_chi2=red_chi2, n_samples=len(y), n_beams=int(n_beams), absorption_ratio=a,
+        hkl=hkl, kv=float(kv), separation=float(best.x[1] * two_theta), position=x,
+        intensity=y, fitted=fitted, kelly_allen=kelly_allen, detection=det,
+        warnings=warnings)
