@@ -778,7 +778,9 @@ class ProfileFitResult:
     the fit's covariance, scaled by its reduced chi-square) and the model
     part (the largest change of the thickness when the absorption ratio is
     halved or doubled, added in quadrature to the change when the row is
-    cut by two beams) added in quadrature.
+    cut by two beams) added in quadrature.  ``reduced_chi2`` compares the
+    residual variance with the sample noise estimated from second
+    differences alone (about 1 when the model holds).
     """
 
     thickness_nm: float
@@ -854,6 +856,19 @@ class _ProfileModel:
     def residuals(self, params):
         model, _ = self.solve(params)
         return (self.y - model) * self.weights
+
+
+def _noise_gain(y, expected):
+    """Variance per unit intensity of the sample noise, from second differences.
+
+    For independent noise of variance gain * I the second difference
+    y[i-1] - 2 y[i] + y[i+1] has variance close to 6 gain I[i]; the median of
+    its square over 6 I, divided by 0.4549 (the median of chi-square with one
+    degree of freedom), estimates the gain without any model of the profile,
+    so the fit's residuals can be compared with it.
+    """
+    d2 = y[2:] - 2 * y[1:-1] + y[:-2]
+    return float(np.median(d2 * d2 / (6.0 * expected[1:-1])) / 0.4549)
 
 
 def _local_fit(model, start, lower, upper, x_scale):
@@ -978,10 +993,11 @@ def fit_profile(position, intensity, crystal, hkl, *, kv=200.0, n_beams=DEFAULT_
     fitted, coef = model.solve(best.x)
     resid = model.residuals(best.x)
     dof = max(len(y) - len(best.x) - 3, 1)
-    red_chi2 = float(np.sum(resid ** 2) / dof)
+    gain = float(np.sum(resid ** 2) / dof)         # variance per unit intensity, fitted
+    red_chi2 = gain / _noise_gain(y, np.maximum(fitted, floor))
     jac = best.jac
     try:
-        cov = np.linalg.inv(jac.T @ jac) * red_chi2
+        cov = np.linalg.inv(jac.T @ jac) * gain
         sig = np.sqrt(np.clip(np.diag(cov), 0, None))
     except np.linalg.LinAlgError:
         sig = np.full(4, np.nan)
