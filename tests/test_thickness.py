@@ -361,3 +361,49 @@ def test_many_beam_profile_fit(fit_180, profile_180):
     assert r.blur_px == pytest.approx(TRUTH["blur_px"], rel=0.25)
     assert r.background == pytest.approx(TRUTH["background"], rel=0.25)
     assert r.reduced_chi2 == pytest.approx(1.0, abs=0.3)
+
+
+def test_cli_dynamical_profile(tmp_path, capsys, profile_180):
+    from laueline.cli import main
+
+    pos, inten, _ = profile_180
+    prof = tmp_path / "profile.csv"
+    np.savetxt(prof, np.stack([pos, inten], 1), delimiter=",", header="position,intensity",
+               comments="")
+    out, fig = tmp_path / "t.json", tmp_path / "t.png"
+    code = main(["thickness", "Si", "--hkl", "2", "2", "0", "--profile", str(prof),
+                 "--dynamical", "--json", str(out), "--figure", str(fig)])
+    assert code == 0 and fig.exists()
+    text = capsys.readouterr().out
+    assert "Kelly-Allen" in text and "many-beam" in text
+    doc = json.loads(out.read_text())
+    assert doc["schema"] == "laueline.thickness/2"
+    assert doc["thickness_nm"] == pytest.approx(180.0, rel=0.01)
+    assert doc["thickness_sigma_nm"] > 0
+    assert doc["dynamical"]["n_beams"] == 9 and doc["dynamical"]["absorption_ratio"] == 0.1
+    assert doc["kelly_allen"]["first_fringe_index"] == 2
+    assert doc["kelly_allen"]["thickness_nm"] > doc["thickness_nm"]
+
+
+@pytest.mark.parametrize("extra, message", [
+    (["--dynamical"], "--profile"),
+    (["--dynamical", "--profile", "{prof}", "--absorption-ratio", "1.5"], "absorption"),
+    (["--dynamical", "--profile", "{prof}", "--row-beams", "4"], "odd"),
+    (["--dynamical", "--profile", "{prof}", "--thickness-range-nm", "-5", "100"], "thickness"),
+    (["--dynamical", "--profile", "{prof}", "--thickness-range-nm", "100", "5000"], "thickness"),
+    (["--dynamical", "--profile", "{short}"], "at least 10 rows"),
+])
+def test_cli_dynamical_bad_input(tmp_path, capsys, extra, message):
+    from laueline.cli import main
+
+    prof, short = tmp_path / "p.csv", tmp_path / "short.csv"
+    pos = np.arange(200.0)
+    np.savetxt(prof, np.stack([pos, 1.0 + (np.abs(pos - 50) < 30) + (np.abs(pos - 130) < 30)],
+                              1), delimiter=",")
+    np.savetxt(short, np.stack([pos[:5], pos[:5]], 1), delimiter=",")
+    out = tmp_path / "t.json"
+    args = [a.format(prof=prof, short=short) for a in extra]
+    code = main(["thickness", "Si", "--hkl", "2", "2", "0", *args, "--json", str(out)])
+    err = capsys.readouterr().err
+    assert code == 2 and len(err.strip().splitlines()) == 1 and message in err
+    assert not out.exists()
