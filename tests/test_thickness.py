@@ -407,3 +407,22 @@ def test_cli_dynamical_bad_input(tmp_path, capsys, extra, message):
     err = capsys.readouterr().err
     assert code == 2 and len(err.strip().splitlines()) == 1 and message in err
     assert not out.exists()
+
+
+@pytest.mark.parametrize("thickness_nm, offset_mrad, first", [(260.0, 0.0, 3), (180.0, -0.4, 2)])
+def test_many_beam_fringe_numbering(thickness_nm, offset_mrad, first):
+    # the first dark fringe of a foil t thick is n = floor(t / xi) + 1 (Hirsch
+    # et al. 1965); xi of Si 220 at 200 kV is about 100 nm (kinematic 99.7 nm,
+    # the nine-beam row about 98 nm), so 260 nm starts at 3 and 180 nm at 2
+    truth = dict(TRUTH, bragg_offset_mrad=offset_mrad)
+    pos, inten, geometry = many_beam_profile(np.random.default_rng(3), thickness_nm, truth=truth)
+    det = detect_profile(pos, inten)
+    # the Bragg line is the fringes' centre of symmetry, off the disk centre
+    assert det.bragg_position == pytest.approx(geometry["bragg0"] + geometry["separation"],
+                                               abs=1.5)
+    r = thickness_from_fringes(det.fringes, det.separation, kv=KV, crystal=SI, hkl=G220,
+                               fringes_sigma=det.fringes_sigma,
+                               separation_sigma=det.separation_sigma)
+    assert r.first_fringe_index == first
+    # the two-beam construction's bias on many-beam profiles stays within a few %
+    assert r.thickness_nm == pytest.approx(thickness_nm, rel=0.03)

@@ -13,7 +13,9 @@ a straight line in (1/n_k^2, (s_i/n_k)^2) with intercept 1/t^2 and slope
 (1975) 771; Allen, Phil. Mag. A 43 (1981) 325).  The first index j is the
 smallest integer above t / xi_g; it is found by trying successive integers
 and keeping the straightest line with physical signs (positive intercept,
-negative slope).
+negative slope).  With a structure given, a numbering whose extinction
+distance is more than 30 % from the kinematic value gives way to one within
+it that fits nearly as well (a many-beam profile bends the line slightly).
 
 The deviation parameter of a fringe at distance x from the Bragg position
 in the diffracted disk, with the disk separation L (the 2 theta_B distance),
@@ -221,6 +223,22 @@ def thickness_from_fringes(fringes, separation, *, kv=200.0, d_spacing_A=None, c
                             "third fringe)")
     else:
         best = min(physical, key=lambda c: c.residual)
+        if kinematic is not None and abs(best.extinction_distance_nm / kinematic - 1) > 0.3:
+            # many-beam profiles bend the line a little, so two numberings can
+            # fit about equally; the effective extinction distance of a
+            # systematic row stays within some 20 % of the kinematic two-beam
+            # value (Hirsch et al. 1965, ch. 12), a wrong numbering does not
+            near = [c for c in physical if abs(c.extinction_distance_nm / kinematic - 1) <= 0.3
+                    and c.residual <= 10 * best.residual + 1e-12]
+            if near:
+                straightest = best
+                best = min(near, key=lambda c: c.residual)
+                warnings.append(
+                    f"the straightest line (first index {straightest.first_fringe_index}) "
+                    f"implies an extinction distance of {straightest.extinction_distance_nm:.1f}"
+                    f" nm, far from the kinematic {kinematic:.1f} nm; first index "
+                    f"{best.first_fringe_index} fits nearly as well with "
+                    f"{best.extinction_distance_nm:.1f} nm and was taken")
         rivals = [c for c in physical if c is not best and c.residual <= 2 * best.residual
                   + 1e-12]
         if rivals:
@@ -489,6 +507,29 @@ def _edge_crossing(x, light, k, window, gap):
     return x[j] + f * (x[j + 1] - x[j]), slope
 
 
+def _symmetry_centre(minima, centre):
+    """Centre of mirror symmetry of fringe minima and the tolerance used, or None.
+
+    Every mid-point of two minima is tried; its score is the number of minima
+    whose mirror image falls within a fifth of the typical fringe spacing of
+    another minimum.  The best score wins, ties going to the candidate
+    nearest ``centre`` (the disk centre).
+    """
+    if len(minima) < 2:
+        return None
+    ordered = np.sort(minima)
+    tol = 0.2 * float(np.median(np.diff(ordered)))
+    i, j = np.triu_indices(len(minima), 1)
+    trial = 0.5 * (minima[i] + minima[j])
+    mirrored = 2 * trial[:, None] - minima[None, :]                  # (pairs, minima)
+    distance = np.abs(mirrored[:, :, None] - minima[None, None, :])
+    distance[:, np.arange(len(minima)), np.arange(len(minima))] = np.inf
+    score = np.sum(distance.min(axis=2) < tol, axis=1)
+    best = np.flatnonzero(score == score.max())
+    k = best[np.argmin(np.abs(trial[best] - centre))]
+    return float(trial[k]), tol
+
+
 def detect_profile(position, intensity):
     """Find the two disks and the dark fringes of the diffracted disk.
 
@@ -590,14 +631,16 @@ def detect_profile(position, intensity):
         minima_sigma.append(max(math.sqrt(max(dv @ cov @ dv, 0.0)), step / 20))
     minima, minima_sigma = np.array(minima), np.array(minima_sigma)
     centre = centres[1]
-    # a minimum at the Bragg position itself (t/xi just above a half-integer)
-    # is not a dark fringe of the series: the first fringes sit symmetrically
-    # at +-s_1, half their spacing from the centre
-    if len(minima) > 1:
-        gaps = np.abs(minima[:, None] - minima[None, :])
-        gaps[np.diag_indices(len(minima))] = np.inf
-        central = np.abs(minima - centre) < 0.25 * gaps.min(axis=1)
+    # the Bragg line is the fringes' centre of symmetry: among the mid-points
+    # of all pairs of minima, the one that mirrors most minima onto others
+    # (ties: nearest the disk centre).  A minimum on that line itself (t/xi
+    # just above a half-integer) is not a dark fringe of the series.
+    symmetry = _symmetry_centre(minima, centre)
+    if symmetry is not None:
+        symmetry, tol = symmetry
+        central = np.abs(minima - symmetry) < tol
         minima, minima_sigma = minima[~central], minima_sigma[~central]
+        centre = symmetry
     left = minima[minima < centre][::-1]
     right = minima[minima > centre]
     ls = minima_sigma[minima < centre][::-1]
@@ -606,8 +649,8 @@ def detect_profile(position, intensity):
         m = min(len(left), len(right))
         bragg = float(np.mean((left[:m] + right[:m]) / 2))
         spread = np.std((left[:m] + right[:m]) / 2) if m > 1 else 0.0
-        if abs(bragg - centre) > 3 * max(centre_sigma[1], spread, step):
-            warnings.append(f"the fringes are centred {bragg - centre:+.3g} from the disk "
+        if abs(bragg - centres[1]) > 3 * max(centre_sigma[1], spread, step):
+            warnings.append(f"the fringes are centred {bragg - centres[1]:+.3g} from the disk "
                             "centre: the two-beam condition was not exact; distances are "
                             "measured from the fringes' centre of symmetry")
         dist_l = bragg - left
