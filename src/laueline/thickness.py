@@ -986,6 +986,7 @@ def fit_profile(position, intensity, crystal, hkl, *, kv=200.0, n_beams=DEFAULT_
             det.fringes, det.separation, kv=kv, crystal=crystal, hkl=hkl,
             fringes_sigma=det.fringes_sigma, separation_sigma=det.separation_sigma)
         kelly_allen.profile = det
+        warnings.extend(f"Kelly-Allen: {w}" for w in kelly_allen.warnings)
     except InputError as exc:
         warnings.append(f"no Kelly-Allen construction: {exc}")
     x, y, step = _uniform(x0, y0)
