@@ -283,6 +283,9 @@ def _cmd_thickness_fit(args):
         return thickness_fit_figure(result)
 
     _finish(args, report.thickness_fit_document(result, crystal.summary()), figure)
+    if not result.success:
+        sys.stderr.write(f"laueline: {result.failure}\n")
+        return EXIT_NOT_CONVERGED
     return 0
 
 
@@ -515,8 +518,7 @@ def build_parser():
                    help="with --dynamical: beams of the systematic row, odd (9)")
     p.add_argument("--thickness-range-nm", type=float, nargs=2, default=(20.0, 1000.0),
                    metavar=("LOW", "HIGH"),
-                   help="with --dynamical: thicknesses searched when the fringes give no "
-                        "two-beam start (20 1000)")
+                   help="with --dynamical: range of thickness searched (20 1000)")
     _add_output_options(p)
     p.set_defaults(run=_cmd_thickness)
 

@@ -497,6 +497,8 @@ def thickness_fit_document(result, structure=None):
     det = result.detection
     return _clean({
         "schema": THICKNESS_FIT_SCHEMA,
+        "success": result.success,
+        "failure": result.failure,
         "structure": structure,
         "hkl": list(result.hkl),
         "kv": result.kv,
@@ -540,7 +542,8 @@ def thickness_fit_text(result):
            f"      statistical            {result.thickness_statistical_sigma_nm:9.2g} nm",
            f"      model                  {result.thickness_model_sigma_nm:9.2g} nm"]
     for v in result.model_variants:
-        out.append(f"        {v['variant']:<24s} {v['thickness_nm']:9.2f} nm")
+        out.append(f"        {v['variant']:<24s} {v['thickness_nm']:9.2f} nm   (reduced "
+                   f"chi-square {v['reduced_chi2']:.2f})")
     ka = result.kelly_allen
     if ka is not None:
         out.append(f"  Kelly-Allen (two-beam)     {ka.thickness_nm:9.2f} +- "

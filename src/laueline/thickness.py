@@ -450,15 +450,30 @@ def _find_disks(y, jump, noise, noise_jump, reach):
     if steps[rise] < floor:
         raise InputError("the profile does not show two disks (direct and diffracted): no "
                          "sharp disk edge found")
-    after = steps[rise + min_width:]
-    if len(after) == 0 or after.min() > -floor:
-        raise InputError("the profile does not show two disks (direct and diffracted): "
-                         "check the profile runs through both")
-    fall = rise + min_width + int(np.argmin(after))
-    width = fall - rise
-    outside = y[:max(rise - reach, 0)]
     size = 2 * reach + 1
     smooth = uniform_filter1d(y, size)
+    outside = y[:max(rise - reach, 0)]
+    # the direct disk ends where the profile drops to the background for good
+    # (the gap before the diffracted disk): its fall is the strongest step down
+    # just before that gap, however strong the falls of fringes inside it
+    fall = None
+    if len(outside) >= 10:
+        level = float(np.median(outside)) + 5 * noise / math.sqrt(size)
+        low = smooth[rise + min_width:] <= level
+        run = np.convolve(low, np.ones(size, dtype=int), mode="valid") == size
+        if np.any(run):
+            gap = rise + min_width + int(np.argmax(run))
+            lo, hi = max(gap - 2 * size, rise + min_width), min(gap + size, len(steps))
+            k = lo + int(np.argmin(steps[lo:hi]))
+            if steps[k] < -5 * noise_jump:
+                fall = k
+    if fall is None:
+        after = steps[rise + min_width:]
+        if len(after) == 0 or after.min() > -floor:
+            raise InputError("the profile does not show two disks (direct and diffracted): "
+                             "check the profile runs through both")
+        fall = rise + min_width + int(np.argmin(after))
+    width = fall - rise
     start = fall + 2 * size              # clear of the direct disk's smoothed edge
     beyond = smooth[start:]
     if len(beyond) < width:
@@ -852,6 +867,8 @@ class ProfileFitResult:
     kelly_allen: ThicknessResult | None = None
     detection: ProfileDetection | None = None
     warnings: list = field(default_factory=list)
+    success: bool = True
+    failure: str | None = None
 
 
 def _coverage(position, step, lo, hi):
@@ -957,7 +974,7 @@ def fit_profile(position, intensity, crystal, hkl, *, kv=200.0, n_beams=DEFAULT_
     absorption_ratio : float
         a in U'_g = a U_g, [0, 1); 0.1 by default (common practice).
     thickness_range_nm : (float, float)
-        Range scanned when the fringes give no Kelly-Allen start.
+        Range of thickness searched, nm.
 
     Returns
     -------
@@ -1012,18 +1029,15 @@ def fit_profile(position, intensity, crystal, hkl, *, kv=200.0, n_beams=DEFAULT_
     upper = np.array([2000.0, 1.15 * scale0, bragg0 + 0.1 * det.separation, 20.0 * step])
     x_scale = np.array([1.0, 0.001 * scale0, step, step])
     # coarse scan of the thickness with the geometry held, unweighted
-    if kelly_allen is not None and np.isfinite(kelly_allen.thickness_nm):
-        centre = kelly_allen.thickness_nm
-        lo_s, hi_s = max(0.6 * centre, 1.0), min(1.5 * centre, 2000.0)
-    else:
-        lo_s, hi_s = lo_t, hi_t
-    trial = np.geomspace(lo_s, hi_s, int(math.log(hi_s / lo_s) / 0.01) + 2)
+    trial = np.geomspace(lo_t, hi_t, int(math.log(hi_t / lo_t) / 0.01) + 2)
     cost = np.array([np.sum(model.residuals((t, scale0, bragg0, blur0)) ** 2)
                      for t in trial])
     from scipy.signal import argrelmin
 
     minima = argrelmin(np.concatenate([[np.inf], cost, [np.inf]]))[0] - 1
-    starts = trial[minima[np.argsort(cost[minima])][:4]]
+    starts = list(trial[minima[np.argsort(cost[minima])][:4]])
+    if kelly_allen is not None and lo_t < kelly_allen.thickness_nm < hi_t:
+        starts.append(kelly_allen.thickness_nm)
     best = None
     for t in starts:
         res = _local_fit(model, np.array([t, scale0, bragg0, blur0]), lower, upper, x_scale)
@@ -1038,7 +1052,8 @@ def fit_profile(position, intensity, crystal, hkl, *, kv=200.0, n_beams=DEFAULT_
     resid = model.residuals(best.x)
     dof = max(len(y) - len(best.x) - 3, 1)
     gain = float(np.sum(resid ** 2) / dof)         # variance per unit intensity, fitted
-    red_chi2 = gain / _noise_gain(y, np.maximum(fitted, floor))
+    noise_gain = _noise_gain(y, np.maximum(fitted, floor))
+    red_chi2 = gain / noise_gain
     jac = best.jac
     try:
         cov = np.linalg.inv(jac.T @ jac) * gain
@@ -1054,22 +1069,39 @@ def fit_profile(position, intensity, crystal, hkl, *, kv=200.0, n_beams=DEFAULT_
             continue
         alt = build(n, ratio)
         alt.weights = model.weights
-        r = _local_fit(alt, best.x, lower, upper, x_scale)
+        # the same solution under the other model: the nearest minimum, within
+        # 15 % of the thickness (a wider search could pick another fringe count)
+        near = best.x[0] * np.linspace(0.85, 1.15, 31)
+        cost = [np.sum(alt.residuals((t, *best.x[1:])) ** 2) for t in near]
+        lo_v, hi_v = lower.copy(), upper.copy()
+        lo_v[0], hi_v[0] = near[0], near[-1]
+        start = np.array([near[int(np.argmin(cost))], *best.x[1:]])
+        r = _local_fit(alt, start, lo_v, hi_v, x_scale)
         variants.append({"variant": label, "n_beams": n, "absorption_ratio": ratio,
-                         "thickness_nm": float(r.x[0])})
+                         "thickness_nm": float(r.x[0]),
+                         "reduced_chi2": float(np.sum(r.fun ** 2) / dof) / noise_gain})
     t_fit = float(best.x[0])
     shifts = {v["variant"]: v["thickness_nm"] - t_fit for v in variants}
     absorption = max([abs(v) for kk, v in shifts.items() if "absorption" in kk], default=0.0)
     beams = abs(shifts.get("two beams fewer", 0.0))
     model_sigma = math.hypot(absorption, beams)
     total = math.hypot(float(sig[0]), model_sigma)
-    if red_chi2 > 4:
-        warnings.append(f"the model matches the profile poorly (reduced chi-square "
-                        f"{red_chi2:.1f}): check the reflection, the voltage and that the "
-                        "profile runs along +g through both disks")
+    failure = None
+    if not best.success:
+        failure = f"the profile fit did not converge ({best.message})"
+    elif red_chi2 > 4:
+        # common practice: residuals twice the noise mean the model is wrong
+        failure = (f"the model matches the profile poorly (reduced chi-square "
+                   f"{red_chi2:.1f}): check the reflection, the voltage and that the profile "
+                   "runs along +g through both disks")
     for i, name in enumerate(["thickness", "scale", "Bragg position", "blur"]):
         if np.isclose(best.x[i], lower[i]) or np.isclose(best.x[i], upper[i]):
-            warnings.append(f"the fitted {name} sits at the bound of its search range")
+            if i < 3 and failure is None:
+                failure = f"the fitted {name} sits at the bound of its search range"
+            else:
+                warnings.append(f"the fitted {name} sits at the bound of its search range")
+    if failure is not None:
+        warnings.append(failure)
     if kelly_allen is not None and kelly_allen.first_fringe_index is not None:
         ka = kelly_allen.thickness_nm
         if abs(ka - t_fit) > 3 * math.hypot(kelly_allen.thickness_sigma_nm, total):
@@ -1086,4 +1118,4 @@ def fit_profile(position, intensity, crystal, hkl, *, kv=200.0, n_beams=DEFAULT_
         reduced_chi2=red_chi2, n_samples=len(y), n_beams=int(n_beams), absorption_ratio=a,
         hkl=hkl, kv=float(kv), separation=float(best.x[1] * two_theta), position=x,
         intensity=y, fitted=fitted, kelly_allen=kelly_allen, detection=det,
-        warnings=warnings)
+        warnings=warnings, success=failure is None, failure=failure)
