@@ -371,8 +371,10 @@ def test_cli_dynamical_profile(tmp_path, capsys, profile_180):
     np.savetxt(prof, np.stack([pos, inten], 1), delimiter=",", header="position,intensity",
                comments="")
     out, fig = tmp_path / "t.json", tmp_path / "t.png"
+    # the absorption ratio of the data (0.1) held: the search for it is
+    # tested through the library below
     code = main(["thickness", "Si", "--hkl", "2", "2", "0", "--profile", str(prof),
-                 "--dynamical", "--json", str(out), "--figure", str(fig)])
+                 "--dynamical", "--hold-absorption", "--json", str(out), "--figure", str(fig)])
     assert code == 0 and fig.exists()
     text = capsys.readouterr().out
     assert "Kelly-Allen" in text and "many-beam" in text
@@ -381,6 +383,7 @@ def test_cli_dynamical_profile(tmp_path, capsys, profile_180):
     assert doc["thickness_nm"] == pytest.approx(180.0, rel=0.01)
     assert doc["thickness_sigma_nm"] > 0
     assert doc["dynamical"]["n_beams"] == 9 and doc["dynamical"]["absorption_ratio"] == 0.1
+    assert doc["dynamical"]["absorption_fitted"] is False and doc["success"] is True
     assert doc["kelly_allen"]["first_fringe_index"] == 2
     assert doc["kelly_allen"]["thickness_nm"] > doc["thickness_nm"]
 

@@ -274,6 +274,7 @@ def _cmd_thickness_fit(args):
     position, intensity = read_profile(args.profile)
     result = fit_profile(position, intensity, crystal, args.hkl, kv=args.kv,
                          n_beams=args.row_beams, absorption_ratio=args.absorption_ratio,
+                         fit_absorption=not args.hold_absorption,
                          thickness_range_nm=args.thickness_range_nm)
     print(report.thickness_fit_text(result))
 
@@ -513,7 +514,10 @@ def build_parser():
                         "--profile; needs the structure and --hkl")
     p.add_argument("--absorption-ratio", type=float, default=0.1, metavar="A",
                    help="with --dynamical: absorptive potential as a fraction of the "
-                        "elastic one, in [0, 1) (0.1)")
+                        "elastic one, in [0, 1): where the search for it starts, or the "
+                        "value held with --hold-absorption (0.1)")
+    p.add_argument("--hold-absorption", action="store_true",
+                   help="with --dynamical: hold the absorption ratio instead of fitting it")
     p.add_argument("--row-beams", type=int, default=9, metavar="N",
                    help="with --dynamical: beams of the systematic row, odd (9)")
     p.add_argument("--thickness-range-nm", type=float, nargs=2, default=(20.0, 1000.0),

@@ -510,6 +510,7 @@ def thickness_fit_document(result, structure=None):
                   "disks",
         "dynamical": {
             "n_beams": result.n_beams, "absorption_ratio": result.absorption_ratio,
+            "absorption_fitted": result.absorption_fitted,
             "model_variants": result.model_variants,
             "scale_per_mrad": result.scale_px_per_mrad,
             "scale_sigma_per_mrad": result.scale_sigma_px_per_mrad,
@@ -532,8 +533,9 @@ def thickness_fit_document(result, structure=None):
 
 def thickness_fit_text(result):
     """Readable summary of a many-beam profile fit, with the Kelly-Allen result beside it."""
+    how = "fitted" if result.absorption_fitted else "held"
     out = [f"reflection ({format_hkl(result.hkl)}), {result.kv:g} kV; systematic row of "
-           f"{result.n_beams} beams, absorption ratio {result.absorption_ratio:g}",
+           f"{result.n_beams} beams, absorption ratio {result.absorption_ratio:.3g} ({how})",
            f"profile    {result.n_samples} samples, reduced chi-square "
            f"{result.reduced_chi2:.2f}",
            "",

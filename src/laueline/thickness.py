@@ -858,6 +858,7 @@ class ProfileFitResult:
     n_samples: int
     n_beams: int
     absorption_ratio: float
+    absorption_fitted: bool
     hkl: tuple
     kv: float
     separation: float
@@ -935,12 +936,12 @@ def _local_fit(model, start, lower, upper, x_scale):
     from scipy.optimize import least_squares
 
     return least_squares(model.residuals, np.clip(start, lower, upper), bounds=(lower, upper),
-                         x_scale=x_scale, method="trf", xtol=1e-10, ftol=1e-12, gtol=1e-10,
+                         x_scale=x_scale, method="trf", xtol=1e-9, ftol=1e-10, gtol=1e-10,
                          diff_step=1e-6, max_nfev=400)
 
 
 def fit_profile(position, intensity, crystal, hkl, *, kv=200.0, n_beams=DEFAULT_ROW_BEAMS,
-                absorption_ratio=0.1, thickness_range_nm=(20.0, 1000.0)):
+                absorption_ratio=0.1, fit_absorption=True, thickness_range_nm=(20.0, 1000.0)):
     """Foil thickness from a two-beam profile by fitting many-beam intensities.
 
     The profile runs along +g through the direct and the diffracted disk.
@@ -954,7 +955,7 @@ def fit_profile(position, intensity, crystal, hkl, *, kv=200.0, n_beams=DEFAULT_
     the background, a diffuse level in the disks and the incident intensity
     solved linearly at every step.  Samples are weighted as Poisson counts of
     unknown gain (variance proportional to the modelled intensity).  The
-    thickness is first scanned (steps of 1 %) over the range given and
+    thickness is first scanned (steps of 3 %) over the range given and
     the best few minima refined, so the fit does not hang on one fringe
     numbering.  The model's uncertainty is the change of the thickness when
     the absorption ratio is halved and doubled and when the row loses two
@@ -972,7 +973,15 @@ def fit_profile(position, intensity, crystal, hkl, *, kv=200.0, n_beams=DEFAULT_
     n_beams : int
         Beams of the systematic row, odd, 3 or more (9 by default).
     absorption_ratio : float
-        a in U'_g = a U_g, [0, 1); 0.1 by default (common practice).
+        a in U'_g = a U_g, [0, 1); 0.1 by default (common practice).  With
+        ``fit_absorption`` the centre of the search for it.
+    fit_absorption : bool
+        Choose the absorption ratio that matches the profile best, among
+        the given value times 2^(k/2), k = -4..4 (0.005 to 0.6), refined
+        by a parabola in log(a) through the best and its neighbours; the
+        profile's fringe contrast and the direct disk's asymmetry fix it
+        well, and a wrong fixed value can bias the thickness by a fringe.
+        False holds ``absorption_ratio``.
     thickness_range_nm : (float, float)
         Range of thickness searched, nm.
 
@@ -1016,33 +1025,76 @@ def fit_profile(position, intensity, crystal, hkl, *, kv=200.0, n_beams=DEFAULT_
     half_width = 0.5 * (edges[1] - edges[0]) / scale0
     offset = abs(0.5 * (edges[0] + edges[1]) - bragg0) / scale0
     reach = 1.15 * (half_width + offset) + 0.5
-    grid_step = min(0.02, 0.25 * step / scale0)
+    grid_step = min(0.025, 0.25 * step / scale0)
     grid = np.arange(-reach, reach + grid_step, grid_step)
 
     def build(n, ratio):
         return _ProfileModel(_RowStates(crystal, hkl, grid, kv, n, ratio), grid, x, y, step,
                              edges, two_theta)
 
-    model = build(n_beams, a)
     blur0 = 1.0 * step
     lower = np.array([1.0, 0.85 * scale0, bragg0 - 0.1 * det.separation, 0.05 * step])
     upper = np.array([2000.0, 1.15 * scale0, bragg0 + 0.1 * det.separation, 20.0 * step])
     x_scale = np.array([1.0, 0.001 * scale0, step, step])
-    # coarse scan of the thickness with the geometry held, unweighted
-    trial = np.geomspace(lo_t, hi_t, int(math.log(hi_t / lo_t) / 0.01) + 2)
-    cost = np.array([np.sum(model.residuals((t, scale0, bragg0, blur0)) ** 2)
-                     for t in trial])
+    trial = np.geomspace(lo_t, hi_t, int(math.log(hi_t / lo_t) / 0.03) + 2)
     from scipy.signal import argrelmin
 
-    minima = argrelmin(np.concatenate([[np.inf], cost, [np.inf]]))[0] - 1
-    starts = list(trial[minima[np.argsort(cost[minima])][:4]])
-    if kelly_allen is not None and lo_t < kelly_allen.thickness_nm < hi_t:
-        starts.append(kelly_allen.thickness_nm)
-    best = None
-    for t in starts:
-        res = _local_fit(model, np.array([t, scale0, bragg0, blur0]), lower, upper, x_scale)
-        if best is None or res.cost < best.cost:
-            best = res
+    def search(model, near=None):
+        """Scan the thickness with the geometry held, refine the best minima (unweighted).
+
+        ``near`` (a previous solution) narrows the scan to 15 % around it.
+        """
+        geometry = (scale0, bragg0, blur0) if near is None else tuple(near[1:])
+        ts = trial if near is None else near[0] * np.linspace(0.85, 1.15, 31)
+        cost = np.array([np.sum(model.residuals((t, *geometry)) ** 2) for t in ts])
+        minima = argrelmin(np.concatenate([[np.inf], cost, [np.inf]]))[0] - 1
+        starts = list(ts[minima[np.argsort(cost[minima])][:2 if near is None else 1]])
+        if near is None and kelly_allen is not None and lo_t < kelly_allen.thickness_nm < hi_t:
+            starts.append(kelly_allen.thickness_nm)
+        found = None
+        for t in starts:
+            res = _local_fit(model, np.array([t, *geometry]), lower, upper, x_scale)
+            if found is None or res.cost < found.cost:
+                found = res
+        return found
+
+    if fit_absorption:
+        # the absorption ratio shapes the fringe contrast and the asymmetry of
+        # the direct disk strongly; a wrong fixed value pulls the thickness to
+        # another fringe count, so the profile chooses it: factors of 2 around
+        # the given value, then of sqrt(2) around the best
+        tried = {}
+
+        def attempt(ratio, near=None):
+            ratio = float(np.clip(ratio, 0.005, 0.6))
+            if ratio not in tried:
+                m = build(n_beams, ratio)
+                tried[ratio] = (search(m, near), m)
+            return tried[ratio]
+
+        for f in (0.25, 0.5, 1.0, 2.0, 4.0):
+            attempt(a * f)
+        a = min(tried, key=lambda r: tried[r][0].cost)
+        for f in (2 ** -0.5, 2 ** 0.5):
+            attempt(a * f)
+        a = min(tried, key=lambda r: tried[r][0].cost)
+        # a parabola in log(a) through the best and its neighbours places it
+        ratios = sorted(tried)
+        i = ratios.index(a)
+        if 0 < i < len(ratios) - 1:
+            la = np.log(ratios[i - 1:i + 2])
+            c = np.polyfit(la, [tried[r][0].cost for r in ratios[i - 1:i + 2]], 2)
+            if c[0] > 0:
+                refined = float(np.exp(np.clip(-c[1] / (2 * c[0]), la[0], la[2])))
+                m = build(n_beams, refined)
+                res = _local_fit(m, tried[a][0].x, lower, upper, x_scale)
+                if res.cost < tried[a][0].cost:
+                    tried[refined] = (res, m)
+                    a = refined
+        best, model = tried[a]
+    else:
+        model = build(n_beams, a)
+        best = search(model)
     # Poisson weights of unknown gain from the unweighted solution, then refit
     fitted, _ = model.solve(best.x)
     floor = 0.02 * float(np.max(fitted))
@@ -1116,6 +1168,7 @@ def fit_profile(position, intensity, crystal, hkl, *, kv=200.0, n_beams=DEFAULT_
         bragg_position_sigma=float(sig[2]), blur_px=float(best.x[3]),
         background=float(coef[0]), diffuse=float(coef[1]), amplitude=float(coef[2]),
         reduced_chi2=red_chi2, n_samples=len(y), n_beams=int(n_beams), absorption_ratio=a,
+        absorption_fitted=bool(fit_absorption),
         hkl=hkl, kv=float(kv), separation=float(best.x[1] * two_theta), position=x,
         intensity=y, fitted=fitted, kelly_allen=kelly_allen, detection=det,
         warnings=warnings, success=failure is None, failure=failure)
