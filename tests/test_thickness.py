@@ -255,13 +255,14 @@ def test_row_intensities_against_coupled_equations():
 
 TRUTH = {"thickness_nm": 180.0, "scale_px_per_mrad": 30.0, "disk_mrad": 5.5, "centre_px": 250.0,
          "bragg_offset_mrad": 0.3, "blur_px": 1.5, "background": 0.02, "diffuse": 0.01,
-         "dose": 3000.0}
+         "dose": 3000.0, "absorption_ratio": 0.07}
 
 
 def many_beam_profile(rng, thickness_nm=180.0, n_beams=9, truth=TRUTH, samples=1000):
     """A 220 two-beam profile of Si at 200 kV through both disks, along +g.
 
-    Intensities from the coupled equations (nine beams), the Bragg condition
+    Intensities from the coupled equations (nine beams, absorption ratio
+    0.07: not the fit's starting value of 0.1), the Bragg condition
     ``bragg_offset_mrad`` to the -g side of the direct disk's centre, a
     diffuse level inside the disks, blur, background and Poisson noise.
     Returns positions (px), intensities, and the true geometry.
@@ -276,7 +277,8 @@ def many_beam_profile(rng, thickness_nm=180.0, n_beams=9, truth=TRUTH, samples=1
     in0 = np.abs(pos - c0) <= radius
     in1 = np.abs(pos - c0 - separation) <= radius
     tilt = np.concatenate([(pos[in0] - bragg0) / scale, (pos[in1] - bragg0 - separation) / scale])
-    inten = coupled_equations_row(thickness_nm, tilt, n_beams=n_beams)
+    inten = coupled_equations_row(thickness_nm, tilt, n_beams=n_beams,
+                                  absorption_ratio=truth["absorption_ratio"])
     clean = np.zeros_like(pos)
     bright = inten[:in0.sum(), n_beams // 2].max()
     clean[in0] = inten[:in0.sum(), n_beams // 2] / bright
@@ -361,6 +363,9 @@ def test_many_beam_profile_fit(fit_180, profile_180):
     assert r.blur_px == pytest.approx(TRUTH["blur_px"], rel=0.25)
     assert r.background == pytest.approx(TRUTH["background"], rel=0.25)
     assert r.reduced_chi2 == pytest.approx(1.0, abs=0.3)
+    # the absorption ratio is found from the profile (searched in steps of
+    # sqrt(2) from 0.1): a wrong fixed value pulls the thickness off by a fringe
+    assert r.absorption_fitted and 0.05 < r.absorption_ratio < 0.1
 
 
 def test_cli_dynamical_profile(tmp_path, capsys, profile_180):
@@ -371,10 +376,11 @@ def test_cli_dynamical_profile(tmp_path, capsys, profile_180):
     np.savetxt(prof, np.stack([pos, inten], 1), delimiter=",", header="position,intensity",
                comments="")
     out, fig = tmp_path / "t.json", tmp_path / "t.png"
-    # the absorption ratio of the data (0.1) held: the search for it is
-    # tested through the library below
+    # the absorption ratio of the data held: the search for it is tested
+    # through the library below
     code = main(["thickness", "Si", "--hkl", "2", "2", "0", "--profile", str(prof),
-                 "--dynamical", "--hold-absorption", "--json", str(out), "--figure", str(fig)])
+                 "--dynamical", "--absorption-ratio", "0.07", "--hold-absorption",
+                 "--json", str(out), "--figure", str(fig)])
     assert code == 0 and fig.exists()
     text = capsys.readouterr().out
     assert "Kelly-Allen" in text and "many-beam" in text
@@ -382,7 +388,7 @@ def test_cli_dynamical_profile(tmp_path, capsys, profile_180):
     assert doc["schema"] == "laueline.thickness/2"
     assert doc["thickness_nm"] == pytest.approx(180.0, rel=0.01)
     assert doc["thickness_sigma_nm"] > 0
-    assert doc["dynamical"]["n_beams"] == 9 and doc["dynamical"]["absorption_ratio"] == 0.1
+    assert doc["dynamical"]["n_beams"] == 9 and doc["dynamical"]["absorption_ratio"] == 0.07
     assert doc["dynamical"]["absorption_fitted"] is False and doc["success"] is True
     assert doc["kelly_allen"]["first_fringe_index"] == 2
     assert doc["kelly_allen"]["thickness_nm"] > doc["thickness_nm"]
