@@ -549,13 +549,17 @@ def detect_profile(position, intensity):
     """Find the two disks and the dark fringes of the diffracted disk.
 
     The profile runs along +g: the direct disk comes first, the diffracted
-    disk second.  Disks are the two widest regions above a threshold between
-    the background and the bright level, after bridging dark fringes by a
-    closing that grows until exactly two similar disks remain.  Fringes are
-    the prominent minima of the smoothed profile inside the diffracted disk,
-    each located by a parabola through the raw samples around it; the Bragg
-    position is the centre of symmetry of the fringes on both sides (or the
-    disk centre when only one side shows fringes).
+    disk second.  The direct disk's edges are the strongest steps of
+    :func:`step_response` (its far edge the last one before the gap to the
+    second disk), each placed where the profile crosses the step's
+    mid-level.  The diffracted disk has the same width; it is placed from
+    its own edges where they step clearly, and otherwise where it holds all
+    the signal beyond the direct disk, since its outer fringes can be as dark
+    as the background.  Fringes are the prominent minima of the smoothed
+    profile inside the diffracted disk, each located by a parabola through
+    the raw samples around it; the Bragg position is the fringes' centre of
+    mirror symmetry (or the disk centre when only one side shows fringes).
+    Unevenly spaced samples are interpolated onto an even grid first.
     """
     from scipy.ndimage import uniform_filter1d
     from scipy.signal import find_peaks
