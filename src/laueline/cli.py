@@ -323,6 +323,8 @@ def _cmd_thickness(args):
     from .thickness import detect_profile, read_profile, thickness_from_fringes
 
     report.check_outputs([args.json], args.force, args.figure)
+    if args.dynamical:
+        return _cmd_thickness_fit(args)
     crystal = None
     if args.d_spacing_A is None:
         if args.structure is None or args.hkl is None:
@@ -396,6 +398,39 @@ def _cmd_relaxation(args):
     _finish(args, document, figure)
     if not result.success:
         sys.stderr.write(f"laueline: {result.fit.message}\n")
+        return EXIT_NOT_CONVERGED
+    return 0
+
+
+def _cmd_thickness_fit(args):
+    """``thickness --profile CSV --dynamical``: the many-beam fit of the whole profile."""
+    from . import report
+    from .thickness import fit_profile, read_profile
+
+    if not args.profile:
+        raise InputError("--dynamical fits an intensity profile: give --profile CSV")
+    if args.fringes_px or args.separation_px or args.first_index:
+        raise InputError("--dynamical uses the profile alone: drop --fringes-px, "
+                         "--separation-px and --first-index")
+    if args.structure is None or args.hkl is None:
+        raise InputError("--dynamical needs the structure and the reflection (--hkl H K L) "
+                         "for the Bloch-wave intensities")
+    crystal = _load_crystal(args)
+    position, intensity = read_profile(args.profile)
+    result = fit_profile(position, intensity, crystal, args.hkl, kv=args.kv,
+                         n_beams=args.row_beams, absorption_ratio=args.absorption_ratio,
+                         fit_absorption=not args.hold_absorption,
+                         thickness_range_nm=args.thickness_range_nm)
+    print(report.thickness_fit_text(result))
+
+    def figure():
+        from .plot import thickness_fit_figure
+
+        return thickness_fit_figure(result)
+
+    _finish(args, report.thickness_fit_document(result, crystal.summary()), figure)
+    if not result.success:
+        sys.stderr.write(f"laueline: {result.failure}\n")
         return EXIT_NOT_CONVERGED
     return 0
 
@@ -751,6 +786,20 @@ def build_parser():
                    help="intensity profile along +g through both disks: position, intensity")
     p.add_argument("--first-index", type=int, metavar="N",
                    help="force the index of the first fringe instead of searching")
+    p.add_argument("--dynamical", action="store_true",
+                   help="fit many-beam (systematic-row Bloch-wave) intensities to the whole "
+                        "--profile; needs the structure and --hkl")
+    p.add_argument("--absorption-ratio", type=float, default=0.1, metavar="A",
+                   help="with --dynamical: absorptive potential as a fraction of the "
+                        "elastic one, in [0, 1): where the search for it starts, or the "
+                        "value held with --hold-absorption (0.1)")
+    p.add_argument("--hold-absorption", action="store_true",
+                   help="with --dynamical: hold the absorption ratio instead of fitting it")
+    p.add_argument("--row-beams", type=int, default=9, metavar="N",
+                   help="with --dynamical: beams of the systematic row, odd (9)")
+    p.add_argument("--thickness-range-nm", type=float, nargs=2, default=(20.0, 1000.0),
+                   metavar=("LOW", "HIGH"),
+                   help="with --dynamical: range of thickness searched (20 1000)")
     _add_output_options(p)
     p.set_defaults(run=_cmd_thickness)
 

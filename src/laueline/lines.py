@@ -53,6 +53,7 @@ __all__ = [
     "locus_offset",
     "locus_residual",
     "locus_distances",
+    "locus_samples",
     "line_parameters_batch",
     "crossing_positions",
     "crossing_angles_deg",
@@ -197,6 +198,41 @@ def _locus_points(params, radius, n_points):
     normal = params.normal
     along = np.stack([-normal[:, 1], normal[:, 0]], axis=1)
     return p[..., None] * normal[:, None, :] + q[..., None] * along[:, None, :]
+
+
+def locus_samples(params, radius, fractions):
+    """Points on the exact loci inside a disk, with the unit normals there.
+
+    Parameters
+    ----------
+    params : LineParameters
+        Arrays of shape (n,).
+    radius : float
+        Disk radius in radians.
+    fractions : array_like, shape (m,) or (n, m)
+        Positions along each chord as fractions of its half-length, in [-1, 1]
+        (0 is the point of the locus nearest the disk centre).
+
+    Returns
+    -------
+    points : ndarray, shape (n, m, 2)
+        Disk points in radians.
+    normals : ndarray, shape (n, m, 2)
+        Unit normals of the loci at those points, along the gradient of the
+        Bragg-condition residual (:func:`locus_residual` grows along them).
+    half_length : ndarray, shape (n,)
+        Half-length of each chord in radians.
+    """
+    half = _chord_half_length(params, radius)
+    f = np.broadcast_to(np.asarray(fractions, dtype=float), (len(half), np.shape(fractions)[-1]))
+    q = f * half[:, None]
+    p = locus_offset(params, q)
+    normal = params.normal
+    along = np.stack([-normal[:, 1], normal[:, 0]], axis=1)
+    points = p[..., None] * normal[:, None, :] + q[..., None] * along[:, None, :]
+    axial = np.sqrt(1.0 - np.sum(points * points, axis=-1))
+    grad = params.g_perp[:, None, :] + (params.gz[:, None] / axial)[..., None] * points
+    return points, grad / np.linalg.norm(grad, axis=-1, keepdims=True), half
 
 
 def _straight_intersections(pa, pb):

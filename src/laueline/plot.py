@@ -22,9 +22,10 @@ from __future__ import annotations
 import numpy as np
 
 
-__all__ = ["pattern_figure", "fit_figure", "thickness_figure", "relaxation_figure",
-           "survey_figure", "robust_log_limits", "survey_map_coordinates", "detection_figure",
-           "map_figure", "save_figure", "style_figure", "draw_disk_lines", "hkl_label", "PALETTE"]
+__all__ = ["pattern_figure", "fit_figure", "thickness_figure", "thickness_fit_figure",
+           "relaxation_figure", "survey_figure", "robust_log_limits", "survey_map_coordinates",
+           "detection_figure", "map_figure", "save_figure", "style_figure", "draw_disk_lines",
+           "hkl_label", "PALETTE"]
 
 PALETTE = {
     "paper": "#fbf9f4",      # figure background
@@ -467,7 +468,10 @@ def thickness_figure(result):
     ax.set_xlabel("1 / n$^2$")
     ax.set_ylabel("(s / n)$^2$  (nm$^{-2}$)")
     ax.set_xlim(left=0)
-    ax.set_title(f"first fringe index {result.first_fringe_index}", fontsize=10)
+    refl = f"({hkl_label(result.hkl)}), " if result.hkl else ""
+    ax.set_title(f"{refl}t = {result.thickness_nm:.1f} $\\pm$ "
+                 f"{result.thickness_sigma_nm:.2g} nm, first fringe index "
+                 f"{result.first_fringe_index}", fontsize=10)
     ax.legend(fontsize=8)
     if det is not None:
         ap = axes[1]
@@ -479,8 +483,8 @@ def thickness_figure(result):
         mins = det.minima
         ap.plot(mins, np.interp(mins, det.position, det.intensity), "v", color=_CROSSING,
                 markersize=5)
-        ap.set_xlabel("position along g")
-        ap.set_ylabel("intensity")
+        ap.set_xlabel("position along +g (profile unit, e.g. px)")
+        ap.set_ylabel("intensity (as given)")
         ap.set_title("profile: disks, Bragg line and dark fringes", fontsize=10)
     return fig
 
@@ -531,6 +535,36 @@ def relaxation_figure(result, max_profiles=12):
         extra.set_visible(False)
     fig.suptitle("line profiles (kinematic model): measured, fitted, uniform strain (dashed)",
                  fontsize=9)
+    return fig
+
+
+def thickness_fit_figure(result):
+    """Measured and fitted profile of a many-beam thickness fit, residuals beneath."""
+    fig = _new_figure(9.0, 5.4)
+    ax, ar = fig.subplots(2, 1, sharex=True, height_ratios=[3, 1])
+    ax.plot(result.position, result.intensity, color="#555555", linewidth=0.7,
+            label="measured")
+    ax.plot(result.position, result.fitted, color=_CROSSING, linewidth=1.0,
+            label=f"many-beam fit, {result.n_beams} beams")
+    det = result.detection
+    if det is not None:
+        for lo, hi in det.disk_edges:
+            ax.axvspan(lo, hi, color=_ZOLZ_FILL, alpha=0.5, zorder=0)
+    for offset in (0.0, result.separation):
+        ax.axvline(result.bragg_position + offset, color=_LINE, linewidth=0.8,
+                   linestyle=(0, (4, 3)))
+    ka = result.kelly_allen
+    ka_text = (f"; Kelly-Allen {ka.thickness_nm:.1f} $\\pm$ {ka.thickness_sigma_nm:.2g} nm"
+               if ka is not None else "")
+    ax.set_title(f"({hkl_label(result.hkl)}), {result.kv:g} kV: t = {result.thickness_nm:.1f} "
+                 f"$\\pm$ {result.thickness_sigma_nm:.2g} nm (many-beam fit){ka_text}",
+                 fontsize=10)
+    ax.set_ylabel("intensity (as given)")
+    ax.legend(fontsize=8, loc="upper right")
+    ar.plot(result.position, result.intensity - result.fitted, color="#555555", linewidth=0.6)
+    ar.axhline(0.0, color=_LINE, linewidth=0.8)
+    ar.set_ylabel("residual")
+    ar.set_xlabel("position along +g (profile unit, e.g. px)")
     return fig
 
 

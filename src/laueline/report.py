@@ -31,6 +31,8 @@ __all__ = [
     "survey_text",
     "thickness_document",
     "thickness_text",
+    "thickness_fit_document",
+    "thickness_fit_text",
     "FIGURE_SUFFIXES",
     "check_outputs",
     "write_json",
@@ -519,6 +521,7 @@ def _fit_tail(out, result):
 # ---------------------------------------------------------------------------
 
 THICKNESS_SCHEMA = "laueline.thickness/1"
+THICKNESS_FIT_SCHEMA = "laueline.thickness/2"
 
 
 def thickness_document(result, structure=None):
@@ -558,6 +561,88 @@ def thickness_document(result, structure=None):
                           "fringes_sigma": det.fringes_sigma,
                           "separation_sigma": det.separation_sigma}
     return _clean(doc)
+
+
+def thickness_fit_document(result, structure=None):
+    """The ``laueline.thickness/2`` document of a :class:`~laueline.thickness.ProfileFitResult`.
+
+    ``thickness_nm`` and ``thickness_sigma_nm`` hold the many-beam profile
+    fit; ``kelly_allen`` the two-beam construction on the same profile (a
+    ``laueline.thickness/1`` document without its schema key, or null when
+    the profile shows too few fringes); ``dynamical`` the fit's details.
+    """
+    ka = None
+    if result.kelly_allen is not None:
+        ka = thickness_document(result.kelly_allen, structure)
+        del ka["schema"], ka["structure"]
+    det = result.detection
+    return _clean({
+        "schema": THICKNESS_FIT_SCHEMA,
+        "success": result.success,
+        "failure": result.failure,
+        "structure": structure,
+        "hkl": list(result.hkl),
+        "kv": result.kv,
+        "thickness_nm": result.thickness_nm,
+        "thickness_sigma_nm": result.thickness_sigma_nm,
+        "thickness_statistical_sigma_nm": result.thickness_statistical_sigma_nm,
+        "thickness_model_sigma_nm": result.thickness_model_sigma_nm,
+        "method": "systematic-row Bloch-wave intensities fitted to the profile through both "
+                  "disks",
+        "dynamical": {
+            "n_beams": result.n_beams, "absorption_ratio": result.absorption_ratio,
+            "absorption_fitted": result.absorption_fitted,
+            "model_variants": result.model_variants,
+            "scale_per_mrad": result.scale_px_per_mrad,
+            "scale_sigma_per_mrad": result.scale_sigma_px_per_mrad,
+            "bragg_position": result.bragg_position,
+            "bragg_position_sigma": result.bragg_position_sigma,
+            "separation": result.separation,
+            "blur_sigma": result.blur_px,
+            "background": result.background, "diffuse": result.diffuse,
+            "amplitude": result.amplitude,
+            "reduced_chi2": result.reduced_chi2, "n_samples": result.n_samples,
+        },
+        "profile": None if det is None else {
+            "disk_edges": det.disk_edges, "disk_centres": det.disk_centres,
+            "disk_centre_sigma": det.disk_centre_sigma, "separation": det.separation,
+            "separation_sigma": det.separation_sigma},
+        "kelly_allen": ka,
+        "warnings": result.warnings,
+    })
+
+
+def thickness_fit_text(result):
+    """Readable summary of a many-beam profile fit, with the Kelly-Allen result beside it."""
+    how = "fitted" if result.absorption_fitted else "held"
+    out = [f"reflection ({format_hkl(result.hkl)}), {result.kv:g} kV; systematic row of "
+           f"{result.n_beams} beams, absorption ratio {result.absorption_ratio:.3g} ({how})",
+           f"profile    {result.n_samples} samples, reduced chi-square "
+           f"{result.reduced_chi2:.2f}",
+           "",
+           f"  thickness (many-beam fit)  {result.thickness_nm:9.2f} +- "
+           f"{result.thickness_sigma_nm:.2g} nm",
+           f"      statistical            {result.thickness_statistical_sigma_nm:9.2g} nm",
+           f"      model                  {result.thickness_model_sigma_nm:9.2g} nm"]
+    for v in result.model_variants:
+        out.append(f"        {v['variant']:<24s} {v['thickness_nm']:9.2f} nm   (reduced "
+                   f"chi-square {v['reduced_chi2']:.2f})")
+    ka = result.kelly_allen
+    if ka is not None:
+        out.append(f"  Kelly-Allen (two-beam)     {ka.thickness_nm:9.2f} +- "
+                   f"{ka.thickness_sigma_nm:.2g} nm, first fringe index "
+                   f"{ka.first_fringe_index}, {len(ka.fringes)} fringes")
+    else:
+        out.append("  Kelly-Allen (two-beam)     not available (too few fringes)")
+    out.append(f"  scale {result.scale_px_per_mrad:.4g} per mrad, Bragg line at "
+               f"{result.bragg_position:.4g} (direct disk), blur {result.blur_px:.3g}")
+    if result.warnings:
+        out.append("")
+        out.extend(f"warning: {w}" for w in result.warnings)
+    out.append("")
+    out.append("caution: the fit includes the systematic row only; beams off the row "
+               "(a two-beam condition set close to a zone axis) are not modelled")
+    return "\n".join(out)
 
 
 def thickness_text(result):
