@@ -58,7 +58,7 @@ def scenario_strain(crystal):
 #: Files the demonstration writes into its folder.
 DEMO_FILES = ("reference.tif", "reference.truth.json", "channel.tif", "channel.truth.json",
               "reference.csv", "channel.csv", "calibration.json", "channel-fit.json",
-              "channel-fit.png", "reference-detection.png", "line-scan.png")
+              "channel-fit.png", "reference-detection.png", "line-scan.npy", "line-scan.png")
 
 
 def _scenario_files(folder):
@@ -361,7 +361,12 @@ def run_line_scan(out, crystal, calibration, reference_image, say, force=False):
     plan = plan_scan(crystal, SCENARIO["zone"], calibration, images.shape[1:],
                      disk_mrad=SCENARIO["disk_mrad"], x_axis=SCENARIO["x_axis"],
                      sample_axes=axes, reference=reference_image)
-    scan = scan_from_array(images, step_nm=LINE_SCAN["step_nm"], source="demo line scan")
+    from .io.outputs import atomic_write
+
+    counts = np.round(images).astype(np.uint16)  # the detector's counts, as a file holds them
+    atomic_write(Path(out) / "line-scan.npy", lambda tmp: np.save(tmp, counts), force=force)
+    scan = scan_from_array(counts, step_nm=LINE_SCAN["step_nm"], source="demo line scan",
+                           chunk_patterns=5)
     scan.nav_coords["scan"] = (position, "nm")
     ds = map_strain(scan, plan, out=Path(out) / "line-scan.zarr", force=force, progress=False)
     save_figure(map_figure(ds), Path(out) / "line-scan.png", force=force)
