@@ -171,7 +171,7 @@ def _cmd_refine(args):
     stiffness, axes = _stiffness_and_axes(args, crystal)
     flip = -1.0 if args.y_up else 1.0
     center = None if args.center_px is None else (args.center_px[0], flip * args.center_px[1])
-    common = dict(kv=args.kv, model=args.model, x_axis=args.x_axis, free=args.free or (),
+    common = dict(kv=200.0 if args.kv is None else args.kv, model=args.model, x_axis=args.x_axis, free=args.free or (),
                   hold=args.hold or (), unique_axis=args.unique_axis, center_px=center,
                   scale_px_per_mrad=args.scale_px_per_mrad, rotation_deg=args.rotation_deg,
                   mirror=args.mirror, calibration=calibration, robust=args.robust,
@@ -180,12 +180,17 @@ def _cmd_refine(args):
     image = None
     if args.image:
         from .images.detect import detect_lines
-        from .images.io import read_image
         from .refine import refine_image
 
         if args.y_up:
             raise InputError("--y-up applies to point files; images are read row by row")
-        image, saturation = read_image(args.image)
+        read = _read_pattern_args(args, args.image)
+        image, saturation = read.image, read.saturation
+        # the file's voltage and camera scale unless the command line gives them
+        common["kv"] = read.metadata.kv if read.metadata.kv is not None else 200.0
+        if args.scale_px_per_mrad is None and args.calibration is None:
+            common["scale_px_per_mrad"] = read.metadata.scale_px_per_mrad
+        print(read.metadata.text() + "\n")
         detection = detect_lines(image, disk=args.disk_px, saturation=saturation,
                                  min_angle_deg=args.min_angle_deg, source=args.image)
         result = refine_image(crystal, args.zone, detection,
@@ -321,17 +326,37 @@ def _cmd_render(args):
     return 0
 
 
+def _add_image_options(p):
+    """Options for reading a pattern out of an image or microscope file."""
+    p.add_argument("--index", nargs="+", type=int, metavar="I",
+                   help="the pattern of a stack or scan: one flat index or one per "
+                        "navigation axis")
+    p.add_argument("--allow-large-image", action="store_true",
+                   help="read patterns above 4096 x 4096 px")
+
+
+def _read_pattern_args(args, path):
+    from .io.microscope import read_pattern
+
+    index = None if args.index is None else \
+        (args.index[0] if len(args.index) == 1 else tuple(args.index))
+    return read_pattern(path, index=index, kv=getattr(args, "kv", None),
+                        scale_px_per_mrad=getattr(args, "scale_px_per_mrad", None),
+                        allow_large=args.allow_large_image)
+
+
 def _cmd_detect(args):
     from . import report
     from .images.detect import detect_lines
-    from .images.io import read_image
 
     report.check_outputs([args.json], args.force, args.figure)
-    image, saturation = read_image(args.pattern)
-    det = detect_lines(image, disk=args.disk_px, saturation=saturation,
+    read = _read_pattern_args(args, args.pattern)
+    image = read.image
+    det = detect_lines(image, disk=args.disk_px, saturation=read.saturation,
                        min_angle_deg=args.min_angle_deg, source=args.pattern)
     if len(det.good_lines) < 2:
         raise InputError(f"{args.pattern}: fewer than two lines found in the disk")
+    print(read.metadata.text() + "\n")
     print(report.detection_text(det))
 
     def figure():
@@ -339,7 +364,9 @@ def _cmd_detect(args):
 
         return detection_figure(det, image)
 
-    _finish(args, report.detection_document(det), figure)
+    document = report.detection_document(det)
+    document["file"] = report._clean(read.metadata.as_dict())
+    _finish(args, document, figure)
     return 0
 
 
@@ -405,6 +432,7 @@ def build_parser():
                    help="a pattern image (TIFF, PNG, .npy): detect its lines and fit them")
     p.add_argument("--disk-px", nargs=3, type=float, metavar=("X", "Y", "R"),
                    help="with --image: the disk centre and radius in px instead of finding it")
+    _add_image_options(p)
     p.add_argument("--y-up", action="store_true",
                    help="the points' y grows upward (default: down, as image rows)")
     from .refine import MODELS
@@ -448,7 +476,7 @@ def build_parser():
                          help="6x6 Voigt stiffness in GPa (reference Cartesian frame)")
     _add_sample_frame_options(p)
     _add_output_options(p)
-    p.set_defaults(run=_cmd_refine)
+    p.set_defaults(run=_cmd_refine, kv=None)  # None: the image file's voltage, else 200
 
     p = sub.add_parser("thickness", help="foil thickness from two-beam CBED fringes",
                        description="Foil thickness and extinction distance from the dark "
@@ -551,9 +579,15 @@ def build_parser():
     p = sub.add_parser("detect", help="find the disk, its lines and crossings in an image",
                        description="Find the central disk and its HOLZ lines to sub-pixel "
                                    "precision, with their crossings and uncertainties.")
-    p.add_argument("pattern", help="image file (TIFF, PNG or .npy)")
+    p.add_argument("pattern", help="image file (TIFF, PNG, .npy) or microscope file (.dm3, "
+                                   ".dm4, .emd, .mrc, .mib, .blo, .hspy, .zspy)")
     p.add_argument("--disk-px", nargs=3, type=float, metavar=("X", "Y", "R"),
                    help="disk centre and radius in px instead of finding it")
+    _add_image_options(p)
+    p.add_argument("--kv", type=float,
+                   help="voltage in kV, overriding the file's (converts reciprocal pixel sizes)")
+    p.add_argument("--scale-px-per-mrad", type=float,
+                   help="camera scale overriding the one taken from the file")
     p.add_argument("--min-angle-deg", type=float, default=5.0,
                    help="smallest angle between crossing lines (5)")
     _add_output_options(p)

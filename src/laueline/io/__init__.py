@@ -1,0 +1,1 @@
+"""Input and output: microscope files and atomic writing of every output."""
