@@ -1,0 +1,441 @@
+"""Deficit-line profiles: sampling across lines and a batched fit of their minima.
+
+A dynamical HOLZ deficit line is not a symmetric Gaussian dip: it is
+asymmetric and carries side fringes.  Its profile across the line is
+modelled by a Gauss-Hermite series (van der Marel and Franx, ApJ 407, 525,
+1993),
+
+    f(d) = b0 + b1 d - D exp(-u^2 / 2) [1 + c u^2 + a u^3],   u = (d - x0) / s,
+
+with depth D, width s, an odd (asymmetry) term a and an even term c
+(c < 0 sharpens the core and raises bright side fringes, c > 0 flattens
+it); b0 + b1 d takes up what the background model left.  The series lacks
+the linear term on purpose: the bracketed dip then has zero slope at u = 0
+and, for |a| <= 0.4 and c <= 0.45, its deepest point there, so x0 is the
+position of the deficit minimum itself, not the centre of a Gaussian that
+an asymmetric line would pull aside.  Weak Gaussian priors (a within 0.2,
+c within 0.3, one sigma) keep the shape terms at zero unless the data ask
+for them.
+
+Profiles are sampled on short segments of a line: at each segment centre
+p with unit normal n and tangent t, the flattened image is interpolated
+(bilinear) at p + d n + v t for d on a 1-px grid across the line and v on
+a 1-px grid along the segment, and averaged over v.  Pixels near other
+lines are left out of the average.  All profiles of all lines are fitted
+together by a damped Gauss-Newton (Levenberg-Marquardt) iteration
+vectorised over profiles.
+"""
+
+from __future__ import annotations
+
+import math
+from dataclasses import dataclass
+
+import numpy as np
+
+__all__ = ["ProfileFit", "sample_profiles", "fit_profiles", "fit_line_offsets"]
+
+_PRIOR_SD = np.array([np.inf, np.inf, np.inf, np.inf, np.inf, 0.2, 0.3])
+_N_PARAMS = 7  # x0, depth, width, base, slope, asymmetry, fringe
+
+
+@dataclass
+class ProfileFit:
+    """Batched fits of M profiles (arrays of shape (M,) unless noted).
+
+    Attributes
+    ----------
+    minimum : offset (px, along the normal) of the profile's minimum
+    minimum_var : its variance (px^2)
+    depth, depth_sigma : fitted D (relative to the flattened background)
+    width : fitted s (px; the FWHM of the Gaussian core is 2.355 s)
+    asymmetry, fringe : a and c of the Gauss-Hermite series
+    ok : usable fits
+    params : (M, 7) all parameters
+    """
+
+    minimum: np.ndarray
+    minimum_var: np.ndarray
+    depth: np.ndarray
+    depth_sigma: np.ndarray
+    width: np.ndarray
+    asymmetry: np.ndarray
+    fringe: np.ndarray
+    ok: np.ndarray
+    params: np.ndarray
+
+
+def sample_profiles(flat, valid, points, normals, half_width, segment, others=None):
+    """Profiles across lines at segment centres.
+
+    Parameters
+    ----------
+    flat : ndarray (rows, cols)
+        Flattened image (background removed, 0 on the background).
+    valid : ndarray of bool (rows, cols)
+        Usable pixels.
+    points, normals : ndarray (M, 2)
+        Segment centres (x, y) px and unit normals.
+    half_width : float or ndarray (M,)
+        Profiles reach from -half_width to +half_width px along the normal.
+    segment : float
+        Length of a segment along the line (px).
+    others : tuple (M, J) arrays, optional
+        ``(distance, cos_angle, keep_out)``: signed distance of each other
+        line from each segment centre, the cosine between its normal and
+        the segment's normal, and the half width to keep clear of it (px).
+
+    Returns
+    -------
+    d : ndarray (n,)
+        Offsets along the normal (px).
+    profile : ndarray (M, n)
+        Mean flattened intensity; 0 where nothing is usable.
+    count : ndarray (M, n)
+        Number of pixels averaged (0: left out).
+    """
+    from scipy import ndimage
+
+    points = np.asarray(points, float)
+    normals = np.asarray(normals, float)
+    m_count = len(points)
+    hw = float(np.max(half_width))
+    d = np.arange(-math.ceil(hw), math.ceil(hw) + 1.0)
+    v = np.arange(segment) - (segment - 1) / 2.0
+    tangents = np.stack([-normals[:, 1], normals[:, 0]], 1)
+    xy = (points[:, None, None, :] + d[None, :, None, None] * normals[:, None, None, :]
+          + v[None, None, :, None] * tangents[:, None, None, :])        # (M, n, k, 2)
+    coords = [xy[..., 1].ravel(), xy[..., 0].ravel()]
+    values = ndimage.map_coordinates(flat, coords, order=1, mode="constant", cval=0.0)
+    usable = ndimage.map_coordinates(valid.astype(np.float32), coords, order=0,
+                                     mode="constant", cval=0.0) > 0.5
+    shape = xy.shape[:3]
+    values, usable = values.reshape(shape), usable.reshape(shape)
+    usable &= (np.abs(d)[None, :, None] <= np.broadcast_to(half_width, (m_count,))[:, None, None])
+    if others is not None:
+        dist, cosang, keep = others
+        sinang = np.sqrt(np.clip(1.0 - cosang ** 2, 0.0, 1.0))
+        # only the (segment, line) pairs whose line comes near the sampled patch
+        reach = np.abs(dist) - hw * cosang - 0.5 * segment * sinang
+        m_idx, j_idx = np.nonzero((reach < keep) & (keep > 0))
+        if len(m_idx):
+            # the other line's distance at sample (d, v): dist + d cos +- v sin
+            # (the sign of the v term is unknown here: both are left out)
+            base = dist[m_idx, j_idx][:, None, None] + d[None, :, None] * \
+                cosang[m_idx, j_idx][:, None, None]
+            along = v[None, None, :] * sinang[m_idx, j_idx][:, None, None]
+            k_out = keep[m_idx, j_idx][:, None, None]
+            near = (np.abs(base + along) < k_out) | (np.abs(base - along) < k_out)
+            hits = np.zeros(shape, dtype=np.int32)
+            np.add.at(hits, m_idx, near.astype(np.int32))
+            usable &= hits == 0
+    count = usable.sum(axis=2).astype(float)
+    total = np.where(usable, values, 0.0).sum(axis=2)
+    profile = np.divide(total, count, out=np.zeros_like(total), where=count > 0)
+    return d, profile, count
+
+
+def _model(p, d):
+    """Profile model and Jacobian; p (M, 7), d (n,) -> f (M, n), J (M, n, 7)."""
+    x0, depth, width, base, slope, a, c = (p[:, k:k + 1] for k in range(_N_PARAMS))
+    u = (d[None, :] - x0) / width
+    u2 = u * u
+    e = np.exp(-0.5 * u2)
+    g = e * (1.0 + c * u2 + a * u2 * u)
+    dg = e * (-u * (1.0 + c * u2 + a * u2 * u) + 2.0 * c * u + 3.0 * a * u2)
+    f = base + slope * d[None, :] - depth * g
+    jac = np.empty(f.shape + (_N_PARAMS,))
+    jac[..., 0] = depth * dg / width
+    jac[..., 1] = -g
+    jac[..., 2] = depth * dg * u / width
+    jac[..., 3] = 1.0
+    jac[..., 4] = d[None, :]
+    jac[..., 5] = -depth * e * u2 * u
+    jac[..., 6] = -depth * e * u2
+    return f, jac
+
+
+def fit_profiles(d, profile, count, start_x0, start_width, noise, *, max_width=None,
+                 search=2.0, shape_terms=True, iterations=20):
+    """Fit the Gauss-Hermite deficit model to every profile at once.
+
+    Parameters
+    ----------
+    d, profile, count :
+        As returned by :func:`sample_profiles`.
+    start_x0, start_width : ndarray (M,) or float
+        Start values of the dip centre and width (px).
+    noise : float
+        Noise of one flattened pixel (relative units); a profile point
+        averaged over n pixels has noise / sqrt(n) before the residual scale.
+    max_width : float, optional
+        Largest width s accepted (px).
+    search : float
+        The fit starts from the deepest point of the smoothed profile within
+        this distance (px) of ``start_x0``.
+    shape_terms : bool
+        Free the asymmetry and fringe terms after a plain Gaussian fit;
+        False stops at the Gaussian (as a start for :func:`template_minima`).
+
+    Returns
+    -------
+    ProfileFit
+    """
+    m_count = profile.shape[0]
+    start_x0 = np.broadcast_to(np.asarray(start_x0, float), (m_count,))
+    start_width = np.broadcast_to(np.asarray(start_width, float), (m_count,))
+    max_width = float(max_width or max(3.0 * float(np.max(start_width)), 4.0))
+    w = np.sqrt(count) / noise                                   # (M, n) inverse sigmas
+    used = count > 0
+    base0 = _masked_median(profile, used)
+    # start at the deepest point of the lightly smoothed profile near the start
+    from scipy.ndimage import uniform_filter1d
+
+    smooth = uniform_filter1d(np.where(used, profile, base0[:, None]), 3, axis=1)
+    near = np.abs(d[None, :] - start_x0[:, None]) <= search + 0.5
+    at = np.argmin(np.where(near, smooth, np.inf), axis=1)
+    dip0 = base0 - smooth[np.arange(m_count), at]
+    p = np.stack([d[at], np.maximum(dip0, noise), start_width, base0,
+                  np.zeros(m_count), np.zeros(m_count), np.zeros(m_count)], 1)
+    # first a plain Gaussian dip (shape terms held at zero), then everything
+    held = np.where(np.isfinite(_PRIOR_SD), 1e-6, np.inf)
+    if shape_terms:
+        p = _levenberg_marquardt(p, d, profile, used, w, noise, held, max_width, iterations)
+    p, r, jac, a_mat = _levenberg_marquardt(p, d, profile, used, w, noise,
+                                            _PRIOR_SD if shape_terms else held, max_width,
+                                            iterations, final=True)
+    n_used = used.sum(axis=1)
+    dof = np.maximum(n_used - _N_PARAMS, 1)
+    s2 = np.sum(r * r, axis=1) / dof
+    s2 = s2 * _correlation_factor(r, used)
+    ok = n_used >= _N_PARAMS + 4
+    cov = np.full((m_count, _N_PARAMS, _N_PARAMS), np.nan)
+    good_mat = ok & np.all(np.isfinite(a_mat), axis=(1, 2))
+    if good_mat.any():
+        sign, _ = np.linalg.slogdet(a_mat[good_mat])
+        idx = np.flatnonzero(good_mat)[sign > 0]
+        cov[idx] = np.linalg.inv(a_mat[idx]) * s2[idx, None, None]
+        ok &= np.isin(np.arange(m_count), idx)
+    minimum, depth, width, a, c = p[:, 0], p[:, 1], p[:, 2], p[:, 5], p[:, 6]
+    var = cov[:, 0, 0]
+    depth_sigma = np.sqrt(np.abs(cov[:, 1, 1]))
+    ok &= np.isfinite(var) & (var > 0) & (depth > 0) & (width < 0.98 * max_width)
+    ok &= (minimum > d[0] + width) & (minimum < d[-1] - width)
+    return ProfileFit(minimum, var, depth, depth_sigma, width, a, c, ok, p)
+
+
+def _levenberg_marquardt(p, d, profile, used, w, noise, prior_sd, max_width, iterations,
+                         final=False):
+    m_count = len(p)
+    prior_w = 1.0 / prior_sd
+    finite_prior = np.isfinite(prior_sd)
+
+    def cost_and_parts(p):
+        f, jac = _model(p, d)
+        r = (f - profile) * w
+        prior = np.where(finite_prior, p * np.where(finite_prior, prior_w, 0.0), 0.0)
+        return np.sum(r * r, axis=1) + np.sum(prior * prior, axis=1), r, jac
+
+    lam = np.full(m_count, 1e-2)
+    cost, r, jac = cost_and_parts(p)
+    prior_diag = np.where(finite_prior, prior_w ** 2, 0.0)
+    for _ in range(iterations):
+        jw = jac * w[..., None]
+        a_mat = np.matmul(jw.transpose(0, 2, 1), jw) + np.diag(prior_diag)[None]
+        grad = np.matmul(jw.transpose(0, 2, 1), r[..., None])[..., 0] + prior_diag[None] * p
+        diag = np.einsum("mii->mi", a_mat)
+        damped = a_mat + (lam[:, None] * np.maximum(diag, 1e-12))[:, :, None] * np.eye(_N_PARAMS)
+        try:
+            step = -np.linalg.solve(damped, grad[..., None])[..., 0]
+        except np.linalg.LinAlgError:
+            break
+        trial = p + step
+        trial[:, 2] = np.clip(trial[:, 2], 0.3, max_width)
+        trial[:, 5] = np.clip(trial[:, 5], -0.4, 0.4)
+        trial[:, 6] = np.clip(trial[:, 6], -0.8, 0.45)
+        trial[:, 0] = np.clip(trial[:, 0], d[0], d[-1])
+        new_cost, new_r, new_jac = cost_and_parts(trial)
+        better = new_cost < cost
+        p = np.where(better[:, None], trial, p)
+        cost = np.where(better, new_cost, cost)
+        r = np.where(better[:, None], new_r, r)
+        jac = np.where(better[:, None, None], new_jac, jac)
+        lam = np.where(better, lam / 3.0, lam * 4.0)
+        if np.all(lam > 1e6):
+            break
+    if not final:
+        return p
+    jw = jac * w[..., None]
+    a_mat = np.matmul(jw.transpose(0, 2, 1), jw) + np.diag(prior_diag)[None]
+    return p, r, jac, a_mat
+
+
+def _masked_median(profile, used):
+    masked = np.where(used, profile, np.nan)
+    with np.errstate(all="ignore"):
+        out = np.nanmedian(masked, axis=1)
+    return np.nan_to_num(out)
+
+
+def _correlation_factor(r, used):
+    """Variance inflation for correlated neighbouring profile points.
+
+    Neighbouring points share pixels (bilinear interpolation, detector blur),
+    so the residual scatter overstates the information; the factor
+    (1 + rho) / (1 - rho) with rho the lag-1 correlation of the residuals
+    (pooled over all profiles) is the usual effective-sample-size correction
+    of an AR(1) series.
+    """
+    both = used[:, 1:] & used[:, :-1]
+    if both.sum() < 20:
+        return 1.0
+    a, b = r[:, 1:][both], r[:, :-1][both]
+    rho = float(np.sum(a * b) / math.sqrt(np.sum(a * a) * np.sum(b * b) + 1e-300))
+    rho = min(max(rho, 0.0), 0.8)
+    return (1 + rho) / (1 - rho)
+
+
+def fit_line_offsets(s, offset, var, weight_ok, span, *, curvature_sagitta_px=0.1):
+    """Weighted fits offset = r + beta s + kappa s^2 of each line's segment minima.
+
+    Parameters
+    ----------
+    s, offset, var : ndarray (L, K)
+        Coordinate along each line, measured offset along its normal and its
+        variance, for K segments of L lines.
+    weight_ok : ndarray of bool (L, K)
+        Segments to use.
+    span : ndarray (L,)
+        Half chord length (px); a Gaussian prior holds the sagitta
+        kappa span^2 to about ``curvature_sagitta_px`` unless the data insist.
+
+    Returns
+    -------
+    coef : ndarray (L, 3)
+        r, beta, kappa.
+    cov : ndarray (L, 3, 3)
+        Scaled up by chi2/dof when the scatter exceeds the variances (Birge).
+    chi2, dof : ndarray (L,)
+    """
+    wgt = np.where(weight_ok, 1.0 / np.where(var > 0, var, np.inf), 0.0)
+    design = np.stack([np.ones_like(s), s, s * s], axis=2)          # (L, K, 3)
+    a_mat = np.einsum("lk,lki,lkj->lij", wgt, design, design)
+    kappa_prior = curvature_sagitta_px / np.maximum(span, 1.0) ** 2
+    a_mat[:, 2, 2] += 1.0 / kappa_prior ** 2
+    rhs = np.einsum("lk,lki,lk->li", wgt, design, offset)
+    a_mat[:, 0, 0] += 1e-12
+    a_mat[:, 1, 1] += 1e-12
+    cov = np.linalg.inv(a_mat)
+    coef = np.einsum("lij,lj->li", cov, rhs)
+    resid = offset - np.einsum("lki,li->lk", design, coef)
+    chi2 = np.sum(wgt * resid * resid, axis=1)
+    dof = np.maximum(weight_ok.sum(axis=1) - 3, 1)
+    cov = cov * np.maximum(chi2 / dof, 1.0)[:, None, None]
+    return coef, cov, chi2, dof
+
+
+def template_minima(d, profile, count, line_of, fit, noise, *, step=0.2, passes=2):
+    """Minimum positions from a profile template taken from each line itself.
+
+    The Gauss-Hermite series cannot follow every dynamical profile; a biased
+    shape biases the minimum.  Here the profiles of one line, shifted by
+    their fitted positions and normalised by their depth, are averaged on a
+    fine grid into that line's own template, whose minimum (a parabola
+    through the template's deepest 0.8 px) fixes the position of the deficit
+    minimum relative to the template; every profile is then fitted by the
+    template (shift, depth, background b0 + b1 d) and the template rebuilt.
+
+    Parameters
+    ----------
+    d, profile, count : as from :func:`sample_profiles`
+    line_of : ndarray of int (M,)
+        The line each profile belongs to.
+    fit : ProfileFit
+        Start values (Gauss-Hermite fits); profiles with ``ok`` False do
+        not enter the templates.
+    noise : float
+        Noise of one flattened pixel.
+
+    Returns
+    -------
+    minimum, minimum_var : ndarray (M,)
+    ok : ndarray of bool (M,)
+    template_offset : ndarray (L,)
+        Minimum of each line's template relative to its origin (px).
+    """
+    from scipy import ndimage
+
+    line_of = np.asarray(line_of, int)
+    n_lines = int(line_of.max()) + 1 if len(line_of) else 0
+    p = fit.params.copy()
+    shift, depth, base, slope = p[:, 0].copy(), p[:, 1].copy(), p[:, 3].copy(), p[:, 4].copy()
+    ok = fit.ok.copy()
+    half = float(d[-1])
+    grid = np.arange(-half, half + step / 2, step)
+    n_grid = len(grid)
+    w = np.sqrt(count) / noise
+    offset = np.zeros(max(n_lines, 1))
+    var = np.full(len(shift), np.nan)
+    width = np.maximum(fit.width, 0.5)
+    for _ in range(passes):
+        # template: normalised deficit of every usable profile, on the fine grid
+        rel = d[None, :] - shift[:, None]
+        norm = (profile - base[:, None] - slope[:, None] * d[None, :]) / depth[:, None]
+        use = (count > 0) & ok[:, None] & (np.abs(rel) < half)
+        bins = np.clip(np.round((rel + half) / step).astype(int), 0, n_grid - 1)
+        key = (line_of[:, None] * n_grid + bins)[use]
+        weight = (count * depth[:, None] ** 2)[use]
+        total = np.bincount(key, weight * norm[use], minlength=n_lines * n_grid)
+        wsum = np.bincount(key, weight, minlength=n_lines * n_grid)
+        template = np.divide(total, wsum, out=np.zeros_like(total), where=wsum > 0)
+        template = template.reshape(n_lines, n_grid)
+        have = wsum.reshape(n_lines, n_grid) > 0
+        # fill empty bins from their neighbours, then a light smoothing (one bin)
+        for k in range(n_lines):
+            if have[k].sum() >= 2 and not have[k].all():
+                template[k] = np.interp(grid, grid[have[k]], template[k][have[k]])
+        template = ndimage.gaussian_filter1d(template, 1.0, axis=1, mode="nearest")
+        # each template's minimum near its origin: a parabola through 5 bins
+        line_width = np.bincount(line_of, width, minlength=n_lines) / \
+            np.maximum(np.bincount(line_of, minlength=n_lines), 1)
+        near = np.abs(grid)[None, :] <= np.maximum(1.5 * line_width, 1.0)[:, None]
+        at = np.argmin(np.where(near, template, np.inf), axis=1)
+        at = np.clip(at, 2, n_grid - 3)
+        window = at[:, None] + np.arange(-2, 3)[None, :]
+        yv = np.take_along_axis(template, window, axis=1)
+        xv = np.arange(-2, 3) * step
+        coef = np.polynomial.polynomial.polyfit(xv, yv.T, 2)       # (3, L)
+        curv = coef[2]
+        vertex = np.where(curv > 0, -coef[1] / (2 * np.where(curv > 0, curv, 1.0)), 0.0)
+        offset = grid[at] + np.clip(vertex, -2 * step, 2 * step)
+        # refit every profile with its line's template: shift, depth, b0, b1
+        slope_t = np.gradient(template, step, axis=1)
+        for _ in range(6):
+            coords = (d[None, :] - shift[:, None] + half) / step
+            rows = np.broadcast_to(line_of[:, None], coords.shape)
+            tv = ndimage.map_coordinates(template, [rows.ravel(), coords.ravel()], order=1,
+                                         mode="nearest").reshape(coords.shape)
+            tdv = ndimage.map_coordinates(slope_t, [rows.ravel(), coords.ravel()], order=1,
+                                          mode="nearest").reshape(coords.shape)
+            model = base[:, None] + slope[:, None] * d[None, :] + depth[:, None] * tv
+            r = (model - profile) * w
+            jac = np.stack([-depth[:, None] * tdv, tv, np.ones_like(tv),
+                            np.broadcast_to(d[None, :], tv.shape)], axis=2) * w[..., None]
+            a_mat = np.matmul(jac.transpose(0, 2, 1), jac) + 1e-9 * np.eye(4)
+            grad = np.matmul(jac.transpose(0, 2, 1), r[..., None])[..., 0]
+            try:
+                delta = -np.linalg.solve(a_mat, grad[..., None])[..., 0]
+            except np.linalg.LinAlgError:
+                ok[:] = False
+                break
+            delta[:, 0] = np.clip(delta[:, 0], -1.0, 1.0)
+            shift = shift + delta[:, 0]
+            depth, base, slope = depth + delta[:, 1], base + delta[:, 2], slope + delta[:, 3]
+        n_used = (count > 0).sum(axis=1)
+        s2 = np.sum(r * r, axis=1) / np.maximum(n_used - 4, 1) * _correlation_factor(r, count > 0)
+        try:
+            var = np.linalg.inv(a_mat)[:, 0, 0] * s2
+        except np.linalg.LinAlgError:
+            var = np.full(len(shift), np.nan)
+        ok &= np.isfinite(var) & (var > 0) & (depth > 0) & (np.abs(shift) < half - 1.0)
+    return shift + offset[line_of], var, ok, offset
