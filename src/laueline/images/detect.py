@@ -236,6 +236,14 @@ def _ellipse_disk(edges, centre, passes=3):
     coef, *_ = np.linalg.lstsq(design, r[keep], rcond=None)
     res = r[keep] - design @ coef
     s2 = float(np.sum(res ** 2) / max(keep.sum() - 5, 1))
+    # neighbouring rays share pixels and the edge's smoothing: inflate by the
+    # AR(1) effective-sample factor (1 + rho) / (1 - rho) of the residuals in
+    # angular order
+    order = np.argsort(phi[keep])
+    ro = res[order]
+    rho1 = float(np.sum(ro[1:] * ro[:-1]) / max(np.sum(ro * ro), 1e-300))
+    rho1 = min(max(rho1, 0.0), 0.95)
+    s2 *= (1 + rho1) / (1 - rho1)
     cov = np.linalg.inv(design.T @ design) * s2
     centre = centre + coef[3:5]
     radius = float(coef[0])
@@ -281,7 +289,8 @@ def _flatten(image, valid, disk, line_sigma_px=1.0):
     source = interior | ((r < disk.radius_px - 2) & valid)
     if not np.any(interior):
         raise InputError("no usable pixels inside the disk")
-    window = max(7.0, disk.radius_px / 20.0, 8.0 * line_sigma_px)
+    # the window spans a line with its side fringes several times over
+    window = max(7.0, disk.radius_px / 20.0, 12.0 * line_sigma_px)
     block = max(1, int(window // 6))
     if block > 1:  # the background is smooth: work on block means
         r_rows, r_cols = rows // block * block, cols // block * block
@@ -382,15 +391,15 @@ def _other_line_masks(points, normals, owner, rho, ang, keep_out, disk, rank=Non
     """
     centre = np.asarray(disk.center_px)
     n = np.stack([np.cos(ang), np.sin(ang)], 1)                    # (J, 2)
+    tangents = np.stack([-normals[:, 1], normals[:, 0]], 1)
     dist = (points - centre) @ n.T - rho[None, :]                  # (M, J)
-    cosang = np.abs(normals @ n.T)
-    sign = np.sign(normals @ n.T)
-    dist = dist * np.where(sign == 0, 1.0, sign)
+    along_n = normals @ n.T
+    along_t = tangents @ n.T
     keep = np.broadcast_to(keep_out, dist.shape).copy()
     keep[np.arange(len(owner)), owner] = 0.0                        # not the line itself
     if rank is not None:
         keep[rank[None, :] >= rank[owner][:, None]] = 0.0
-    return dist, cosang, keep
+    return dist, along_n, along_t, keep
 
 
 @dataclass
@@ -403,7 +412,8 @@ class _Measured:
 
 
 def _measure_lines(flat, interior, disk, noise, polylines, width_px, search_px, *,
-                   masks=None, seg_len=None, template=True, min_z=6.0, min_fraction=0.5):
+                   masks=None, seg_len=None, template=True, min_z=6.0, min_fraction=0.5,
+                   screening=False):
     """Measure deficit minima along starting loci and fit each line through them.
 
     Parameters
@@ -423,6 +433,9 @@ def _measure_lines(flat, interior, disk, noise, polylines, width_px, search_px, 
     min_fraction : float
         Fraction of its segments on which a line must be seen: a start that
         merely crosses a real line sees it on one or two segments only.
+    screening : bool
+        A quick look (samples 2 px apart along segments, fewer iterations)
+        for sorting candidates; positions come from a later full pass.
     """
     from .lineprofile import fit_line_offsets, fit_profiles, sample_profiles, template_minima
 
@@ -442,14 +455,16 @@ def _measure_lines(flat, interior, disk, noise, polylines, width_px, search_px, 
         rho_m, ang_m, keep_m = masks[:3]
         others = _other_line_masks(points, normals, owner, rho_m, ang_m, keep_m, disk,
                                    masks[3] if len(masks) > 3 else None)
-    d, profile, count = sample_profiles(flat, interior, points, normals, half[owner],
-                                        int(seg_len), others)
+    d, profile, count, crowded = sample_profiles(flat, interior, points, normals, half[owner],
+                                        int(seg_len), others, step=2.0 if screening else 1.0)
     fit = fit_profiles(d, profile, count, 0.0, width_px[owner], noise, search=search_px,
-                       max_width=max(3.0 * sigma_max, 4.0), shape_terms=False)
+                       max_width=max(3.0 * sigma_max, 4.0), shape_terms=False,
+                       iterations=8 if screening else 20)
     z_seg = np.where(fit.ok, fit.depth / np.maximum(fit.depth_sigma, 1e-12), 0.0)
     if template:
         minimum, var, ok_t, _ = template_minima(d, profile, count, owner,
-                                                _with_ok(fit, z_seg > 2.0), noise)
+                                                _with_ok(fit, z_seg > 2.0), noise,
+                                                clean=~crowded)
     else:
         minimum, var, ok_t = fit.minimum, fit.minimum_var, fit.ok
     ok = ok_t & fit.ok & (z_seg > 2.0) & (np.abs(minimum) <= search_px + 1.0)
@@ -477,10 +492,18 @@ def _measure_lines(flat, interior, disk, noise, polylines, width_px, search_px, 
         coef, cov, chi2, dof = fit_line_offsets(s_g, off_g, var_g, ok_g, span)
         design = np.stack([np.ones_like(s_g), s_g, s_g * s_g], 2)
         resid = off_g - np.einsum("lki,li->lk", design, coef)
-        scale = np.sqrt(np.maximum(chi2 / dof, 1.0))[:, None]
-        ok_g &= np.abs(resid) < 4.0 * np.sqrt(var_g) * scale
+        # a robust scale (median absolute normalised residual) so that the
+        # outliers themselves cannot widen the gate
+        norm = np.where(ok_g, np.abs(resid) / np.sqrt(var_g), np.nan)
+        with np.errstate(all="ignore"):
+            scale = np.nan_to_num(1.4826 * np.nanmedian(norm, axis=1), nan=1.0)
+        ok_g &= np.abs(resid) < 4.0 * np.sqrt(var_g) * np.maximum(scale, 1.0)[:, None]
     n_ok = ok_g.sum(axis=1)
-    found = (n_ok >= 3) & (n_ok >= min_fraction * counts) & (z_line >= min_z) & \
+    # segments whose core was not left out (near other lines) are the ones that count
+    core = np.abs(d) <= 1.0 + width_px[owner][:, None]
+    open_core = np.all((count > 0) | ~core, axis=1)
+    available = np.maximum(np.bincount(owner, open_core, minlength=n_lines), 1)
+    found = (n_ok >= 3) & (n_ok >= min_fraction * available) & (z_line >= min_z) & \
         np.all(np.isfinite(coef), axis=1)
     lines = [None] * n_lines
     depth_line = np.bincount(owner, np.where(ok, fit.depth, 0.0), minlength=n_lines) / \
@@ -700,12 +723,11 @@ def detect_lines(image, *, disk=None, saturation=None, min_angle_deg=5.0, source
         cand = cand[order]
         first = _measure_lines(flat, interior, disk, noise, _chords(cand[:, 0], cand[:, 1], disk),
                                cand[:, 2], 1.0 + cand[:, 2].max(), template=False,
-                               seg_len=16.0, min_z=8.0)
+                               seg_len=16.0, min_z=8.0, screening=True)
         lines = _merge([ln for ln in first.lines if ln is not None], disk)
-    if lines and max(ln.width_px for ln in lines) / _FWHM > 3.0:
-        # wide lines: a wider background window
+    if lines:  # the background window from the widest line seen
         flat, interior, noise = _flatten(image, valid, disk,
-                                         float(np.median([ln.width_px for ln in lines])) / _FWHM)
+                                         float(np.max([ln.width_px for ln in lines])) / _FWHM)
     for rounds in range(2):
         if not lines:
             break
@@ -772,11 +794,11 @@ def detect_seeded(image, pattern, detector, *, disk=None, saturation=None, searc
     if line_width_px is None:
         flat, interior, noise = _flatten(image, valid, disk, 1.0)
         probe = _measure_lines(flat, interior, disk, noise, polylines, 1.5, search_px + 2.0,
-                               template=False, seg_len=24.0, min_z=min_z)
+                               template=False, seg_len=24.0, min_z=min_z, screening=True)
         widths = [ln.width_px / _FWHM for ln in probe.lines if ln is not None]
         sigma = float(np.median(widths)) if widths else 1.5
-        if sigma > 3.0:
-            flat, interior, noise = _flatten(image, valid, disk, sigma)
+        flat, interior, noise = _flatten(image, valid, disk,
+                                         float(np.max(widths)) if widths else sigma)
     else:
         sigma = float(line_width_px)
         flat, interior, noise = _flatten(image, valid, disk, sigma)

@@ -65,7 +65,7 @@ class ProfileFit:
     params: np.ndarray
 
 
-def sample_profiles(flat, valid, points, normals, half_width, segment, others=None):
+def sample_profiles(flat, valid, points, normals, half_width, segment, others=None, step=1.0):
     """Profiles across lines at segment centres.
 
     Parameters
@@ -80,10 +80,13 @@ def sample_profiles(flat, valid, points, normals, half_width, segment, others=No
         Profiles reach from -half_width to +half_width px along the normal.
     segment : float
         Length of a segment along the line (px).
-    others : tuple (M, J) arrays, optional
-        ``(distance, cos_angle, keep_out)``: signed distance of each other
-        line from each segment centre, the cosine between its normal and
-        the segment's normal, and the half width to keep clear of it (px).
+    others : tuple of (M, J) arrays, optional
+        ``(distance, along_normal, along_tangent, keep_out)``: signed
+        distance of each other (straight) line from each segment centre,
+        the components of that line's normal along the segment's normal and
+        tangent, and the half width (px) to keep clear of it; 0 for none.
+    step : float
+        Spacing (px) of the samples averaged along the segment.
 
     Returns
     -------
@@ -93,6 +96,8 @@ def sample_profiles(flat, valid, points, normals, half_width, segment, others=No
         Mean flattened intensity; 0 where nothing is usable.
     count : ndarray (M, n)
         Number of pixels averaged (0: left out).
+    crowded : ndarray of bool (M,)
+        Another line passes through the sampled patch.
     """
     from scipy import ndimage
 
@@ -101,38 +106,39 @@ def sample_profiles(flat, valid, points, normals, half_width, segment, others=No
     m_count = len(points)
     hw = float(np.max(half_width))
     d = np.arange(-math.ceil(hw), math.ceil(hw) + 1.0)
-    v = np.arange(segment) - (segment - 1) / 2.0
+    v = np.arange(0.0, segment, step)
+    v -= v.mean()
     tangents = np.stack([-normals[:, 1], normals[:, 0]], 1)
     xy = (points[:, None, None, :] + d[None, :, None, None] * normals[:, None, None, :]
           + v[None, None, :, None] * tangents[:, None, None, :])        # (M, n, k, 2)
     coords = [xy[..., 1].ravel(), xy[..., 0].ravel()]
-    values = ndimage.map_coordinates(flat, coords, order=1, mode="constant", cval=0.0)
-    usable = ndimage.map_coordinates(valid.astype(np.float32), coords, order=0,
-                                     mode="constant", cval=0.0) > 0.5
+    # unusable pixels as NaN: one interpolation marks every sample that touches one
+    values = ndimage.map_coordinates(np.where(valid, flat, np.nan), coords, order=1,
+                                     mode="constant", cval=np.nan)
     shape = xy.shape[:3]
-    values, usable = values.reshape(shape), usable.reshape(shape)
+    values = values.reshape(shape)
+    usable = np.isfinite(values)
     usable &= (np.abs(d)[None, :, None] <= np.broadcast_to(half_width, (m_count,))[:, None, None])
+    crowded = np.zeros(m_count, dtype=bool)
     if others is not None:
-        dist, cosang, keep = others
-        sinang = np.sqrt(np.clip(1.0 - cosang ** 2, 0.0, 1.0))
-        # only the (segment, line) pairs whose line comes near the sampled patch
-        reach = np.abs(dist) - hw * cosang - 0.5 * segment * sinang
+        dist, along_n, along_t, keep = others
+        # the other line's distance at sample (d, v) is dist + d along_n + v along_t;
+        # only (segment, line) pairs whose line comes near the sampled patch
+        reach = np.abs(dist) - hw * np.abs(along_n) - 0.5 * segment * np.abs(along_t)
         m_idx, j_idx = np.nonzero((reach < keep) & (keep > 0))
+        crowded[m_idx] = True
         if len(m_idx):
-            # the other line's distance at sample (d, v): dist + d cos +- v sin
-            # (the sign of the v term is unknown here: both are left out)
-            base = dist[m_idx, j_idx][:, None, None] + d[None, :, None] * \
-                cosang[m_idx, j_idx][:, None, None]
-            along = v[None, None, :] * sinang[m_idx, j_idx][:, None, None]
-            k_out = keep[m_idx, j_idx][:, None, None]
-            near = (np.abs(base + along) < k_out) | (np.abs(base - along) < k_out)
+            near = np.abs(dist[m_idx, j_idx][:, None, None]
+                          + d[None, :, None] * along_n[m_idx, j_idx][:, None, None]
+                          + v[None, None, :] * along_t[m_idx, j_idx][:, None, None]) \
+                < keep[m_idx, j_idx][:, None, None]
             hits = np.zeros(shape, dtype=np.int32)
             np.add.at(hits, m_idx, near.astype(np.int32))
             usable &= hits == 0
     count = usable.sum(axis=2).astype(float)
     total = np.where(usable, values, 0.0).sum(axis=2)
     profile = np.divide(total, count, out=np.zeros_like(total), where=count > 0)
-    return d, profile, count
+    return d, profile, count, crowded
 
 
 def _model(p, d):
@@ -334,7 +340,8 @@ def fit_line_offsets(s, offset, var, weight_ok, span, *, curvature_sagitta_px=0.
     return coef, cov, chi2, dof
 
 
-def template_minima(d, profile, count, line_of, fit, noise, *, step=0.2, passes=2):
+def template_minima(d, profile, count, line_of, fit, noise, *, clean=None, step=0.2,
+                    passes=2):
     """Minimum positions from a profile template taken from each line itself.
 
     The Gauss-Hermite series cannot follow every dynamical profile; a biased
@@ -355,6 +362,9 @@ def template_minima(d, profile, count, line_of, fit, noise, *, step=0.2, passes=
         not enter the templates.
     noise : float
         Noise of one flattened pixel.
+    clean : ndarray of bool (M,), optional
+        Profiles free of other lines; only they build the templates of
+        lines that have at least three of them.
 
     Returns
     -------
@@ -370,6 +380,10 @@ def template_minima(d, profile, count, line_of, fit, noise, *, step=0.2, passes=
     p = fit.params.copy()
     shift, depth, base, slope = p[:, 0].copy(), p[:, 1].copy(), p[:, 3].copy(), p[:, 4].copy()
     ok = fit.ok.copy()
+    builds = ok.copy()
+    if clean is not None:
+        n_clean = np.bincount(line_of, ok & clean, minlength=n_lines)
+        builds = ok & (clean | (n_clean < 3)[line_of])
     half = float(d[-1])
     grid = np.arange(-half, half + step / 2, step)
     n_grid = len(grid)
@@ -381,7 +395,7 @@ def template_minima(d, profile, count, line_of, fit, noise, *, step=0.2, passes=
         # template: normalised deficit of every usable profile, on the fine grid
         rel = d[None, :] - shift[:, None]
         norm = (profile - base[:, None] - slope[:, None] * d[None, :]) / depth[:, None]
-        use = (count > 0) & ok[:, None] & (np.abs(rel) < half)
+        use = (count > 0) & (ok & builds)[:, None] & (np.abs(rel) < half)
         bins = np.clip(np.round((rel + half) / step).astype(int), 0, n_grid - 1)
         key = (line_of[:, None] * n_grid + bins)[use]
         weight = (count * depth[:, None] ** 2)[use]
