@@ -350,10 +350,36 @@ def _cmd_detect(args):
     from .images.detect import detect_lines
 
     report.check_outputs([args.json], args.force, args.figure)
+    seeded = args.structure is not None or args.zone is not None
+    if seeded and (args.structure is None or args.zone is None or args.calibration is None):
+        raise InputError("detection from a prediction needs --structure, --zone and "
+                         "--calibration together")
     read = _read_pattern_args(args, args.pattern)
     image = read.image
-    det = detect_lines(image, disk=args.disk_px, saturation=read.saturation,
-                       min_angle_deg=args.min_angle_deg, source=args.pattern)
+    if seeded:
+        from .images.detect import detect_seeded, find_disk
+        from .lines import predict
+        from .refine import calibration_from_document
+
+        document = report.read_json(args.calibration, "laueline.fit")
+        kv, detector = calibration_from_document(document)
+        disk = find_disk(image) if args.disk_px is None else None
+        distortion = document["detector"].get("distortion")
+        if distortion is None and disk is not None:
+            distortion = disk.detector_distortion
+        detector = detector.replace(distortion=tuple(distortion or (0.0, 0.0)))
+        if args.kv is not None:
+            kv = args.kv
+        disk_mrad = args.disk_mrad or (disk.radius_px if disk is not None else args.disk_px[2]) \
+            / detector.scale_px_per_mrad
+        pattern = predict(_load_crystal(args), args.zone, kv, disk_mrad, x_axis=args.x_axis,
+                          min_strength=args.min_strength)
+        det = detect_seeded(image, pattern, detector, disk=args.disk_px if disk is None else disk,
+                            saturation=read.saturation, search_px=args.search_px,
+                            min_angle_deg=args.min_angle_deg, source=args.pattern)
+    else:
+        det = detect_lines(image, disk=args.disk_px, saturation=read.saturation,
+                           min_angle_deg=args.min_angle_deg, source=args.pattern)
     if len(det.good_lines) < 2:
         raise InputError(f"{args.pattern}: fewer than two lines found in the disk")
     print(read.metadata.text() + "\n")
@@ -588,6 +614,19 @@ def build_parser():
                    help="voltage in kV, overriding the file's (converts reciprocal pixel sizes)")
     p.add_argument("--scale-px-per-mrad", type=float,
                    help="camera scale overriding the one taken from the file")
+    seed = p.add_argument_group("detection from a prediction (faster; finds weak lines)")
+    seed.add_argument("--structure", help="CIF file or bundled structure name")
+    seed.add_argument("--zone", nargs=3, type=int, metavar=("U", "V", "W"), help="zone axis")
+    seed.add_argument("--x-axis", nargs=3, type=int, metavar=("H", "K", "L"),
+                      help="reflection fixing the disk x direction")
+    seed.add_argument("--calibration", metavar="FIT.json",
+                      help="a fit whose voltage and detector place the predicted lines")
+    seed.add_argument("--disk-mrad", type=float,
+                      help="disk radius in mrad (default: the found disk over the scale)")
+    seed.add_argument("--min-strength", type=float, default=0.1,
+                      help="predicted lines weaker than this are not sought (0.1)")
+    seed.add_argument("--search-px", type=float, default=3.0,
+                      help="how far a line may lie from its predicted place, px (3)")
     p.add_argument("--min-angle-deg", type=float, default=5.0,
                    help="smallest angle between crossing lines (5)")
     _add_output_options(p)

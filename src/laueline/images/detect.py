@@ -41,6 +41,8 @@ __all__ = ["Disk", "DetectedLine", "Detection", "find_disk", "detect_lines", "de
 
 DETECTION_SCHEMA = "laueline.detection/1"
 _FWHM = 2 * math.sqrt(2 * math.log(2))
+_NO_TEMPLATE = False
+_DEBUG = False
 
 
 @dataclass
@@ -284,7 +286,7 @@ def _flatten(image, valid, disk, line_sigma_px=1.0):
     cx, cy = disk.center_px
     yy, xx = np.ogrid[0:rows, 0:cols]
     r = np.hypot(xx - cx, yy - cy)
-    margin = 6.0  # px inside the fitted rim, clear of the blurred disk edge
+    margin = 4.0  # px inside the fitted rim, clear of the blurred disk edge
     interior = (r < disk.radius_px - margin) & valid
     source = interior | ((r < disk.radius_px - 2) & valid)
     if not np.any(interior):
@@ -447,7 +449,7 @@ def _measure_lines(flat, interior, disk, noise, polylines, width_px, search_px, 
     sigma_max = float(np.max(width_px))
     seg_len = seg_len or float(np.clip(4.0 * sigma_max, 12.0, 32.0))
     half = search_px + 4.0 * width_px + 2.0
-    points, normals, owner = _segments(polylines, disk, seg_len, 8.0)
+    points, normals, owner = _segments(polylines, disk, seg_len, 5.0)
     if not len(owner):
         return empty
     others = None
@@ -461,7 +463,7 @@ def _measure_lines(flat, interior, disk, noise, polylines, width_px, search_px, 
                        max_width=max(3.0 * sigma_max, 4.0), shape_terms=False,
                        iterations=8 if screening else 20)
     z_seg = np.where(fit.ok, fit.depth / np.maximum(fit.depth_sigma, 1e-12), 0.0)
-    if template:
+    if template and not _NO_TEMPLATE:
         minimum, var, ok_t, _ = template_minima(d, profile, count, owner,
                                                 _with_ok(fit, z_seg > 2.0), noise,
                                                 clean=~crowded)
@@ -489,7 +491,11 @@ def _measure_lines(flat, interior, disk, noise, polylines, width_px, search_px, 
     ok_g[owner, slot] = ok
     span = np.sqrt(np.maximum(disk.radius_px ** 2 - rho0 ** 2, 1.0))
     for _ in range(2):  # once more without segments beyond four sigmas (crossings, dust)
-        coef, cov, chi2, dof = fit_line_offsets(s_g, off_g, var_g, ok_g, span)
+        # exact loci bend by hundredths of a pixel over a chord of a few hundred
+        # pixels; a prior sagitta of 2.5e-4 of the disk radius keeps a line
+        # measured on part of its chord from being bent at its ends
+        coef, cov, chi2, dof = fit_line_offsets(s_g, off_g, var_g, ok_g, span,
+                                                curvature_sagitta_px=2.5e-4 * disk.radius_px)
         design = np.stack([np.ones_like(s_g), s_g, s_g * s_g], 2)
         resid = off_g - np.einsum("lki,li->lk", design, coef)
         # a robust scale (median absolute normalised residual) so that the
@@ -505,6 +511,10 @@ def _measure_lines(flat, interior, disk, noise, polylines, width_px, search_px, 
     available = np.maximum(np.bincount(owner, open_core, minlength=n_lines), 1)
     found = (n_ok >= 3) & (n_ok >= min_fraction * available) & (z_line >= min_z) & \
         np.all(np.isfinite(coef), axis=1)
+    if _DEBUG:
+        for i in np.flatnonzero(~found & (z_line > 15)):
+            print("DEBUG", i, n_ok[i], available[i], counts[i], z_line[i], ok[owner == i],
+                  np.round(minimum[owner == i], 2), np.round(z_seg[owner == i], 1))
     lines = [None] * n_lines
     depth_line = np.bincount(owner, np.where(ok, fit.depth, 0.0), minlength=n_lines) / \
         np.maximum(np.bincount(owner, ok, minlength=n_lines), 1)
