@@ -458,17 +458,18 @@ def _measure_lines(flat, interior, disk, noise, polylines, width_px, search_px, 
         others = _other_line_masks(points, normals, owner, rho_m, ang_m, keep_m, disk,
                                    masks[3] if len(masks) > 3 else None)
     d, profile, count, crowded = sample_profiles(flat, interior, points, normals, half[owner],
-                                        int(seg_len), others, step=2.0 if screening else 1.0)
+                                        seg_len, others, step=1.0 if screening else 0.5)
     fit = fit_profiles(d, profile, count, 0.0, width_px[owner], noise, search=search_px,
                        max_width=max(3.0 * sigma_max, 4.0), shape_terms=False,
                        iterations=8 if screening else 20)
     z_seg = np.where(fit.ok, fit.depth / np.maximum(fit.depth_sigma, 1e-12), 0.0)
     if template and not _NO_TEMPLATE:
-        minimum, var, ok_t, _ = template_minima(d, profile, count, owner,
-                                                _with_ok(fit, z_seg > 2.0), noise,
-                                                clean=~crowded)
+        minimum, var, ok_t, _, template_var = template_minima(
+            d, profile, count, owner, _with_ok(fit, z_seg > 2.0), noise, clean=~crowded,
+            refit=False)
     else:
         minimum, var, ok_t = fit.minimum, fit.minimum_var, fit.ok
+        template_var = np.zeros(n_lines)
     ok = ok_t & fit.ok & (z_seg > 2.0) & (np.abs(minimum) <= search_px + 1.0)
     z_line = np.sqrt(np.bincount(owner, np.where(ok, z_seg, 0.0) ** 2, minlength=n_lines))
     centre = np.asarray(disk.center_px)
@@ -504,6 +505,9 @@ def _measure_lines(flat, interior, disk, noise, polylines, width_px, search_px, 
         with np.errstate(all="ignore"):
             scale = np.nan_to_num(1.4826 * np.nanmedian(norm, axis=1), nan=1.0)
         ok_g &= np.abs(resid) < 4.0 * np.sqrt(var_g) * np.maximum(scale, 1.0)[:, None]
+    # the template's minimum is common to every segment of a line: its
+    # variance adds to the line's offset, not to the segments' scatter
+    cov[:, 0, 0] += np.where(np.isfinite(template_var), template_var, 0.0)
     n_ok = ok_g.sum(axis=1)
     # segments whose core was not left out (near other lines) are the ones that count
     core = np.abs(d) <= 1.0 + width_px[owner][:, None]
@@ -816,6 +820,19 @@ def detect_seeded(image, pattern, detector, *, disk=None, saturation=None, searc
     masks = (rho, ang, np.full(len(rho), 2.5 * sigma + 1.5))
     measured = _measure_lines(flat, interior, disk, noise, polylines, sigma, search_px,
                               masks=masks, min_z=min_z, min_fraction=0.4)
+    # once more from where the lines were found, with each line's own width and
+    # only the lines actually seen left out of the others' profiles
+    found = np.flatnonzero(measured.found)
+    if len(found):
+        seen = [measured.lines[i] for i in found]
+        sig = np.array([ln.width_px / _FWHM for ln in seen])
+        rank = np.argsort(np.argsort([-ln.snr for ln in seen]))  # weak lines hide no strong one
+        masks = (np.array([ln.offset_px for ln in seen]),
+                 np.radians([ln.normal_angle_deg for ln in seen]), 2.5 * sig + 1.5, rank)
+        again = _measure_lines(flat, interior, disk, noise, _line_polylines(seen, disk), sig,
+                               1.5, masks=masks, min_z=min_z, min_fraction=0.25)
+        for k, i in enumerate(found):
+            measured.lines[i] = again.lines[k] if again.found[k] else measured.lines[i]
     lines, missing = [], []
     for i, ln in enumerate(measured.lines):
         hkl = tuple(int(v) for v in pattern.hkl[i])

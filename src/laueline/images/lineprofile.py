@@ -17,11 +17,9 @@ an asymmetric line would pull aside.  Weak Gaussian priors (a within 0.2,
 c within 0.3, one sigma) keep the shape terms at zero unless the data ask
 for them.
 
-Profiles are sampled on short segments of a line: at each segment centre
-p with unit normal n and tangent t, the flattened image is interpolated
-(bilinear) at p + d n + v t for d on a 1-px grid across the line and v on
-a 1-px grid along the segment, and averaged over v.  Pixels near other
-lines are left out of the average.  All profiles of all lines are fitted
+Profiles are taken on short segments of a line: the pixels of the
+flattened image near each segment centre, binned by their exact distance
+across the line (no interpolation).  Pixels near other lines are left out.  All profiles of all lines are fitted
 together by a damped Gauss-Newton (Levenberg-Marquardt) iteration
 vectorised over profiles.
 """
@@ -68,8 +66,17 @@ class ProfileFit:
     params: np.ndarray
 
 
-def sample_profiles(flat, valid, points, normals, half_width, segment, others=None, step=1.0):
-    """Profiles across lines at segment centres.
+def sample_profiles(flat, valid, points, normals, half_width, segment, others=None,
+                    step=0.5):
+    """Profiles across lines at segment centres, from the pixels themselves.
+
+    Every usable pixel within ``segment / 2`` of a segment centre along the
+    line and within ``half_width`` across it enters the profile at its exact
+    distance d from the line; pixels are binned by d in ``step``-px bins and
+    each bin keeps its mean intensity, its pixel count and its mean d.  No
+    interpolation: an interpolated profile would be blurred (moving the
+    minimum of an asymmetric dip) and distorted where the line runs along a
+    pixel row.
 
     Parameters
     ----------
@@ -89,12 +96,12 @@ def sample_profiles(flat, valid, points, normals, half_width, segment, others=No
         the components of that line's normal along the segment's normal and
         tangent, and the half width (px) to keep clear of it; 0 for none.
     step : float
-        Spacing (px) of the samples averaged along the segment.
+        Bin width across the line (px).
 
     Returns
     -------
-    d : ndarray (n,)
-        Offsets along the normal (px).
+    d : ndarray (M, n)
+        Mean distance across the line of each bin (its centre when empty), px.
     profile : ndarray (M, n)
         Mean flattened intensity; 0 where nothing is usable.
     count : ndarray (M, n)
@@ -102,63 +109,72 @@ def sample_profiles(flat, valid, points, normals, half_width, segment, others=No
     crowded : ndarray of bool (M,)
         Another line passes through the sampled patch.
     """
-    from scipy import ndimage
-
     points = np.asarray(points, float)
     normals = np.asarray(normals, float)
     m_count = len(points)
-    hw = float(np.max(half_width))
-    d = np.arange(-math.ceil(hw), math.ceil(hw) + 1.0)
-    v = np.arange(0.0, segment, step)
-    v -= v.mean()
-    tangents = np.stack([-normals[:, 1], normals[:, 0]], 1)
-    xy = (points[:, None, None, :] + d[None, :, None, None] * normals[:, None, None, :]
-          + v[None, None, :, None] * tangents[:, None, None, :])        # (M, n, k, 2)
-    coords = [xy[..., 1].ravel(), xy[..., 0].ravel()]
-    # unusable pixels as NaN: one interpolation marks every sample that touches one
-    values = ndimage.map_coordinates(np.where(valid, flat, np.nan), coords, order=1,
-                                     mode="constant", cval=np.nan)
-    shape = xy.shape[:3]
-    values = values.reshape(shape)
-    usable = np.isfinite(values)
-    usable &= (np.abs(d)[None, :, None] <= np.broadcast_to(half_width, (m_count,))[:, None, None])
+    rows, cols = flat.shape
+    hw_m = np.broadcast_to(np.asarray(half_width, float), (m_count,))
+    hw = float(np.max(hw_m)) if m_count else 1.0
+    n_bins = int(math.ceil(2 * hw / step))
+    centres = -hw + step * (np.arange(n_bins) + 0.5)
+    reach_px = int(math.ceil(math.hypot(hw, segment / 2.0))) + 1
+    off = np.arange(-reach_px, reach_px + 1)
+    base = np.round(points).astype(int)
+    ix = base[:, 0, None, None] + off[None, None, :]
+    iy = base[:, 1, None, None] + off[None, :, None]
+    dx = ix - points[:, 0, None, None]
+    dy = iy - points[:, 1, None, None]
+    nx, ny = normals[:, 0, None, None], normals[:, 1, None, None]
+    d = dx * nx + dy * ny
+    v = -dx * ny + dy * nx
+    inframe = (ix >= 0) & (ix < cols) & (iy >= 0) & (iy < rows)
+    ixc, iyc = np.clip(ix, 0, cols - 1), np.clip(iy, 0, rows - 1)
+    ixc, iyc = np.broadcast_to(ixc, d.shape), np.broadcast_to(iyc, d.shape)
+    use = inframe & (np.abs(v) <= segment / 2.0) & (np.abs(d) < hw_m[:, None, None]) \
+        & valid[iyc, ixc]
     crowded = np.zeros(m_count, dtype=bool)
     if others is not None:
         dist, along_n, along_t, keep = others
-        # the other line's distance at sample (d, v) is dist + d along_n + v along_t;
+        # the other line's distance at (d, v) is dist + d along_n + v along_t;
         # only (segment, line) pairs whose line comes near the sampled patch
         reach = np.abs(dist) - hw * np.abs(along_n) - 0.5 * segment * np.abs(along_t)
         m_idx, j_idx = np.nonzero((reach < keep) & (keep > 0))
         crowded[m_idx] = True
         if len(m_idx):
             near = np.abs(dist[m_idx, j_idx][:, None, None]
-                          + d[None, :, None] * along_n[m_idx, j_idx][:, None, None]
-                          + v[None, None, :] * along_t[m_idx, j_idx][:, None, None]) \
+                          + d[m_idx] * along_n[m_idx, j_idx][:, None, None]
+                          + v[m_idx] * along_t[m_idx, j_idx][:, None, None]) \
                 < keep[m_idx, j_idx][:, None, None]
-            hits = np.zeros(shape, dtype=np.int32)
+            hits = np.zeros(d.shape, dtype=np.int32)
             np.add.at(hits, m_idx, near.astype(np.int32))
-            usable &= hits == 0
-    count = usable.sum(axis=2).astype(float)
-    total = np.where(usable, values, 0.0).sum(axis=2)
+            use &= hits == 0
+    seg_id = np.broadcast_to(np.arange(m_count)[:, None, None], d.shape)[use]
+    bins = np.clip(((d[use] + hw) / step).astype(int), 0, n_bins - 1)
+    key = seg_id * n_bins + bins
+    size = m_count * n_bins
+    count = np.bincount(key, minlength=size).astype(float).reshape(m_count, n_bins)
+    total = np.bincount(key, flat[iyc[use], ixc[use]], minlength=size).reshape(m_count, n_bins)
+    dsum = np.bincount(key, d[use], minlength=size).reshape(m_count, n_bins)
     profile = np.divide(total, count, out=np.zeros_like(total), where=count > 0)
-    return d, profile, count, crowded
+    dmean = np.where(count > 0, dsum / np.maximum(count, 1), centres[None, :])
+    return dmean, profile, count, crowded
 
 
 def _model(p, d):
     """Profile model and Jacobian; p (M, 7), d (n,) -> f (M, n), J (M, n, 7)."""
     x0, depth, width, base, slope, a, c = (p[:, k:k + 1] for k in range(_N_PARAMS))
-    u = (d[None, :] - x0) / width
+    u = (d - x0) / width
     u2 = u * u
     e = np.exp(-0.5 * u2)
     g = e * (1.0 + c * u2 + a * u2 * u)
     dg = e * (-u * (1.0 + c * u2 + a * u2 * u) + 2.0 * c * u + 3.0 * a * u2)
-    f = base + slope * d[None, :] - depth * g
+    f = base + slope * d - depth * g
     jac = np.empty(f.shape + (_N_PARAMS,))
     jac[..., 0] = depth * dg / width
     jac[..., 1] = -g
     jac[..., 2] = depth * dg * u / width
     jac[..., 3] = 1.0
-    jac[..., 4] = d[None, :]
+    jac[..., 4] = d
     jac[..., 5] = -depth * e * u2 * u
     jac[..., 6] = -depth * e * u2
     return f, jac
@@ -201,10 +217,10 @@ def fit_profiles(d, profile, count, start_x0, start_width, noise, *, max_width=N
     from scipy.ndimage import uniform_filter1d
 
     smooth = uniform_filter1d(np.where(used, profile, base0[:, None]), 3, axis=1)
-    near = np.abs(d[None, :] - start_x0[:, None]) <= search + 0.5
+    near = np.abs(d - start_x0[:, None]) <= search + 0.5
     at = np.argmin(np.where(near, smooth, np.inf), axis=1)
     dip0 = base0 - smooth[np.arange(m_count), at]
-    p = np.stack([d[at], np.maximum(dip0, noise), start_width, base0,
+    p = np.stack([d[np.arange(m_count), at], np.maximum(dip0, noise), start_width, base0,
                   np.zeros(m_count), np.zeros(m_count), np.zeros(m_count)], 1)
     # first a plain Gaussian dip (shape terms held at zero), then everything
     held = _PRIOR_SD.copy()
@@ -230,7 +246,7 @@ def fit_profiles(d, profile, count, start_x0, start_width, noise, *, max_width=N
     var = cov[:, 0, 0]
     depth_sigma = np.sqrt(np.abs(cov[:, 1, 1]))
     ok &= np.isfinite(var) & (var > 0) & (depth > 0) & (width < 0.98 * max_width)
-    ok &= (minimum > d[0] + width) & (minimum < d[-1] - width)
+    ok &= (minimum > d[:, 0] + width) & (minimum < d[:, -1] - width)
     return ProfileFit(minimum, var, depth, depth_sigma, width, a, c, ok, p)
 
 
@@ -263,7 +279,7 @@ def _levenberg_marquardt(p, d, profile, used, w, noise, prior_sd, max_width, ite
         trial[:, 2] = np.clip(trial[:, 2], 0.3, max_width)
         trial[:, 5] = np.clip(trial[:, 5], -0.4, 0.4)
         trial[:, 6] = np.clip(trial[:, 6], -0.8, 0.45)
-        trial[:, 0] = np.clip(trial[:, 0], d[0], d[-1])
+        trial[:, 0] = np.clip(trial[:, 0], d[:, 0], d[:, -1])
         new_cost, new_r, new_jac = cost_and_parts(trial)
         better = new_cost < cost
         p = np.where(better[:, None], trial, p)
@@ -345,7 +361,7 @@ def fit_line_offsets(s, offset, var, weight_ok, span, *, curvature_sagitta_px=0.
 
 
 def template_minima(d, profile, count, line_of, fit, noise, *, clean=None, step=0.2,
-                    passes=2):
+                    passes=2, refit=True):
     """Minimum positions from a profile template taken from each line itself.
 
     The Gauss-Hermite series cannot follow every dynamical profile; a biased
@@ -369,6 +385,11 @@ def template_minima(d, profile, count, line_of, fit, noise, *, clean=None, step=
     clean : ndarray of bool (M,), optional
         Profiles free of other lines; only they build the templates of
         lines that have at least three of them.
+    refit : bool
+        Fit every profile with its template.  Without, the positions are
+        the Gaussian centres of ``fit`` plus the offset from a Gaussian
+        centre to the minimum that the template shows: less noisy for weak
+        lines, whose single profiles cannot carry a template fit.
 
     Returns
     -------
@@ -376,6 +397,10 @@ def template_minima(d, profile, count, line_of, fit, noise, *, clean=None, step=
     ok : ndarray of bool (M,)
     template_offset : ndarray (L,)
         Minimum of each line's template relative to its origin (px).
+    template_var : ndarray (L,)
+        Variance of that minimum (px^2), shared by all profiles of the line:
+        the template averages the profiles that build it, so its minimum is
+        as uncertain as their weighted mean position.
     """
     from scipy import ndimage
 
@@ -388,7 +413,7 @@ def template_minima(d, profile, count, line_of, fit, noise, *, clean=None, step=
     if clean is not None:
         n_clean = np.bincount(line_of, ok & clean, minlength=n_lines)
         builds = ok & (clean | (n_clean < 3)[line_of])
-    half = float(d[-1])
+    half = float(np.max(np.abs(d)))
     grid = np.arange(-half, half + step / 2, step)
     n_grid = len(grid)
     w = np.sqrt(count) / noise
@@ -397,8 +422,8 @@ def template_minima(d, profile, count, line_of, fit, noise, *, clean=None, step=
     width = np.maximum(fit.width, 0.5)
     for _ in range(passes):
         # template: normalised deficit of every usable profile, on the fine grid
-        rel = d[None, :] - shift[:, None]
-        norm = (profile - base[:, None] - slope[:, None] * d[None, :]) / depth[:, None]
+        rel = d - shift[:, None]
+        norm = (profile - base[:, None] - slope[:, None] * d) / depth[:, None]
         use = (count > 0) & (ok & builds)[:, None] & (np.abs(rel) < half)
         bins = np.clip(np.round((rel + half) / step).astype(int), 0, n_grid - 1)
         key = (line_of[:, None] * n_grid + bins)[use]
@@ -418,27 +443,38 @@ def template_minima(d, profile, count, line_of, fit, noise, *, clean=None, step=
             np.maximum(np.bincount(line_of, minlength=n_lines), 1)
         near = np.abs(grid)[None, :] <= np.maximum(1.5 * line_width, 1.0)[:, None]
         at = np.argmin(np.where(near, template, np.inf), axis=1)
-        at = np.clip(at, 2, n_grid - 3)
-        window = at[:, None] + np.arange(-2, 3)[None, :]
-        yv = np.take_along_axis(template, window, axis=1)
-        xv = np.arange(-2, 3) * step
-        coef = np.polynomial.polynomial.polyfit(xv, yv.T, 2)       # (3, L)
-        curv = coef[2]
-        vertex = np.where(curv > 0, -coef[1] / (2 * np.where(curv > 0, curv, 1.0)), 0.0)
-        offset = grid[at] + np.clip(vertex, -2 * step, 2 * step)
+        # a parabola through the template's core (+-0.7 sigma): wide enough to
+        # average the template's noise, narrow enough to follow its minimum
+        reach = np.clip(np.round(0.7 * line_width / step).astype(int), 2, 20)
+        big = int(reach.max())
+        at = np.clip(at, big, n_grid - 1 - big)
+        offs = np.arange(-big, big + 1)
+        yv = np.take_along_axis(template, at[:, None] + offs[None, :], axis=1)
+        wv = (np.abs(offs)[None, :] <= reach[:, None]).astype(float)
+        xv = offs * step
+        design = np.stack([np.ones_like(xv), xv, xv * xv], 1)           # (W, 3)
+        normal = np.einsum("lw,wi,wj->lij", wv, design, design)
+        coef = np.linalg.solve(normal, np.einsum("lw,wi,lw->li", wv, design, yv)[..., None])[..., 0]
+        curv = coef[:, 2]
+        vertex = np.where(curv > 0, -coef[:, 1] / (2 * np.where(curv > 0, curv, 1.0)), 0.0)
+        lim = reach * step
+        offset = grid[at] + np.clip(vertex, -lim, lim)
+        if not refit:
+            var = fit.minimum_var.copy()
+            break
         # refit every profile with its line's template: shift, depth, b0, b1
         slope_t = np.gradient(template, step, axis=1)
         for _ in range(6):
-            coords = (d[None, :] - shift[:, None] + half) / step
+            coords = (d - shift[:, None] + half) / step
             rows = np.broadcast_to(line_of[:, None], coords.shape)
             tv = ndimage.map_coordinates(template, [rows.ravel(), coords.ravel()], order=1,
                                          mode="nearest").reshape(coords.shape)
             tdv = ndimage.map_coordinates(slope_t, [rows.ravel(), coords.ravel()], order=1,
                                           mode="nearest").reshape(coords.shape)
-            model = base[:, None] + slope[:, None] * d[None, :] + depth[:, None] * tv
+            model = base[:, None] + slope[:, None] * d + depth[:, None] * tv
             r = (model - profile) * w
             jac = np.stack([-depth[:, None] * tdv, tv, np.ones_like(tv),
-                            np.broadcast_to(d[None, :], tv.shape)], axis=2) * w[..., None]
+                            d], axis=2) * w[..., None]
             a_mat = np.matmul(jac.transpose(0, 2, 1), jac) + 1e-9 * np.eye(4)
             grad = np.matmul(jac.transpose(0, 2, 1), r[..., None])[..., 0]
             try:
@@ -456,4 +492,8 @@ def template_minima(d, profile, count, line_of, fit, noise, *, clean=None, step=
         except np.linalg.LinAlgError:
             var = np.full(len(shift), np.nan)
         ok &= np.isfinite(var) & (var > 0) & (depth > 0) & (np.abs(shift) < half - 1.0)
-    return shift + offset[line_of], var, ok, offset
+    inv = np.where(ok & builds & np.isfinite(var) & (var > 0), 1.0 / np.where(var > 0, var, 1.0),
+                   0.0)
+    weight_sum = np.bincount(line_of, inv, minlength=n_lines)
+    template_var = np.where(weight_sum > 0, 1.0 / np.maximum(weight_sum, 1e-300), np.inf)
+    return shift + offset[line_of], var, ok, offset, template_var
