@@ -4,25 +4,38 @@ Steps:
 
 1. The disk: the largest bright region (Otsu threshold of the smoothed
    image), then sub-pixel edge points on rays from its provisional centre,
-   then a RANSAC circle fit (:class:`skimage.measure.CircleModel`).  Edge
-   points at the image border or on saturated pixels are left out, so a
-   disk partly outside the frame is still found.
-2. The background: a grey closing removes the thin dark lines, a Gaussian
-   smooths what remains; the disk is divided by it (flat = image/background
-   - 1), which also removes gradients across the disk.
-3. Candidates: a straight-line Hough transform
+   a RANSAC circle fit (:class:`skimage.measure.CircleModel`) to reject
+   stray points, and a linear least-squares ellipse (radius with cos 2phi
+   and sin 2phi terms) that measures the projector's elliptical distortion
+   with its uncertainty.  Edge points at the image border or on saturated
+   pixels are left out, so a disk partly outside the frame is still found.
+2. The background: a grey closing wide enough to span the widest line with
+   its fringes removes the lines, a Gaussian smooths what remains (both on
+   a block-averaged copy when the window is large); the disk is divided by
+   it (flat = image/background - 1): smooth disk intensity and broad bands
+   go, lines stay where they are.
+3. Candidates (blind search): a straight-line Hough transform
    (:func:`skimage.transform.hough_line`) of the pixels darker than three
-   noise sigmas, normalised by the expected count of noise pixels along
-   each chord so that short chords near the rim compete fairly.
-4. Refinement: each candidate is fitted by least squares to the flattened
-   intensities of a band of pixels around it, along its whole length, with
-   the model b - D exp(-d^2 / 2 w^2) and d the distance to a gently curved
-   line, d = n.(p - c) - rho - kappa s^2 (s along the line from the foot of
-   the normal from the disk centre c).  Pixels near other lines are left
-   out.  The fit's covariance gives the position uncertainty.
-5. Checks: duplicates are merged, lines that continue outside the disk
-   (deficit lines cannot) or whose width is far from the others' are
-   flagged and left out of crossings and fits, with a warning.
+   noise sigmas, at block averages 1, 2, 4 (8) so that lines from under 2
+   to 15 px wide are seen at some scale, normalised by the count expected
+   from noise along each chord; every maximum above six sigmas is kept.
+   With a prediction (:func:`detect_seeded`) the candidates are the exact
+   predicted loci mapped by a :class:`~laueline.detector.Detector`,
+   elliptical distortion included.
+4. Measurement: on short segments along each line the pixels are binned by
+   their distance across it (:mod:`laueline.images.lineprofile`); a
+   Gaussian dip fitted to every profile at once gives a first position,
+   and the line's own template (its profiles aligned and averaged) gives
+   the offset from that centre to the deficit minimum, so asymmetric and
+   fringed profiles are located at their minimum.  A gently curved line
+   d = n.(p - c) - rho - kappa s^2 (s along the line from the foot of the
+   normal from the disk centre c) is fitted through the segment minima,
+   with outlying segments dropped; pixels near other lines are left out of
+   each profile.
+5. Checks: candidates seen on too few of their segments or too weak are
+   dropped, duplicates merged, lines that continue outside the disk
+   (deficit lines cannot) or whose width is far from the others' flagged
+   and left out of crossings and fits, with a warning.
 
 Pixel coordinates are (x, y) = (column, row), y down (:mod:`laueline.images`).
 """
@@ -41,8 +54,6 @@ __all__ = ["Disk", "DetectedLine", "Detection", "find_disk", "detect_lines", "de
 
 DETECTION_SCHEMA = "laueline.detection/1"
 _FWHM = 2 * math.sqrt(2 * math.log(2))
-_NO_TEMPLATE = False
-_DEBUG = False
 
 
 @dataclass
@@ -463,7 +474,7 @@ def _measure_lines(flat, interior, disk, noise, polylines, width_px, search_px, 
                        max_width=max(3.0 * sigma_max, 4.0), shape_terms=False,
                        iterations=8 if screening else 20)
     z_seg = np.where(fit.ok, fit.depth / np.maximum(fit.depth_sigma, 1e-12), 0.0)
-    if template and not _NO_TEMPLATE:
+    if template:
         minimum, var, ok_t, _, template_var = template_minima(
             d, profile, count, owner, _with_ok(fit, z_seg > 2.0), noise, clean=~crowded,
             refit=False)
@@ -515,10 +526,6 @@ def _measure_lines(flat, interior, disk, noise, polylines, width_px, search_px, 
     available = np.maximum(np.bincount(owner, open_core, minlength=n_lines), 1)
     found = (n_ok >= 3) & (n_ok >= min_fraction * available) & (z_line >= min_z) & \
         np.all(np.isfinite(coef), axis=1)
-    if _DEBUG:
-        for i in np.flatnonzero(~found & (z_line > 15)):
-            print("DEBUG", i, n_ok[i], available[i], counts[i], z_line[i], ok[owner == i],
-                  np.round(minimum[owner == i], 2), np.round(z_seg[owner == i], 1))
     lines = [None] * n_lines
     depth_line = np.bincount(owner, np.where(ok, fit.depth, 0.0), minlength=n_lines) / \
         np.maximum(np.bincount(owner, ok, minlength=n_lines), 1)
