@@ -177,3 +177,35 @@ def test_round_disk_stays_a_similarity():
     image, _ = render_physical(SI, ZONE, 200, 6, st, x_axis=X_AXIS)
     disk = find_disk(image)
     assert not disk.distortion_significant and disk.detector_distortion == (0.0, 0.0)
+
+
+def test_cli_seeded_detection(tmp_path, capsys, distorted):
+    import json
+
+    from conftest import run_cli
+
+    from laueline.images.io import write_image
+
+    image, truth = distorted
+    write_image(tmp_path / "p.tif", image)
+    st = PhysicalSettings(distortion=DISTORTION)
+    # the renderer's own detector as a calibration document (no distortion in it:
+    # the command takes the disk's, which is significant here)
+    cal = {"schema": "laueline.fit/1", "kv": 200.0,
+           "detector": {"center_px": list(truth["center_px"]),
+                        "scale_px_per_mrad": truth["scale_px_per_mrad"],
+                        "rotation_deg": st.rotation_deg, "mirror": st.mirror}}
+    (tmp_path / "cal.json").write_text(json.dumps(cal))
+    code, out, err = run_cli(capsys, "detect", tmp_path / "p.tif", "--structure", "Si",
+                             "--zone", 2, 3, 0, "--x-axis", 0, 0, 4, "--calibration",
+                             tmp_path / "cal.json", "--json", tmp_path / "d.json")
+    assert code == 0, err
+    assert "elliptical distortion" in out
+    doc = json.loads((tmp_path / "d.json").read_text())
+    assert doc["disk"]["distortion_significant"]
+    found = {tuple(ln["hkl"]) for ln in doc["lines"]}
+    assert {(-7, 5, -5), (5, -3, 9), (4, -2, 14)} <= found
+    assert all(len(ln["minima_px"]) >= 3 for ln in doc["lines"])
+    # the seeded options go together
+    code, out, err = run_cli(capsys, "detect", tmp_path / "p.tif", "--zone", 2, 3, 0)
+    assert code == 2 and "--calibration" in err

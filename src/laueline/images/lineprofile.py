@@ -459,6 +459,26 @@ def template_minima(d, profile, count, line_of, fit, noise, *, clean=None, step=
         vertex = np.where(curv > 0, -coef[:, 1] / (2 * np.where(curv > 0, curv, 1.0)), 0.0)
         lim = reach * step
         offset = grid[at] + np.clip(vertex, -lim, lim)
+        # variance of the vertex: the template bins carry noise^2 / sum(count
+        # depth^2) each before the one-bin smoothing; propagated through the
+        # smoothing, the weighted parabola and vertex = -c1 / (2 c2)
+        bin_var = noise ** 2 / np.maximum(wsum.reshape(n_lines, n_grid), 1e-300)
+        bin_var = np.pad(np.minimum(bin_var, 1e6), ((0, 0), (4, 4)), mode="edge")
+        kernel = np.exp(-0.5 * np.arange(-4, 5) ** 2)
+        kernel /= kernel.sum()
+        vb = np.take_along_axis(bin_var, at[:, None] + np.arange(-big - 4, big + 5)[None, :],
+                                axis=1)                                   # (L, W + 8)
+        n_inv = np.linalg.inv(normal)
+        left = np.einsum("lij,wj,lw->liw", n_inv, design, wv)            # (L, 3, W)
+        # the smoothed bin w is sum_k kernel[k] raw[w + k - 4]: spread each row
+        left_raw = np.zeros(left.shape[:2] + (left.shape[2] + 8,))
+        for k in range(9):  # nine kernel taps, not a loop over data
+            left_raw[:, :, k:k + left.shape[2]] += kernel[k] * left
+        coef_cov = np.einsum("liw,lw,ljw->lij", left_raw, vb, left_raw)
+        safe = np.where(curv > 0, curv, 1.0)
+        grad = np.stack([np.zeros_like(curv), -1.0 / (2 * safe), coef[:, 1] / (2 * safe ** 2)], 1)
+        vertex_var = np.einsum("li,lij,lj->l", grad, coef_cov, grad)
+        vertex_var = np.where(curv > 0, vertex_var, lim ** 2)
         if not refit:
             var = fit.minimum_var.copy()
             break
@@ -494,6 +514,9 @@ def template_minima(d, profile, count, line_of, fit, noise, *, clean=None, step=
         ok &= np.isfinite(var) & (var > 0) & (depth > 0) & (np.abs(shift) < half - 1.0)
     inv = np.where(ok & builds & np.isfinite(var) & (var > 0), 1.0 / np.where(var > 0, var, 1.0),
                    0.0)
-    weight_sum = np.bincount(line_of, inv, minlength=n_lines)
-    template_var = np.where(weight_sum > 0, 1.0 / np.maximum(weight_sum, 1e-300), np.inf)
+    if refit:  # positions from template fits: the template's origin is their mean
+        weight_sum = np.bincount(line_of, inv, minlength=n_lines)
+        template_var = np.where(weight_sum > 0, 1.0 / np.maximum(weight_sum, 1e-300), np.inf)
+    else:      # Gaussian centres plus the template's offset: its vertex carries the noise
+        template_var = vertex_var
     return shift + offset[line_of], var, ok, offset, template_var
