@@ -824,7 +824,10 @@ def detect_seeded(image, pattern, detector, *, disk=None, saturation=None, searc
         sigma = float(line_width_px)
         flat, interior, noise = _flatten(image, valid, disk, sigma)
     rho, ang = _straight(polylines, np.asarray(disk.center_px))
-    masks = (rho, ang, np.full(len(rho), 2.5 * sigma + 1.5))
+    # a predicted line hides only weaker predicted ones: a line predicted but
+    # not there (dynamically extinguished) must not hide a stronger one
+    rank = np.argsort(np.argsort(-np.asarray(pattern.strength, float)))
+    masks = (rho, ang, np.full(len(rho), 2.5 * sigma + 1.5), rank)
     measured = _measure_lines(flat, interior, disk, noise, polylines, sigma, search_px,
                               masks=masks, min_z=min_z, min_fraction=0.4)
     # once more from where the lines were found, with each line's own width and
