@@ -462,8 +462,21 @@ def template_minima(d, profile, count, line_of, fit, noise, *, clean=None, step=
         # variance of the vertex: the template bins carry noise^2 / sum(count
         # depth^2) each before the one-bin smoothing; propagated through the
         # smoothing, the weighted parabola and vertex = -c1 / (2 c2)
-        bin_var = noise ** 2 / np.maximum(wsum.reshape(n_lines, n_grid), 1e-300)
-        bin_var = np.pad(np.minimum(bin_var, 1e6), ((0, 0), (4, 4)), mode="edge")
+        # bins no profile fell into were filled from their neighbours: they
+        # take their neighbours' variance (and add no information of their own:
+        # the count of independent bins is that of the filled ones)
+        wsum_l = wsum.reshape(n_lines, n_grid)
+        bin_var = np.divide(noise ** 2, wsum_l, out=np.full_like(wsum_l, np.nan),
+                            where=wsum_l > 0)
+        for k in range(n_lines):  # per line only where bins are missing
+            filled = np.isfinite(bin_var[k])
+            if filled.sum() >= 2 and not filled.all():
+                spacing = np.interp(grid, grid[filled], np.arange(filled.sum()))
+                density = np.gradient(spacing) / 1.0  # filled bins per grid bin
+                bin_var[k] = np.interp(grid, grid[filled], bin_var[k][filled]) / \
+                    np.clip(density, 1e-3, 1.0)
+        bin_var = np.where(np.isfinite(bin_var), bin_var, 1e6)
+        bin_var = np.pad(bin_var, ((0, 0), (4, 4)), mode="edge")
         kernel = np.exp(-0.5 * np.arange(-4, 5) ** 2)
         kernel /= kernel.sum()
         vb = np.take_along_axis(bin_var, at[:, None] + np.arange(-big - 4, big + 5)[None, :],
