@@ -86,7 +86,7 @@ def _read_and_filter(path):
 
 def seeded_and_large(si):
     from laueline.detector import Detector
-    from laueline.images.detect import detect_seeded
+    from laueline.images.detect import detect_seeded, find_disk
     from laueline.images.io import write_image
 
     zone, x_axis = (2, 3, 0), (0, 0, 4)
@@ -100,6 +100,9 @@ def seeded_and_large(si):
         write_image(path, image)
         t_base = median_time(lambda: _read_and_filter(path), 11)
         t_seed = median_time(lambda: detect_seeded(image, truth["pattern"], detector), 11)
+        disk = find_disk(image)  # found once, as for the patterns of a scan
+        t_seed_disk = median_time(lambda: detect_seeded(image, truth["pattern"], detector,
+                                                        disk=disk), 11)
         t_blind = median_time(lambda: detect_lines(image), 3)
     seeded = detect_seeded(image, truth["pattern"], detector)
     blind = detect_lines(image)
@@ -108,6 +111,8 @@ def seeded_and_large(si):
     print(f"   detect_seeded (median of 11):    {t_seed * 1e3:7.1f} ms   ratio "
           f"{t_seed / t_base:.1f}x   ({len(seeded.lines)} of {truth['pattern'].n_lines} "
           "predicted lines found)")
+    print(f"   detect_seeded, disk given:       {t_seed_disk * 1e3:7.1f} ms   ratio "
+          f"{t_seed_disk / t_base:.1f}x")
     print(f"   detect_lines (median of 3):      {t_blind * 1e3:7.1f} ms   ratio "
           f"{t_blind / t_base:.1f}x   ({len(blind.good_lines)} lines)")
 

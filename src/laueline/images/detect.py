@@ -281,6 +281,11 @@ def _circle(model):
 # background
 # ---------------------------------------------------------------------------
 
+def _window(disk, line_sigma_px):
+    """Background window (px): it spans a line with its side fringes several times over."""
+    return max(7.0, disk.radius_px / 20.0, 12.0 * line_sigma_px)
+
+
 def _flatten(image, valid, disk, line_sigma_px=1.0):
     """Relative deficit image (image / background - 1) inside the disk, and its pixel noise.
 
@@ -302,8 +307,7 @@ def _flatten(image, valid, disk, line_sigma_px=1.0):
     source = interior | ((r < disk.radius_px - 2) & valid)
     if not np.any(interior):
         raise InputError("no usable pixels inside the disk")
-    # the window spans a line with its side fringes several times over
-    window = max(7.0, disk.radius_px / 20.0, 12.0 * line_sigma_px)
+    window = _window(disk, line_sigma_px)
     block = max(1, int(window // 6))
     if block > 1:  # the background is smooth: work on block means
         r_rows, r_cols = rows // block * block, cols // block * block
@@ -818,8 +822,9 @@ def detect_seeded(image, pattern, detector, *, disk=None, saturation=None, searc
                                template=False, seg_len=24.0, min_z=min_z, screening=True)
         widths = [ln.width_px / _FWHM for ln in probe.lines if ln is not None]
         sigma = float(np.median(widths)) if widths else 1.5
-        flat, interior, noise = _flatten(image, valid, disk,
-                                         float(np.max(widths)) if widths else sigma)
+        widest = float(np.max(widths)) if widths else sigma
+        if _window(disk, widest) > _window(disk, 1.0):  # a wider background window
+            flat, interior, noise = _flatten(image, valid, disk, widest)
     else:
         sigma = float(line_width_px)
         flat, interior, noise = _flatten(image, valid, disk, sigma)
