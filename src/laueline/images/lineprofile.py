@@ -115,6 +115,26 @@ def sample_profiles(flat, valid, points, normals, half_width, segment, others=No
     rows, cols = flat.shape
     hw_m = np.broadcast_to(np.asarray(half_width, float), (m_count,))
     hw = float(np.max(hw_m)) if m_count else 1.0
+    patch = (2 * (int(math.ceil(math.hypot(hw, segment / 2.0))) + 1) + 1) ** 2
+    chunk = max(1, _MAX_SAMPLES // patch)
+    if m_count > chunk:  # memory bounded by a few million samples at a time
+        parts = []
+        for lo in range(0, m_count, chunk):  # chunks of segments, not single ones
+            sl = slice(lo, lo + chunk)
+            sub = None if others is None else tuple(a[sl] for a in others)
+            parts.append(_sample(flat, valid, points[sl], normals[sl], hw_m[sl], hw, segment,
+                                 sub, step))
+        return tuple(np.concatenate(k) for k in zip(*parts))
+    return _sample(flat, valid, points, normals, hw_m, hw, segment, others, step)
+
+
+_MAX_SAMPLES = 4_000_000
+
+
+def _sample(flat, valid, points, normals, hw_m, hw, segment, others, step):
+    """:func:`sample_profiles` for one chunk of segments (all sharing the bins of ``hw``)."""
+    m_count = len(points)
+    rows, cols = flat.shape
     n_bins = int(math.ceil(2 * hw / step))
     centres = -hw + step * (np.arange(n_bins) + 0.5)
     reach_px = int(math.ceil(math.hypot(hw, segment / 2.0))) + 1
