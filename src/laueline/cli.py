@@ -259,7 +259,8 @@ def _cmd_refine(args):
             raise InputError(f"--fix-strain {item}: write NAME or NAME=VALUE, e.g. exz=0") \
                 from None
     options = dict(
-        kv=args.kv, model=args.model, free=args.free or (), hold=args.hold or (),
+        kv=200.0 if args.kv is None else args.kv, model=args.model, free=args.free or (),
+        hold=args.hold or (),
         unique_axis=args.unique_axis, robust=args.robust, inner_potential=args.inner_potential,
         stiffness=stiffness, sample_axes=axes, hold_strain=hold_strain or None,
         biaxial=args.biaxial, zero_normal_stress=args.zero_normal_stress,
@@ -285,11 +286,17 @@ def _cmd_refine(args):
                                   detect_options={"min_angle_deg": args.min_angle_deg})
         elif args.image:
             from .images.detect import detect_lines
-            from .images.io import read_image
 
             if args.y_up:
                 raise InputError("--y-up applies to point files; images are read row by row")
-            image, saturation = read_image(args.image)
+            read = _read_pattern_args(args, args.image)
+            image, saturation = read.image, read.saturation
+            # the file's voltage and camera scale unless the command line gives them
+            if args.kv is None and read.metadata.kv is not None:
+                options["kv"] = read.metadata.kv
+            if defaults["scale_px_per_mrad"] is None and calibration is None:
+                defaults["scale_px_per_mrad"] = read.metadata.scale_px_per_mrad
+            print(read.metadata.text() + "\n")
             detection = detect_lines(image, disk=args.disk_px, saturation=saturation,
                                      min_angle_deg=args.min_angle_deg, source=args.image)
             specs = [PatternSpec(tuple(args.zone), detection=detection, source=args.image,
@@ -504,17 +511,64 @@ def _cmd_render(args):
     return 0
 
 
+def _add_image_options(p):
+    """Options for reading a pattern out of an image or microscope file."""
+    p.add_argument("--index", nargs="+", type=int, metavar="I",
+                   help="the pattern of a stack or scan: one flat index or one per "
+                        "navigation axis")
+    p.add_argument("--allow-large-image", action="store_true",
+                   help="read patterns above 4096 x 4096 px")
+
+
+def _read_pattern_args(args, path):
+    from .io.microscope import read_pattern
+
+    index = None if args.index is None else \
+        (args.index[0] if len(args.index) == 1 else tuple(args.index))
+    return read_pattern(path, index=index, kv=getattr(args, "kv", None),
+                        scale_px_per_mrad=getattr(args, "scale_px_per_mrad", None),
+                        allow_large=args.allow_large_image)
+
+
 def _cmd_detect(args):
     from . import report
     from .images.detect import detect_lines
-    from .images.io import read_image
 
     report.check_outputs([args.json], args.force, args.figure)
-    image, saturation = read_image(args.pattern)
-    det = detect_lines(image, disk=args.disk_px, saturation=saturation,
-                       min_angle_deg=args.min_angle_deg, source=args.pattern)
+    seeded = args.structure is not None or args.zone is not None
+    if seeded and (args.structure is None or args.zone is None or args.calibration is None):
+        raise InputError("detection from a prediction needs --structure, --zone and "
+                         "--calibration together")
+    read = _read_pattern_args(args, args.pattern)
+    image = read.image
+    if seeded:
+        from .images.detect import detect_seeded, find_disk
+        from .lines import predict
+        from .fit import Calibration
+
+        document = report.read_json(args.calibration, "laueline.fit")
+        cal = Calibration.from_document(document, source=args.calibration)
+        kv, detector = cal.kv, cal.detector
+        disk = find_disk(image) if args.disk_px is None else None
+        distortion = document["detector"].get("distortion")
+        if distortion is None and disk is not None:
+            distortion = disk.detector_distortion
+        detector = detector.replace(distortion=tuple(distortion or (0.0, 0.0)))
+        if args.kv is not None:
+            kv = args.kv
+        disk_mrad = args.disk_mrad or (disk.radius_px if disk is not None else args.disk_px[2]) \
+            / detector.scale_px_per_mrad
+        pattern = predict(_load_crystal(args), args.zone, kv, disk_mrad, x_axis=args.x_axis,
+                          min_strength=args.min_strength)
+        det = detect_seeded(image, pattern, detector, disk=args.disk_px if disk is None else disk,
+                            saturation=read.saturation, search_px=args.search_px,
+                            min_angle_deg=args.min_angle_deg, source=args.pattern)
+    else:
+        det = detect_lines(image, disk=args.disk_px, saturation=read.saturation,
+                           min_angle_deg=args.min_angle_deg, source=args.pattern)
     if len(det.good_lines) < 2:
         raise InputError(f"{args.pattern}: fewer than two lines found in the disk")
+    print(read.metadata.text() + "\n")
     print(report.detection_text(det))
 
     def figure():
@@ -522,7 +576,9 @@ def _cmd_detect(args):
 
         return detection_figure(det, image)
 
-    _finish(args, report.detection_document(det), figure)
+    document = report.detection_document(det)
+    document["file"] = report._clean(read.metadata.as_dict())
+    _finish(args, document, figure)
     return 0
 
 
@@ -701,6 +757,7 @@ def build_parser():
                    help="several patterns of one region, fitted with one strain (see README)")
     p.add_argument("--disk-px", nargs=3, type=float, metavar=("X", "Y", "R"),
                    help="with --image: the disk centre and radius in px instead of finding it")
+    _add_image_options(p)
     p.add_argument("--y-up", action="store_true",
                    help="the points' y grows upward (default: down, as image rows)")
     p.add_argument("--model", choices=_Choices(".fit", "MODELS"), default="strain",
@@ -759,7 +816,7 @@ def build_parser():
                          help="6x6 Voigt stiffness in GPa (reference Cartesian frame)")
     _add_sample_frame_options(p)
     _add_output_options(p)
-    p.set_defaults(run=_cmd_refine)
+    p.set_defaults(run=_cmd_refine, kv=None)  # None: the image file's voltage, else 200
 
     p = sub.add_parser("thickness", help="foil thickness from two-beam CBED fringes",
                        description="Foil thickness and extinction distance from the dark "
@@ -937,9 +994,28 @@ def build_parser():
     p = sub.add_parser("detect", help="find the disk, its lines and crossings in an image",
                        description="Find the central disk and its HOLZ lines to sub-pixel "
                                    "precision, with their crossings and uncertainties.")
-    p.add_argument("pattern", help="image file (TIFF, PNG or .npy)")
+    p.add_argument("pattern", help="image file (TIFF, PNG, .npy) or microscope file (.dm3, "
+                                   ".dm4, .emd, .mrc, .mib, .blo, .hspy, .zspy)")
     p.add_argument("--disk-px", nargs=3, type=float, metavar=("X", "Y", "R"),
                    help="disk centre and radius in px instead of finding it")
+    _add_image_options(p)
+    p.add_argument("--kv", type=float,
+                   help="voltage in kV, overriding the file's (converts reciprocal pixel sizes)")
+    p.add_argument("--scale-px-per-mrad", type=float,
+                   help="camera scale overriding the one taken from the file")
+    seed = p.add_argument_group("detection from a prediction (faster; finds weak lines)")
+    seed.add_argument("--structure", help="CIF file or bundled structure name")
+    seed.add_argument("--zone", nargs=3, type=int, metavar=("U", "V", "W"), help="zone axis")
+    seed.add_argument("--x-axis", nargs=3, type=int, metavar=("H", "K", "L"),
+                      help="reflection fixing the disk x direction")
+    seed.add_argument("--calibration", metavar="FIT.json",
+                      help="a fit whose voltage and detector place the predicted lines")
+    seed.add_argument("--disk-mrad", type=float,
+                      help="disk radius in mrad (default: the found disk over the scale)")
+    seed.add_argument("--min-strength", type=float, default=0.1,
+                      help="predicted lines weaker than this are not sought (0.1)")
+    seed.add_argument("--search-px", type=float, default=3.0,
+                      help="how far a line may lie from its predicted place, px (3)")
     p.add_argument("--min-angle-deg", type=float, default=5.0,
                    help="smallest angle between crossing lines (5)")
     _add_output_options(p)

@@ -782,7 +782,9 @@ def detection_document(det):
         "pixel_convention": "x = column, y = row (down), pixel centres at integers",
         "disk": {"center_px": list(det.disk.center_px), "radius_px": det.disk.radius_px,
                  "rms_px": det.disk.rms_px, "edge_points": det.disk.n_edge_points,
-                 "given": det.disk.given},
+                 "given": det.disk.given, "distortion": list(det.disk.distortion),
+                 "distortion_sigma": list(det.disk.distortion_sigma),
+                 "distortion_significant": det.disk.distortion_significant},
         "noise": det.noise,
         "saturated_px": det.saturated_px,
         "lines": [{"normal_angle_deg": ln.normal_angle_deg, "offset_px": ln.offset_px,
@@ -792,7 +794,11 @@ def detection_document(det):
                    "covariance": ln.covariance,
                    "depth": ln.depth, "width_px": ln.width_px, "snr": ln.snr,
                    "n_pixels": ln.n_pixels, "points_px": ln.points_px,
-                   "flagged": bool(ln.flag), "flag": ln.flag} for ln in det.lines],
+                   "flagged": bool(ln.flag), "flag": ln.flag,
+                   "hkl": None if ln.hkl is None else list(ln.hkl),
+                   "minima_px": ln.minima_px, "minima_sigma_px": ln.minima_sigma_px,
+                   "minima_normal": ln.minima_normal} for ln in det.lines],
+        "missing": [list(h) for h in det.missing],
         "crossings": [{"lines": det.crossing_lines[k], "xy_px": det.crossing_px[k],
                        "sigma_px": det.crossing_sigma_px[k],
                        "angle_deg": det.crossing_angle_deg[k]}
@@ -808,6 +814,11 @@ def detection_text(det):
     out = [f"disk       centre ({d.center_px[0]:.2f}, {d.center_px[1]:.2f}) px, radius "
            f"{d.radius_px:.2f} px" + (" (given)" if d.given else
                                        f", edge rms {d.rms_px:.2f} px from {d.n_edge_points} points"),
+           *([f"           elliptical distortion e1 {d.distortion[0]:.5f} +- "
+              f"{d.distortion_sigma[0]:.5f}, e2 {d.distortion[1]:.5f} +- "
+              f"{d.distortion_sigma[1]:.5f}" + ("" if d.distortion_significant
+                                                  else " (not significant: none applied)")]
+             if not d.given else []),
            f"lines      {len(good)} found ({len(det.lines) - len(good)} flagged); "
            f"{len(det.crossing_lines)} crossings; noise {det.noise:.3g} of the background",
            "",

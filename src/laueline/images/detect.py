@@ -4,25 +4,38 @@ Steps:
 
 1. The disk: the largest bright region (Otsu threshold of the smoothed
    image), then sub-pixel edge points on rays from its provisional centre,
-   then a RANSAC circle fit (:class:`skimage.measure.CircleModel`).  Edge
-   points at the image border or on saturated pixels are left out, so a
-   disk partly outside the frame is still found.
-2. The background: a grey closing removes the thin dark lines, a Gaussian
-   smooths what remains; the disk is divided by it (flat = image/background
-   - 1), which also removes gradients across the disk.
-3. Candidates: a straight-line Hough transform
+   a RANSAC circle fit (:class:`skimage.measure.CircleModel`) to reject
+   stray points, and a linear least-squares ellipse (radius with cos 2phi
+   and sin 2phi terms) that measures the projector's elliptical distortion
+   with its uncertainty.  Edge points at the image border or on saturated
+   pixels are left out, so a disk partly outside the frame is still found.
+2. The background: a grey closing wide enough to span the widest line with
+   its fringes removes the lines, a Gaussian smooths what remains (both on
+   a block-averaged copy when the window is large); the disk is divided by
+   it (flat = image/background - 1): smooth disk intensity and broad bands
+   go, lines stay where they are.
+3. Candidates (blind search): a straight-line Hough transform
    (:func:`skimage.transform.hough_line`) of the pixels darker than three
-   noise sigmas, normalised by the expected count of noise pixels along
-   each chord so that short chords near the rim compete fairly.
-4. Refinement: each candidate is fitted by least squares to the flattened
-   intensities of a band of pixels around it, along its whole length, with
-   the model b - D exp(-d^2 / 2 w^2) and d the distance to a gently curved
-   line, d = n.(p - c) - rho - kappa s^2 (s along the line from the foot of
-   the normal from the disk centre c).  Pixels near other lines are left
-   out.  The fit's covariance gives the position uncertainty.
-5. Checks: duplicates are merged, lines that continue outside the disk
-   (deficit lines cannot) or whose width is far from the others' are
-   flagged and left out of crossings and fits, with a warning.
+   noise sigmas, at block averages 1, 2, 4 (8) so that lines from under 2
+   to 15 px wide are seen at some scale, normalised by the count expected
+   from noise along each chord; every maximum above six sigmas is kept.
+   With a prediction (:func:`detect_seeded`) the candidates are the exact
+   predicted loci mapped by a :class:`~laueline.detector.Detector`,
+   elliptical distortion included.
+4. Measurement: on short segments along each line the pixels are binned by
+   their distance across it (:mod:`laueline.images.lineprofile`); a
+   Gaussian dip fitted to every profile at once gives a first position,
+   and the line's own template (its profiles aligned and averaged) gives
+   the offset from that centre to the deficit minimum, so asymmetric and
+   fringed profiles are located at their minimum.  A gently curved line
+   d = n.(p - c) - rho - kappa s^2 (s along the line from the foot of the
+   normal from the disk centre c) is fitted through the segment minima,
+   with outlying segments dropped; pixels near other lines are left out of
+   each profile.
+5. Checks: candidates seen on too few of their segments or too weak are
+   dropped, duplicates merged, lines that continue outside the disk
+   (deficit lines cannot) or whose width is far from the others' flagged
+   and left out of crossings and fits, with a warning.
 
 Pixel coordinates are (x, y) = (column, row), y down (:mod:`laueline.images`).
 """
@@ -36,7 +49,7 @@ import numpy as np
 
 from ..errors import InputError
 
-__all__ = ["Disk", "DetectedLine", "Detection", "find_disk", "detect_lines",
+__all__ = ["Disk", "DetectedLine", "Detection", "find_disk", "detect_lines", "detect_seeded",
            "DETECTION_SCHEMA"]
 
 DETECTION_SCHEMA = "laueline.detection/1"
@@ -45,11 +58,28 @@ _FWHM = 2 * math.sqrt(2 * math.log(2))
 
 @dataclass
 class Disk:
+    """The central disk: centre and mean radius (px), and its elliptical distortion.
+
+    ``distortion`` (e1, e2) is that of :class:`laueline.detector.Detector`:
+    the edge lies at r(phi) = R (1 + e1 cos 2 phi + e2 sin 2 phi) to first
+    order, with ``distortion_sigma`` its 1-sigma; ``distortion_significant``
+    is True when the pair differs from zero beyond the 99 % point of
+    chi-square with two degrees of freedom (its covariance taken into account).
+    """
+
     center_px: tuple
     radius_px: float
     rms_px: float = 0.0
     n_edge_points: int = 0
     given: bool = False
+    distortion: tuple = (0.0, 0.0)
+    distortion_sigma: tuple = (0.0, 0.0)
+    distortion_significant: bool = False
+
+    @property
+    def detector_distortion(self):
+        """(e1, e2) for a Detector: the measured pair when significant, else zeros."""
+        return tuple(self.distortion) if self.distortion_significant else (0.0, 0.0)
 
 
 @dataclass
@@ -71,6 +101,16 @@ class DetectedLine:
     points_px: np.ndarray         # polyline along the line inside the disk
     n_pixels: int
     flag: str = ""
+    hkl: tuple | None = None      # the predicted line it was sought for (seeded detection)
+    minima_px: np.ndarray | None = None        # (k, 2) measured minimum on each segment
+    minima_sigma_px: np.ndarray | None = None  # (k,) their 1-sigma along the line normal
+    minima_normal: np.ndarray | None = None    # (k, 2) unit normals of those measurements
+
+    @property
+    def minima_covariance_px(self):
+        """(k, 2, 2) covariances of the segment minima: sigma^2 n n^T (none along the line)."""
+        n = self.minima_normal
+        return (self.minima_sigma_px ** 2)[:, None, None] * n[:, :, None] * n[:, None, :]
 
     @property
     def offset_sigma_px(self):
@@ -96,6 +136,7 @@ class Detection:
     saturated_px: int
     warnings: list = field(default_factory=list)
     source: str = ""
+    missing: list = field(default_factory=list)   # seeded: predicted lines not found (hkl)
 
     @property
     def good_lines(self):
@@ -145,7 +186,8 @@ def find_disk(image, valid=None):
         if attempt == 0:
             radii = np.linspace(0.6 * radius, 1.4 * radius, int(1.6 * radius))
         else:  # close to the edge now: a narrow, finely sampled window
-            radii = np.linspace(radius - 10.0, radius + 10.0, 41)
+            reach = max(10.0, 0.012 * radius)
+            radii = np.linspace(radius - reach, radius + reach, int(4 * reach) + 1)
         px = centre[0] + np.outer(np.cos(angles), radii)
         py = centre[1] + np.outer(np.sin(angles), radii)
         inside_frame = (px >= 1) & (px <= cols - 2) & (py >= 1) & (py <= rows - 2)
@@ -164,30 +206,68 @@ def find_disk(image, valid=None):
         f = (values[k, j] - half) / (values[k, j] - values[k, j + 1])
         rr = radii[j] + f * (radii[j + 1] - radii[j])
         edges = centre + rr[:, None] * np.stack([np.cos(angles[k]), np.sin(angles[k])], 1)
-        model, inliers = ransac(edges, CircleModel, min_samples=3, residual_threshold=1.5,
+        # the threshold admits an elliptical projector distortion of ~0.5 %
+        model, inliers = ransac(edges, CircleModel, min_samples=3,
+                                residual_threshold=max(1.5, 0.006 * radius),
                                 max_trials=200, rng=0)
         if model is None or inliers is None or inliers.sum() < 10:
             raise InputError("no disk found: the bright region is not circular")
         xc, yc, radius = _circle(model)
         centre = np.array([xc, yc])
-    final = _circle_fit(edges[inliers])
-    xc, yc, radius = _circle(final)
-    res = final.residuals(edges[inliers])
     if radius < 10:
         raise InputError(f"no usable disk found (radius {radius:.1f} px)")
-    return Disk((float(xc), float(yc)), float(radius), float(np.sqrt(np.mean(res ** 2))),
-                int(inliers.sum()))
+    return _ellipse_disk(edges[inliers], centre)
 
 
-def _circle_fit(points):
-    """Least-squares circle through edge points (scikit-image's CircleModel)."""
-    from skimage.measure import CircleModel
+def _ellipse_disk(edges, centre, passes=3):
+    """Disk from edge points: centre, radius and elliptical distortion with sigmas.
 
-    if hasattr(CircleModel, "from_estimate"):
-        return CircleModel.from_estimate(points)
-    model = CircleModel()
-    model.estimate(points)
-    return model
+    To first order in the distortion the edge point in direction phi from
+    the centre lies at r = R + R e1 cos 2phi + R e2 sin 2phi + dx cos phi +
+    dy sin phi (dx, dy the centre's correction): linear in (R, R e1, R e2,
+    dx, dy), solved by least squares with s^2 (A^T A)^-1 for the covariance;
+    points beyond four robust sigmas (lines crossing the rim, dust) are
+    dropped and the fit repeated.
+    """
+    keep = np.ones(len(edges), dtype=bool)
+    for _ in range(passes):
+        rel = edges - centre
+        r = np.hypot(rel[:, 0], rel[:, 1])
+        phi = np.arctan2(rel[:, 1], rel[:, 0])
+        design = np.stack([np.ones_like(r), np.cos(2 * phi), np.sin(2 * phi), np.cos(phi),
+                           np.sin(phi)], axis=1)
+        coef, *_ = np.linalg.lstsq(design[keep], r[keep], rcond=None)
+        centre = centre + coef[3:5]
+        res = r - design @ coef
+        scale = 1.4826 * np.median(np.abs(res[keep] - np.median(res[keep])))
+        keep = np.abs(res) < max(4 * scale, 0.3)
+    rel = edges - centre
+    r = np.hypot(rel[:, 0], rel[:, 1])
+    phi = np.arctan2(rel[:, 1], rel[:, 0])
+    design = np.stack([np.ones_like(r), np.cos(2 * phi), np.sin(2 * phi), np.cos(phi),
+                       np.sin(phi)], axis=1)[keep]
+    coef, *_ = np.linalg.lstsq(design, r[keep], rcond=None)
+    res = r[keep] - design @ coef
+    s2 = float(np.sum(res ** 2) / max(keep.sum() - 5, 1))
+    # neighbouring rays share pixels and the edge's smoothing: inflate by the
+    # AR(1) effective-sample factor (1 + rho) / (1 - rho) of the residuals in
+    # angular order
+    order = np.argsort(phi[keep])
+    ro = res[order]
+    rho1 = float(np.sum(ro[1:] * ro[:-1]) / max(np.sum(ro * ro), 1e-300))
+    rho1 = min(max(rho1, 0.0), 0.95)
+    s2 *= (1 + rho1) / (1 - rho1)
+    cov = np.linalg.inv(design.T @ design) * s2
+    centre = centre + coef[3:5]
+    radius = float(coef[0])
+    e = coef[1:3] / radius
+    e_sigma = np.sqrt(np.diag(cov)[1:3]) / radius
+    sub = cov[1:3, 1:3] / radius ** 2
+    chi2 = float(e @ np.linalg.solve(sub, e)) if np.all(np.isfinite(sub)) else 0.0
+    return Disk((float(centre[0]), float(centre[1])), radius, float(np.sqrt(np.mean(res ** 2))),
+                int(keep.sum()), distortion=(float(e[0]), float(e[1])),
+                distortion_sigma=(float(e_sigma[0]), float(e_sigma[1])),
+                distortion_significant=bool(chi2 > 9.21))  # chi2(2 dof) at 99 %
 
 
 def _circle(model):
@@ -198,245 +278,65 @@ def _circle(model):
 
 
 # ---------------------------------------------------------------------------
-# lines
+# background
 # ---------------------------------------------------------------------------
 
-def _line_model(params, px, py, cx, cy):
-    rho, ang, kappa, depth, sigma, base = params
-    ca, sa = math.cos(ang), math.sin(ang)
-    u, v = px - cx, py - cy
-    s = -sa * u + ca * v
-    along_n = ca * u + sa * v
-    d = along_n - rho - kappa * s * s
-    g = np.exp(-0.5 * (d / sigma) ** 2)
-    model = base - depth * g
-    # derivatives of the model
-    dd_drho = -1.0
-    dd_dang = s - kappa * 2 * s * (-along_n)  # d(along_n)/da = s; ds/da = -along_n
-    dd_dkappa = -s * s
-    dm_dd = depth * g * d / sigma ** 2
-    jac = np.empty((len(g), 6))
-    jac[:, 0] = dm_dd * dd_drho
-    jac[:, 1] = dm_dd * dd_dang
-    jac[:, 2] = dm_dd * dd_dkappa
-    jac[:, 3] = -g
-    jac[:, 4] = -dm_dd * d / sigma
-    jac[:, 5] = 1.0
-    return model, jac, d
+def _window(disk, line_sigma_px):
+    """Background window (px): it spans a line with its side fringes several times over."""
+    return max(7.0, disk.radius_px / 20.0, 12.0 * line_sigma_px)
 
 
-def _distance(rho, ang, kappa, px, py, cx, cy):
-    """Signed distance of pixels from the curved line(s); broadcasts over arrays."""
-    ca, sa = np.cos(ang), np.sin(ang)
-    u, v = px - cx, py - cy
-    s = -sa * u + ca * v
-    return ca * u + sa * v - rho - kappa * s * s
+def _flatten(image, valid, disk, line_sigma_px=1.0):
+    """Relative deficit image (image / background - 1) inside the disk, and its pixel noise.
 
-
-def _fit_line(flat, valid, start, others, disk, noise):
-    """Least-squares profile fit of one line in a band of pixels; None if it fails."""
-    from scipy.optimize import least_squares
-
-    rho, ang, kappa, sigma = start
-    cx, cy = disk.center_px
-    half_band = max(4.0 * sigma, 3.0)
-    band = _band_pixels(valid, disk, rho, ang, half_band)
-    if band is None:
-        return None
-    ix, iy = band
-    fx, fy = ix.astype(float), iy.astype(float)
-    span = math.sqrt(max(disk.radius_px ** 2 - rho ** 2, 0.0))
-    d0 = _distance(rho, ang, kappa, fx, fy, cx, cy)
-    near = np.abs(d0) <= half_band
-    fx, fy, ix, iy = fx[near], fy[near], ix[near], iy[near]
-    if len(others):
-        o = np.asarray(others, dtype=float)                  # (k, 4): rho, angle, kappa, sigma
-        d_o = _distance(o[:, 0], o[:, 1], o[:, 2], fx[:, None], fy[:, None], cx, cy)
-        clear = np.all(np.abs(d_o) > 2.5 * o[:, 3] + 1.0, axis=1)
-        fx, fy, ix, iy = fx[clear], fy[clear], ix[clear], iy[clear]
-    if len(fx) < 40:
-        return None
-    data = flat[iy, ix]
-    depth0 = max(-np.min(data), noise)
-    x0 = np.array([rho, ang, kappa, depth0, sigma, 0.0])
-
-    # the exact locus bends by well under a pixel across a disk: a Gaussian
-    # prior holds the curvature to a sagitta of about 0.1 px over the half
-    # chord unless the data insist
-    kappa_prior = 0.1 / span ** 2
-    prior_weight = noise / kappa_prior
-
-    def fun(p):
-        return np.append(_line_model(p, fx, fy, cx, cy)[0] - data, prior_weight * p[2])
-
-    def jac(p):
-        j = _line_model(p, fx, fy, cx, cy)[1]
-        row = np.zeros((1, 6))
-        row[0, 2] = prior_weight
-        return np.vstack([j, row])
-
-    try:
-        res = least_squares(fun, x0, jac=jac, method="lm",
-                            x_scale=[1.0, 0.01, 1e-4, 0.05, 1.0, 0.01], max_nfev=60)
-    except (ValueError, np.linalg.LinAlgError):
-        return None
-    p = res.x
-    if not np.all(np.isfinite(p)) or p[3] <= 0 or not 0.3 < abs(p[4]) < 10:
-        return None
-    p[4] = abs(p[4])
-    dof = max(len(data) - 6, 1)
-    s2 = float(np.sum(res.fun ** 2) / dof)
-    try:
-        cov = np.linalg.inv(res.jac.T @ res.jac) * s2
-    except np.linalg.LinAlgError:
-        return None
-    return p, cov, len(data)
-
-
-def _band_pixels(valid, disk, rho, ang, half_band):
-    """Usable pixels (ix, iy) within ``half_band`` of a straight chord, or None."""
-    rows, cols = valid.shape
-    cx, cy = disk.center_px
-    ca, sa = math.cos(ang), math.sin(ang)
-    span = math.sqrt(max(disk.radius_px ** 2 - rho ** 2, 0.0))
-    if span < 10:
-        return None
-    s = np.arange(-span, span + 1.0)
-    w = np.arange(-math.ceil(half_band), math.ceil(half_band) + 1.0)
-    px = cx + rho * ca + s[:, None] * (-sa) + w[None, :] * ca
-    py = cy + rho * sa + s[:, None] * ca + w[None, :] * sa
-    ix, iy = np.round(px).astype(int).ravel(), np.round(py).astype(int).ravel()
-    ok = (ix >= 0) & (ix < cols) & (iy >= 0) & (iy < rows)
-    key = np.sort(iy[ok] * cols + ix[ok])
-    key = key[np.concatenate([[True], key[1:] != key[:-1]])]  # each pixel once
-    iy, ix = key // cols, key % cols
-    keep = valid[iy, ix]
-    return ix[keep], iy[keep]
-
-
-def _quick_fit(flat, valid, start, disk, noise):
-    """Fast first look at a candidate: line through the dip centroids along it.
-
-    Returns (rho, angle, significance) or None; significance is the mean
-    depth at the line over its standard error.
-    """
-    rho, ang = start[0], start[1]
-    cx, cy = disk.center_px
-    band = _band_pixels(valid, disk, rho, ang, 5.0)
-    if band is None:
-        return None
-    ix, iy = band
-    fx, fy = ix - cx, iy - cy
-    ca, sa = math.cos(ang), math.sin(ang)
-    d = ca * fx + sa * fy - rho
-    s = -sa * fx + ca * fy
-    dip = np.maximum(-flat[iy, ix], 0.0)
-    bins = np.floor((s - s.min()) / 12.0).astype(int)
-    weight = np.bincount(bins, dip)
-    has = weight > 0
-    if has.sum() < 3:
-        return None
-    centroid = np.bincount(bins, dip * d)[has] / weight[has]
-    s_mid = np.bincount(bins, s)[has] / np.bincount(bins)[has]
-    design = np.stack([np.ones_like(s_mid), s_mid], axis=1) * np.sqrt(weight[has])[:, None]
-    coef = np.linalg.lstsq(design, centroid * np.sqrt(weight[has]), rcond=None)[0]
-    rho_new, ang_new = rho + coef[0], ang - math.atan(coef[1])
-    d_new = math.cos(ang_new) * fx + math.sin(ang_new) * fy - rho_new
-    core, flank = np.abs(d_new) < 1.0, (np.abs(d_new) > 3.5) & (np.abs(d_new) < 5.0)
-    if core.sum() < 10 or flank.sum() < 10:
-        return None
-    depth = np.mean(flat[iy[flank], ix[flank]]) - np.mean(flat[iy[core], ix[core]])
-    error = noise * math.sqrt(1.0 / core.sum() + 1.0 / flank.sum())
-    return rho_new, ang_new, depth / error
-
-
-def _hough_candidates(ridge, interior, disk, max_lines):
-    from skimage.feature import peak_local_max
-    from skimage.transform import hough_line
-
-    theta = np.linspace(-np.pi / 2, np.pi / 2, 720, endpoint=False)  # 0.25 deg bins
-    acc, angles, dists = hough_line(ridge, theta=theta)
-    p = ridge.sum() / max(interior.sum(), 1)
-    cx, cy = disk.center_px
-    # distance of each (d, theta) line from the disk centre -> chord length
-    rho_c = dists[:, None] - (cx * np.cos(angles) + cy * np.sin(angles))[None, :]
-    chord = 2 * np.sqrt(np.clip(disk.radius_px ** 2 - rho_c ** 2, 0, None))
-    expected = p * chord
-    z = (acc - expected) / np.sqrt(expected + 1.0)
-    z[chord < 20] = 0
-    peaks = peak_local_max(z, min_distance=4, threshold_abs=6.0, num_peaks=max_lines,
-                           exclude_border=False)
-    out = []
-    for i, j in peaks:
-        out.append((float(rho_c[i, j]), float(angles[j]), float(z[i, j])))
-    return out
-
-
-def detect_lines(image, *, disk=None, saturation=None, min_angle_deg=5.0, max_lines=150,
-                 source=""):
-    """Detect the central disk, its deficit lines and their crossings.
-
-    Parameters
-    ----------
-    image : ndarray (rows, cols)
-    disk : (x, y, radius) in px, optional
-        Skip the disk search.
-    saturation : float, optional
-        Pixel value at which the detector saturates (the integer maximum of
-        the file type); pixels at that value are left out.
-    min_angle_deg : float
-        Crossings of lines meeting at a smaller angle are not reported.
-    max_lines : int
-        Most candidates considered.
-
-    Returns
-    -------
-    Detection
+    The background is a grey closing (which removes dark lines narrower than
+    its window) followed by a Gaussian, computed on a block-averaged copy of
+    the image when the window is large: it follows the smooth disk
+    intensity and bands broader than the window without following the
+    lines, and a smooth divisor moves no line.  The window grows with the
+    disk and with the widest line expected (``line_sigma_px``).
     """
     from scipy import ndimage
 
-    image = np.asarray(image, dtype=float)
     rows, cols = image.shape
-    warnings = []
-    top = image.max()
-    at_top = image >= top
-    saturated = np.zeros_like(at_top)
-    if (saturation is not None and top >= saturation) or at_top.sum() > max(20, 1e-4 * image.size):
-        saturated = ndimage.binary_dilation(at_top, iterations=1)
-        warnings.append(f"{int(at_top.sum())} saturated pixels (value {top:g}) left out")
-    valid = ~saturated
-    if disk is None:
-        disk = find_disk(image, valid)
-    else:
-        x, y, r = (float(v) for v in disk)
-        if not r > 0:
-            raise InputError("the disk radius must be positive")
-        disk = Disk((x, y), r, given=True)
     cx, cy = disk.center_px
-    yy, xx = np.mgrid[0:rows, 0:cols]
+    yy, xx = np.ogrid[0:rows, 0:cols]
     r = np.hypot(xx - cx, yy - cy)
-    if not np.any(r < disk.radius_px - 5):
-        raise InputError("the disk lies outside the image")
-    frac_in_frame = _fraction_in_frame(disk, rows, cols)
-    if frac_in_frame < 0.98:
-        warnings.append(f"the disk is partly outside the frame ({100 * (1 - frac_in_frame):.0f} "
-                        "% of its area): lines are fitted where visible")
-
-    # background and flattening
-    closing_px = int(max(7, round(disk.radius_px / 20)) | 1)
-    margin = 6.0  # px inside the fitted rim, clear of the blurred disk edge
+    margin = 4.0  # px inside the fitted rim, clear of the blurred disk edge
     interior = (r < disk.radius_px - margin) & valid
-    # outside the disk (and on saturated pixels) continue the disk's own level
-    # from the nearest inside pixel, so that the background is unbiased up to the rim
     source = interior | ((r < disk.radius_px - 2) & valid)
-    if not np.any(source):
+    if not np.any(interior):
         raise InputError("no usable pixels inside the disk")
-    _, (iy, ix) = ndimage.distance_transform_edt(~source, return_indices=True)
-    filled = image[iy, ix]
-    # smoothing first keeps the closing from riding on the noise maxima
-    closed = ndimage.grey_closing(ndimage.gaussian_filter(filled, 1.0),
-                                  size=(closing_px, closing_px))
-    background = ndimage.gaussian_filter(closed, closing_px / 2.0)
+    window = _window(disk, line_sigma_px)
+    block = max(1, int(window // 6))
+    if block > 1:  # the background is smooth: work on block means
+        r_rows, r_cols = rows // block * block, cols // block * block
+        pad = ((0, rows - r_rows), (0, cols - r_cols))
+
+        def shrink(a):
+            return a[:r_rows, :r_cols].reshape(r_rows // block, block, r_cols // block,
+                                               block).mean(axis=(1, 3))
+        src_small = shrink(source.astype(float))
+        img_small = shrink(np.where(source, image, 0.0))
+        small_source = src_small > 0.5
+        img_small = np.divide(img_small, src_small, out=np.zeros_like(img_small),
+                              where=src_small > 0)
+    else:
+        small_source, img_small = source, image
+    if not np.any(small_source):
+        raise InputError("no usable pixels inside the disk")
+    # outside the disk continue the disk's own level from the nearest inside
+    # pixel, so that the background is unbiased up to the rim
+    _, (iy, ix) = ndimage.distance_transform_edt(~small_source, return_indices=True)
+    filled = img_small[iy, ix]
+    size = int(max(3, round(window / block)) | 1)
+    closed = ndimage.grey_closing(ndimage.gaussian_filter(filled, 1.0), size=(size, size))
+    background = ndimage.gaussian_filter(closed, size / 2.0)
+    if block > 1:
+        zy = (np.arange(rows) + 0.5) / block - 0.5
+        zx = (np.arange(cols) + 0.5) / block - 0.5
+        background = ndimage.map_coordinates(
+            background, np.meshgrid(zy, zx, indexing="ij"), order=1, mode="nearest")
     with np.errstate(divide="ignore", invalid="ignore"):
         ratio = np.where(interior, image / background, 1.0)
     ratio /= np.median(ratio[interior])  # lines cover little of the disk
@@ -447,54 +347,524 @@ def detect_lines(image, *, disk=None, saturation=None, min_angle_deg=5.0, max_li
     diff = (flat[:, 2:] - flat[:, :-2])[both]
     noise = float(1.4826 * np.median(np.abs(diff - np.median(diff))) / math.sqrt(2))
     noise = max(noise, 1e-3)  # noiseless (rendered) images: 0.1 % keeps thresholds sane
+    return flat, interior, noise
 
-    # candidates
-    smooth = ndimage.gaussian_filter(flat, 1.0)
-    noise_smooth = noise / (2 * math.sqrt(math.pi) * 1.0)  # white noise under a sigma-1 Gaussian
-    ridge = (-smooth > 3.0 * noise_smooth) & interior
-    candidates = _hough_candidates(ridge, interior, disk, max_lines)
-    starts = [(rho, ang, 0.0, 1.0) for rho, ang, _ in candidates]
 
-    # first every candidate alone (neighbouring Hough peaks of one line would
-    # otherwise mask each other), then, once duplicates are merged, each line
-    # again with the pixels near all other lines left out
-    quick = []
-    for st in starts:
-        q = _quick_fit(flat, interior, st, disk, noise)
-        if q is not None and q[2] > 10.0:
-            quick.append((np.array([q[0], q[1], 0.0, q[2], 1.0, 0.0]), np.eye(6), 0))
-    quick = _merge_duplicates(quick, disk, key=lambda f: -f[0][3])
-    fitted = _fit_all(flat, interior, [(p[0], p[1], 0.0, 1.0) for p, _, _ in quick], True,
-                      disk, noise)
-    lines = [_make_line(p, cov, npx, disk) for p, cov, npx in fitted]
+# ---------------------------------------------------------------------------
+# lines: measurement along given starting loci
+# ---------------------------------------------------------------------------
+
+def _distance(rho, ang, kappa, px, py, cx, cy):
+    """Signed distance of pixels from the curved line(s); broadcasts over arrays."""
+    ca, sa = np.cos(ang), np.sin(ang)
+    u, v = px - cx, py - cy
+    s = -sa * u + ca * v
+    return ca * u + sa * v - rho - kappa * s * s
+
+
+def _straight(polylines, centre):
+    """(rho, angle) of the chord through each polyline's end points, about ``centre``."""
+    a, b = polylines[:, 0], polylines[:, -1]
+    t = b - a
+    ang = np.arctan2(t[:, 0], -t[:, 1])          # normal (cos, sin) = (t_y, -t_x) / |t|
+    n = np.stack([np.cos(ang), np.sin(ang)], 1)
+    rho = np.sum((0.5 * (a + b) - centre) * n, axis=1)
+    return rho, ang
+
+
+def _segments(polylines, disk, seg_len, margin):
+    """Segment centres, unit normals and owners along polylines inside the disk.
+
+    Each polyline is walked at even steps of its point index (the loci are
+    sampled evenly along their chords, so this is even in arc length to
+    well under a percent); segments whose centre lies within ``margin`` of
+    the rim are dropped.
+    """
+    centre = np.asarray(disk.center_px)
+    n_lines, n_pts = polylines.shape[:2]
+    if n_lines == 0:
+        return np.zeros((0, 2)), np.zeros((0, 2)), np.zeros(0, int)
+    length = np.linalg.norm(polylines[:, -1] - polylines[:, 0], axis=1)
+    count = np.maximum((length // seg_len).astype(int), 1)
+    owner = np.repeat(np.arange(n_lines), count)
+    k = np.arange(len(owner)) - np.repeat(np.cumsum(count) - count, count)
+    frac = (k + 0.5) / count[owner] * (n_pts - 1)
+    i0 = np.clip(np.floor(frac).astype(int), 0, n_pts - 2)
+    w = (frac - i0)[:, None]
+    pts = (1 - w) * polylines[owner, i0] + w * polylines[owner, i0 + 1]
+    tangent = polylines[owner, i0 + 1] - polylines[owner, i0]
+    tangent /= np.linalg.norm(tangent, axis=1, keepdims=True)
+    normal = np.stack([tangent[:, 1], -tangent[:, 0]], 1)
+    inside = np.hypot(*(pts - centre).T) < disk.radius_px - margin
+    return pts[inside], normal[inside], owner[inside]
+
+
+def _other_line_masks(points, normals, owner, rho, ang, keep_out, disk, rank=None):
+    """Distances and angles of every straight line from every segment, for masking.
+
+    With ``rank`` (0 = most significant) a line is left out only of the
+    profiles of less significant lines, so that a weak spurious start can
+    never hide a strong line.
+    """
+    centre = np.asarray(disk.center_px)
+    n = np.stack([np.cos(ang), np.sin(ang)], 1)                    # (J, 2)
+    tangents = np.stack([-normals[:, 1], normals[:, 0]], 1)
+    dist = (points - centre) @ n.T - rho[None, :]                  # (M, J)
+    along_n = normals @ n.T
+    along_t = tangents @ n.T
+    keep = np.broadcast_to(keep_out, dist.shape).copy()
+    keep[np.arange(len(owner)), owner] = 0.0                        # not the line itself
+    if rank is not None:
+        keep[rank[None, :] >= rank[owner][:, None]] = 0.0
+    return dist, along_n, along_t, keep
+
+
+@dataclass
+class _Measured:
+    """Per-line results of :func:`_measure_lines` (arrays over the lines sought)."""
+
+    found: np.ndarray           # bool (L,)
+    lines: list                 # DetectedLine or None
+    z: np.ndarray               # combined significance (L,)
+
+
+def _measure_lines(flat, interior, disk, noise, polylines, width_px, search_px, *,
+                   masks=None, seg_len=None, template=True, min_z=6.0, min_fraction=0.5,
+                   screening=False):
+    """Measure deficit minima along starting loci and fit each line through them.
+
+    Parameters
+    ----------
+    polylines : ndarray (L, P, 2)
+        Starting loci in px (predicted lines, or Hough chords).
+    width_px : ndarray (L,)
+        Expected Gaussian sigma of each line (px).
+    search_px : float
+        How far (px) the minimum may lie from the starting locus.
+    masks : (rho, angle, keep_out) arrays, optional
+        Straight lines whose neighbourhoods are left out of other lines' profiles.
+    template : bool
+        Locate minima with each line's own template (else the Gaussian centre).
+    min_z : float
+        Combined significance sqrt(sum z^2) of the segment depths a line needs.
+    min_fraction : float
+        Fraction of its segments on which a line must be seen: a start that
+        merely crosses a real line sees it on one or two segments only.
+    screening : bool
+        A quick look (samples 2 px apart along segments, fewer iterations)
+        for sorting candidates; positions come from a later full pass.
+    """
+    from .lineprofile import fit_line_offsets, fit_profiles, sample_profiles, template_minima
+
+    n_lines = len(polylines)
+    width_px = np.broadcast_to(np.asarray(width_px, float), (n_lines,))
+    empty = _Measured(np.zeros(n_lines, bool), [None] * n_lines, np.zeros(n_lines))
+    if n_lines == 0:
+        return empty
+    sigma_max = float(np.max(width_px))
+    seg_len = seg_len or float(np.clip(4.0 * sigma_max, 12.0, 32.0))
+    half = search_px + 4.0 * width_px + 2.0
+    points, normals, owner = _segments(polylines, disk, seg_len, 5.0)
+    if not len(owner):
+        return empty
+    others = None
+    if masks is not None:
+        rho_m, ang_m, keep_m = masks[:3]
+        others = _other_line_masks(points, normals, owner, rho_m, ang_m, keep_m, disk,
+                                   masks[3] if len(masks) > 3 else None)
+    d, profile, count, crowded = sample_profiles(flat, interior, points, normals, half[owner],
+                                        seg_len, others, step=1.0 if screening else 0.5)
+    fit = fit_profiles(d, profile, count, 0.0, width_px[owner], noise, search=search_px,
+                       max_width=max(3.0 * sigma_max, 4.0), shape_terms=False,
+                       iterations=8 if screening else 20)
+    z_seg = np.where(fit.ok, fit.depth / np.maximum(fit.depth_sigma, 1e-12), 0.0)
+    if template:
+        minimum, var, ok_t, _, template_var = template_minima(
+            d, profile, count, owner, _with_ok(fit, z_seg > 2.0), noise, clean=~crowded,
+            refit=False)
+    else:
+        minimum, var, ok_t = fit.minimum, fit.minimum_var, fit.ok
+        template_var = np.zeros(n_lines)
+    ok = ok_t & fit.ok & (z_seg > 2.0) & (np.abs(minimum) <= search_px + 1.0)
+    z_line = np.sqrt(np.bincount(owner, np.where(ok, z_seg, 0.0) ** 2, minlength=n_lines))
+    centre = np.asarray(disk.center_px)
+    rho0, ang0 = _straight(polylines, centre)
+    # in each line's straight frame: offset along its normal against s along it
+    q = points + minimum[:, None] * normals
+    n0 = np.stack([np.cos(ang0), np.sin(ang0)], 1)[owner]
+    m0 = np.stack([-n0[:, 1], n0[:, 0]], 1)
+    off = np.sum((q - centre) * n0, axis=1)
+    s = np.sum((q - centre) * m0, axis=1)
+    var_n = var / np.maximum(np.sum(normals * n0, axis=1) ** 2, 0.25)
+    counts = np.bincount(owner, minlength=n_lines)
+    k_max = int(counts.max())
+    slot = np.arange(len(owner)) - np.repeat(np.cumsum(counts) - counts, counts)
+    grid = np.zeros((n_lines, k_max))
+    s_g, off_g, var_g, ok_g = grid.copy(), grid.copy(), np.ones_like(grid), \
+        np.zeros_like(grid, bool)
+    s_g[owner, slot], off_g[owner, slot] = s, off
+    var_g[owner, slot] = np.where(ok, var_n, 1.0)
+    ok_g[owner, slot] = ok
+    span = np.sqrt(np.maximum(disk.radius_px ** 2 - rho0 ** 2, 1.0))
+    for _ in range(2):  # once more without segments beyond four sigmas (crossings, dust)
+        # exact loci bend by hundredths of a pixel over a chord of a few hundred
+        # pixels; a prior sagitta of 2.5e-4 of the disk radius keeps a line
+        # measured on part of its chord from being bent at its ends
+        coef, cov, chi2, dof = fit_line_offsets(s_g, off_g, var_g, ok_g, span,
+                                                curvature_sagitta_px=2.5e-4 * disk.radius_px)
+        design = np.stack([np.ones_like(s_g), s_g, s_g * s_g], 2)
+        resid = off_g - np.einsum("lki,li->lk", design, coef)
+        # a robust scale (median absolute normalised residual) so that the
+        # outliers themselves cannot widen the gate
+        norm = np.where(ok_g, np.abs(resid) / np.sqrt(var_g), np.nan)
+        with np.errstate(all="ignore"):
+            scale = np.nan_to_num(1.4826 * np.nanmedian(norm, axis=1), nan=1.0)
+        ok_g &= np.abs(resid) < 4.0 * np.sqrt(var_g) * np.maximum(scale, 1.0)[:, None]
+    # the template's minimum is common to every segment of a line: its
+    # variance adds to the line's offset, not to the segments' scatter
+    cov[:, 0, 0] += np.where(np.isfinite(template_var), template_var, 0.0)
+    n_ok = ok_g.sum(axis=1)
+    # segments whose core was not left out (near other lines) are the ones that count
+    core = np.abs(d) <= 1.0 + width_px[owner][:, None]
+    open_core = np.all((count > 0) | ~core, axis=1)
+    available = np.maximum(np.bincount(owner, open_core, minlength=n_lines), 1)
+    found = (n_ok >= 3) & (n_ok >= min_fraction * available) & (z_line >= min_z) & \
+        np.all(np.isfinite(coef), axis=1)
+    lines = [None] * n_lines
+    depth_line = np.bincount(owner, np.where(ok, fit.depth, 0.0), minlength=n_lines) / \
+        np.maximum(np.bincount(owner, ok, minlength=n_lines), 1)
+    width_line = np.bincount(owner, np.where(ok, fit.width, 0.0), minlength=n_lines) / \
+        np.maximum(np.bincount(owner, ok, minlength=n_lines), 1)
+    npx = np.bincount(owner, count.sum(axis=1), minlength=n_lines)
+    for i in np.flatnonzero(found):  # assembling result objects, not computing
+        r_, beta, kappa = coef[i]
+        g = 1.0 + beta * beta
+        rho, ang, kap = r_ / math.sqrt(g), ang0[i] - math.atan(beta), kappa / g ** 1.5
+        jac = np.array([[1 / math.sqrt(g), -r_ * beta / g ** 1.5, 0.0],
+                        [0.0, -1.0 / g, 0.0],
+                        [0.0, -3 * kappa * beta / g ** 2.5, 1.0 / g ** 1.5]])
+        sel_idx = np.flatnonzero(owner == i)[ok_g[i, :counts[i]]]
+        lines[i] = _new_line(rho, ang, kap, jac @ cov[i] @ jac.T, depth_line[i],
+                             width_line[i] * _FWHM, float(z_line[i]), int(npx[i]), disk,
+                             minima_px=q[sel_idx], minima_sigma_px=np.sqrt(var[sel_idx]),
+                             minima_normal=normals[sel_idx])
+    return _Measured(found, lines, z_line)
+
+
+def _with_ok(fit, ok):
+    from .lineprofile import ProfileFit
+
+    return ProfileFit(fit.minimum, fit.minimum_var, fit.depth, fit.depth_sigma, fit.width,
+                      fit.asymmetry, fit.fringe, fit.ok & ok, fit.params)
+
+
+def _new_line(rho, ang, kappa, cov3, depth, width_px, snr, npx, disk, **extra):
+    """A DetectedLine with a non-negative offset and angle in (-pi, pi]."""
+    if rho < 0:
+        rho, ang, kappa = -rho, ang + np.pi, -kappa
+        flip = np.diag([-1.0, 1.0, -1.0])
+        cov3 = flip @ cov3 @ flip
+    ang = (ang + np.pi) % (2 * np.pi) - np.pi
+    cx, cy = disk.center_px
+    span = math.sqrt(max(disk.radius_px ** 2 - rho ** 2, 0.0))
+    s = np.linspace(-span, span, 64)
+    ca, sa = math.cos(ang), math.sin(ang)
+    offset = rho + kappa * s * s
+    pts = np.stack([cx + offset * ca - s * sa, cy + offset * sa + s * ca], axis=1)
+    inside = np.hypot(pts[:, 0] - cx, pts[:, 1] - cy) <= disk.radius_px + 1e-9
+    return DetectedLine(float(math.degrees(ang)), float(rho), float(kappa), float(depth),
+                        float(width_px), cov3, float(snr), pts[inside], int(npx), **extra)
+
+
+def _chords(rho, ang, disk, n_points=64):
+    """Straight chords (L, P, 2) px of lines (rho, angle) about the disk centre."""
+    cx, cy = disk.center_px
+    span = np.sqrt(np.maximum(disk.radius_px ** 2 - rho ** 2, 0.0))
+    t = np.linspace(-1, 1, n_points)[None, :] * span[:, None]
+    ca, sa = np.cos(ang)[:, None], np.sin(ang)[:, None]
+    return np.stack([cx + rho[:, None] * ca - t * sa, cy + rho[:, None] * sa + t * ca], axis=2)
+
+
+def _line_polylines(lines, disk):
+    """Curved loci (L, 64, 2) of detected lines across the whole chord."""
+    if not lines:
+        return np.zeros((0, 64, 2))
+    par = np.array([[ln.offset_px, math.radians(ln.normal_angle_deg), ln.curvature_per_px]
+                    for ln in lines])
+    chords = _chords(par[:, 0], par[:, 1], disk)
+    cx, cy = disk.center_px
+    n = np.stack([np.cos(par[:, 1]), np.sin(par[:, 1])], 1)[:, None, :]
+    m = np.stack([-np.sin(par[:, 1]), np.cos(par[:, 1])], 1)[:, None, :]
+    s = np.sum((chords - [cx, cy]) * m, axis=2)
+    return chords + (par[:, 2, None] * s * s)[..., None] * n
+
+
+# ---------------------------------------------------------------------------
+# blind search
+# ---------------------------------------------------------------------------
+
+def _hough_candidates(flat, interior, disk, noise):
+    """Line candidates (rho, angle, sigma_px) from a Hough transform at several scales.
+
+    Lines from under 2 to 15 px wide: the flattened image is block-averaged
+    by 1, 2, 4 (and 8 for large disks), so that a line is one to three
+    pixels wide at some level; at each level the pixels darker than three
+    noise sigmas after a unit Gaussian are accumulated
+    (:func:`skimage.transform.hough_line`), normalised by the count expected
+    from noise along each chord so that short chords near the rim compete
+    fairly, and every local maximum above six sigmas is kept (no fixed cap:
+    the count grows with the pattern, not with the image size).
+    """
+    from scipy import ndimage
+    from skimage.feature import peak_local_max
+    from skimage.transform import hough_line
+
+    out = []
+    factor = 1
+    rows, cols = flat.shape
+    while disk.radius_px / factor >= 40 and factor <= 8:
+        if factor == 1:
+            f_small, i_small = flat, interior
+        else:
+            r_rows, r_cols = rows // factor * factor, cols // factor * factor
+            shape = (r_rows // factor, factor, r_cols // factor, factor)
+            f_small = flat[:r_rows, :r_cols].reshape(shape).mean(axis=(1, 3))
+            i_small = interior[:r_rows, :r_cols].reshape(shape).all(axis=(1, 3))
+        level_noise = noise / factor  # block means of (nearly) independent pixels
+        smooth = ndimage.gaussian_filter(f_small, 1.0)
+        ridge = (-smooth > 3.0 * level_noise / (2 * math.sqrt(math.pi))) & i_small
+        n_theta = int(np.clip(np.pi * disk.radius_px / factor, 180, 720))
+        theta = np.linspace(-np.pi / 2, np.pi / 2, n_theta, endpoint=False)
+        acc, angles, dists = hough_line(ridge, theta=theta)
+        p = ridge.sum() / max(i_small.sum(), 1)
+        c_small = ((disk.center_px[0] + 0.5) / factor - 0.5,
+                   (disk.center_px[1] + 0.5) / factor - 0.5)
+        rho_c = dists[:, None] - (c_small[0] * np.cos(angles) + c_small[1] * np.sin(angles))[None]
+        chord = 2 * np.sqrt(np.clip((disk.radius_px / factor) ** 2 - rho_c ** 2, 0, None))
+        expected = p * chord
+        z = (acc - expected) / np.sqrt(expected + 1.0)
+        z[chord < 20 / factor] = 0
+        peaks = peak_local_max(z, min_distance=3, threshold_abs=6.0, exclude_border=False)
+        if len(peaks):
+            i, j = peaks[:, 0], peaks[:, 1]
+            out.append(np.stack([rho_c[i, j] * factor, angles[j], np.full(len(i), factor * 1.0),
+                                 z[i, j]], 1))
+        factor *= 2
+    if not out:
+        return np.zeros((0, 4))
+    return np.concatenate(out)
+
+
+def _merge(lines, disk):
+    """Keep the most significant of lines that trace the same feature."""
+    order = sorted(range(len(lines)), key=lambda i: -lines[i].snr)
+    lines = [lines[i] for i in order]
+    if not lines:
+        return lines
+    par = [[ln.offset_px, math.radians(ln.normal_angle_deg), ln.curvature_per_px]
+           for ln in lines]
+    gap = _gap_matrix(par, disk)
+    width = np.array([ln.width_px for ln in lines])
+    kept = []
+    for i in range(len(lines)):
+        if not any(gap[i, j] < max(2.0, width[j]) for j in kept):
+            kept.append(i)
+    return [lines[i] for i in kept]
+
+
+def _prepare(image, disk, saturation, warnings):
+    """Saturated pixels, the disk and the frame check shared by both detections."""
+    from scipy import ndimage
+
+    image = np.asarray(image, dtype=float)
+    rows, cols = image.shape
+    top = image.max()
+    at_top = image >= top
+    saturated = np.zeros_like(at_top)
+    if (saturation is not None and top >= saturation) or at_top.sum() > max(20, 1e-4 * image.size):
+        saturated = ndimage.binary_dilation(at_top, iterations=1)
+        warnings.append(f"{int(at_top.sum())} saturated pixels (value {top:g}) left out")
+    valid = ~saturated
+    if disk is None:
+        disk = find_disk(image, valid)
+    elif not isinstance(disk, Disk):
+        x, y, r = (float(v) for v in disk)
+        if not r > 0:
+            raise InputError("the disk radius must be positive")
+        disk = Disk((x, y), r, given=True)
+    cx, cy = disk.center_px
+    if not (-disk.radius_px + 5 < cx < cols + disk.radius_px - 5
+            and -disk.radius_px + 5 < cy < rows + disk.radius_px - 5):
+        raise InputError("the disk lies outside the image")
+    frac_in_frame = _fraction_in_frame(disk, rows, cols)
+    if frac_in_frame < 0.98:
+        warnings.append(f"the disk is partly outside the frame ({100 * (1 - frac_in_frame):.0f} "
+                        "% of its area): lines are fitted where visible")
+    if disk.distortion_significant:
+        e = math.hypot(*disk.distortion)
+        warnings.append(f"the disk is elliptical by {100 * e:.2f} % (e1 {disk.distortion[0]:.5f}"
+                        f" +- {disk.distortion_sigma[0]:.5f}, e2 {disk.distortion[1]:.5f} +- "
+                        f"{disk.distortion_sigma[1]:.5f}): projector distortion")
+    return image, valid, disk, int(at_top.sum()) if saturated.any() else 0
+
+
+def detect_lines(image, *, disk=None, saturation=None, min_angle_deg=5.0, source=""):
+    """Detect the central disk, its deficit lines and their crossings without a prediction.
+
+    Parameters
+    ----------
+    image : ndarray (rows, cols)
+    disk : (x, y, radius) in px or Disk, optional
+        Skip the disk search.
+    saturation : float, optional
+        Pixel value at which the detector saturates (the integer maximum of
+        the file type); pixels at that value are left out.
+    min_angle_deg : float
+        Crossings of lines meeting at a smaller angle are not reported.
+
+    Returns
+    -------
+    Detection
+
+    Notes
+    -----
+    Candidates come from a Hough transform at several scales
+    (:func:`_hough_candidates`); each is measured by profiles across it on
+    short segments (:mod:`laueline.images.lineprofile`): a Gaussian dip for
+    a first position, then the line's own template for the position of the
+    deficit minimum; a curved line is fitted through the segment minima.
+    Lines are then measured again with the neighbourhoods of all other lines
+    left out of their profiles.
+    """
+    warnings = []
+    image, valid, disk, n_saturated = _prepare(image, disk, saturation, warnings)
+    rows, cols = image.shape
+    flat, interior, noise = _flatten(image, valid, disk, 1.0)
+    cand = _hough_candidates(flat, interior, disk, noise)
+    lines = []
+    if len(cand):
+        # coarse screening: candidates alone, Gaussian positions, long segments
+        order = np.argsort(-cand[:, 3])
+        cand = cand[order]
+        first = _measure_lines(flat, interior, disk, noise, _chords(cand[:, 0], cand[:, 1], disk),
+                               cand[:, 2], 1.0 + cand[:, 2].max(), template=False,
+                               seg_len=16.0, min_z=8.0, screening=True)
+        lines = _merge([ln for ln in first.lines if ln is not None], disk)
+    if lines:  # the background window from the widest line seen
+        flat, interior, noise = _flatten(image, valid, disk,
+                                         float(np.max([ln.width_px for ln in lines])) / _FWHM)
+    for rounds in range(2):
+        if not lines:
+            break
+        lines.sort(key=lambda ln: -ln.snr)
+        sig = np.array([ln.width_px / _FWHM for ln in lines])
+        # first round: a line hides only weaker ones (spurious starts are weak);
+        # second round: every line hides every other
+        masks = (np.array([ln.offset_px for ln in lines]),
+                 np.radians([ln.normal_angle_deg for ln in lines]), 2.5 * sig + 1.5,
+                 np.arange(len(lines)) if rounds == 0 else None)
+        again = _measure_lines(flat, interior, disk, noise, _line_polylines(lines, disk), sig,
+                               1.5, masks=masks, min_z=8.0, min_fraction=0.25)
+        lines = _merge([ln for ln in again.lines if ln is not None], disk)
     _flag_lines(lines, image, valid, disk, warnings)
     lines.sort(key=lambda ln: -ln.snr)
-
     pairs, xy, sig, ang = _crossings(lines, disk, min_angle_deg)
     if len([ln for ln in lines if not ln.flag]) < 2:
         warnings.append("fewer than two lines found in the disk")
     return Detection(shape=(rows, cols), disk=disk, lines=lines, crossing_lines=pairs,
                      crossing_px=xy, crossing_sigma_px=sig, crossing_angle_deg=ang,
-                     noise=noise, saturated_px=int(at_top.sum()) if saturated.any() else 0,
-                     warnings=warnings, source=str(source))
+                     noise=noise, saturated_px=n_saturated, warnings=warnings,
+                     source=str(source))
 
 
-def _fit_all(flat, valid, starts, exclude_others, disk, noise):
-    fits = []
-    gap = _gap_matrix([st[:3] for st in starts], disk) if starts else None
-    for k, st in enumerate(starts):
-        others = [o for j, o in enumerate(starts)
-                  if j != k and gap[j, k] > 4.0] if exclude_others else []
-        res = _fit_line(flat, valid, st, others, disk, noise)
-        if res is None:
-            continue
-        p, cov, npx = res
-        if p[3] < 8 * math.sqrt(max(cov[3, 3], 0)) or cov[0, 0] > 0.25:
-            continue  # not significant, or not located to half a pixel
-        if _gap_matrix([p[:3], st[:3]], disk)[0, 1] > 4.0:
-            continue  # wandered off to another feature
-        fits.append((p, cov, npx))
-    return _merge_duplicates(fits, disk)
+# ---------------------------------------------------------------------------
+# seeded search
+# ---------------------------------------------------------------------------
+
+def detect_seeded(image, pattern, detector, *, disk=None, saturation=None, search_px=3.0,
+                  line_width_px=None, min_z=5.0, min_angle_deg=5.0, source=""):
+    """Measure the lines of a predicted pattern in an image.
+
+    Parameters
+    ----------
+    image : ndarray (rows, cols)
+    pattern : laueline.lines.Pattern
+        The prediction (:func:`laueline.lines.predict`); its exact loci,
+        mapped to pixels by ``detector`` (centre, scale, rotation, mirror and
+        elliptical distortion), are where the lines are sought.
+    detector : laueline.detector.Detector
+    disk : (x, y, radius) px or Disk, optional
+        By default found in the image.
+    search_px : float
+        How far (px) a measured minimum may lie from its predicted locus.
+    line_width_px : float, optional
+        Expected Gaussian sigma of the lines (px); by default estimated from
+        the image.
+    min_z : float
+        Combined significance a line needs to count as found (weak lines
+        are found where expected, so this can be lower than blind).
+
+    Returns
+    -------
+    Detection
+        Lines in the order of ``pattern`` (those found), each with its
+        ``hkl``, the measured minima on every segment (``minima_px``) and
+        their covariances (``minima_covariance_px``); ``missing`` lists the
+        predicted lines not found.
+    """
+    warnings = []
+    image, valid, disk, n_saturated = _prepare(image, disk, saturation, warnings)
+    rows, cols = image.shape
+    polylines = detector.to_pixels(np.asarray(pattern.points_mrad, float))
+    if line_width_px is None:
+        flat, interior, noise = _flatten(image, valid, disk, 1.0)
+        probe = _measure_lines(flat, interior, disk, noise, polylines, 1.5, search_px + 2.0,
+                               template=False, seg_len=24.0, min_z=min_z, screening=True)
+        widths = [ln.width_px / _FWHM for ln in probe.lines if ln is not None]
+        sigma = float(np.median(widths)) if widths else 1.5
+        widest = float(np.max(widths)) if widths else sigma
+        if _window(disk, widest) > _window(disk, 1.0):  # a wider background window
+            flat, interior, noise = _flatten(image, valid, disk, widest)
+    else:
+        sigma = float(line_width_px)
+        flat, interior, noise = _flatten(image, valid, disk, sigma)
+    rho, ang = _straight(polylines, np.asarray(disk.center_px))
+    # a predicted line hides only weaker predicted ones: a line predicted but
+    # not there (dynamically extinguished) must not hide a stronger one
+    rank = np.argsort(np.argsort(-np.asarray(pattern.strength, float)))
+    masks = (rho, ang, np.full(len(rho), 2.5 * sigma + 1.5), rank)
+    measured = _measure_lines(flat, interior, disk, noise, polylines, sigma, search_px,
+                              masks=masks, min_z=min_z, min_fraction=0.4)
+    # once more from where the lines were found, with each line's own width and
+    # only the lines actually seen left out of the others' profiles
+    found = np.flatnonzero(measured.found)
+    if len(found):
+        seen = [measured.lines[i] for i in found]
+        sig = np.array([ln.width_px / _FWHM for ln in seen])
+        rank = np.argsort(np.argsort([-ln.snr for ln in seen]))  # weak lines hide no strong one
+        masks = (np.array([ln.offset_px for ln in seen]),
+                 np.radians([ln.normal_angle_deg for ln in seen]), 2.5 * sig + 1.5, rank)
+        again = _measure_lines(flat, interior, disk, noise, _line_polylines(seen, disk), sig,
+                               1.5, masks=masks, min_z=min_z, min_fraction=0.25)
+        for k, i in enumerate(found):
+            measured.lines[i] = again.lines[k] if again.found[k] else measured.lines[i]
+    lines, missing = [], []
+    for i, ln in enumerate(measured.lines):
+        hkl = tuple(int(v) for v in pattern.hkl[i])
+        if ln is None:
+            missing.append(hkl)
+        else:
+            ln.hkl = hkl
+            lines.append(ln)
+    if missing:
+        warnings.append(f"{len(missing)} predicted lines not found: "
+                        + ", ".join(" ".join(map(str, h)) for h in missing[:8])
+                        + (" ..." if len(missing) > 8 else ""))
+    pairs, xy, sig, ang_c = _crossings(lines, disk, min_angle_deg)
+    return Detection(shape=(rows, cols), disk=disk, lines=lines, crossing_lines=pairs,
+                     crossing_px=xy, crossing_sigma_px=sig, crossing_angle_deg=ang_c,
+                     noise=noise, saturated_px=n_saturated, warnings=warnings,
+                     source=str(source), missing=missing)
 
 
 def _fraction_in_frame(disk, rows, cols):
@@ -519,42 +889,6 @@ def _gap_matrix(params, disk, samples=9):
     d = _distance(rho[None, :, None], ang[None, :, None], kappa[None, :, None],
                   u[:, None, :], v[:, None, :], 0.0, 0.0)
     return np.max(np.abs(d), axis=2)
-
-
-def _merge_duplicates(fits, disk, key=None):
-    """Keep the most significant of fits that trace the same line (within 2 px)."""
-    key = key or (lambda f: -f[0][3] / math.sqrt(max(f[1][3, 3], 1e-30)))
-    fits = sorted(fits, key=key)
-    if not fits:
-        return fits
-    gap = _gap_matrix([f[0][:3] for f in fits], disk)
-    kept = []
-    for i in range(len(fits)):
-        if not any(gap[i, j] < 2.0 for j in kept):
-            kept.append(i)
-    return [fits[i] for i in kept]
-
-
-def _make_line(p, cov, npx, disk):
-    rho, ang, kappa, depth, sigma, base = p
-    c3 = cov[:3, :3]
-    # keep the angle in (-pi, pi] with a non-negative offset for a unique description
-    if rho < 0:
-        rho, ang, kappa = -rho, ang + np.pi, -kappa
-        flip = np.diag([-1.0, 1.0, -1.0])
-        c3 = flip @ c3 @ flip
-    ang = (ang + np.pi) % (2 * np.pi) - np.pi
-    cx, cy = disk.center_px
-    span = math.sqrt(max(disk.radius_px ** 2 - rho ** 2, 0.0))
-    s = np.linspace(-span, span, 64)
-    ca, sa = math.cos(ang), math.sin(ang)
-    offset = rho + kappa * s * s
-    pts = np.stack([cx + offset * ca - s * sa, cy + offset * sa + s * ca], axis=1)
-    inside = np.hypot(pts[:, 0] - cx, pts[:, 1] - cy) <= disk.radius_px + 1e-9
-    snr = float(depth / math.sqrt(max(cov[3, 3], 1e-30)))
-    return DetectedLine(float(math.degrees(ang)), float(rho), float(kappa),
-                        float(depth / (1 + base)) if base > -1 else float(depth),
-                        float(sigma * _FWHM), c3, snr, pts[inside], int(npx))
 
 
 def _flag_lines(lines, image, valid, disk, warnings):

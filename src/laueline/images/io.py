@@ -3,6 +3,9 @@
 Images are returned as float64 arrays indexed ``[row, col]``; pixel (x, y)
 is ``img[y, x]`` (see :mod:`laueline.images`).  TIFF is read and written with
 tifffile (8-, 16-, 32-bit integer and 32-, 64-bit float), PNG with imageio.
+Microscope files (.dm3, .dm4, .emd, .mrc, .mib, .blo, .hspy, .zspy) are read
+through rosettasciio by :mod:`laueline.io.microscope`, which also returns
+their calibration; :func:`read_image` hands them over to it.
 """
 
 from __future__ import annotations
@@ -18,8 +21,18 @@ __all__ = ["read_image", "write_image", "IMAGE_SUFFIXES"]
 IMAGE_SUFFIXES = (".tif", ".tiff", ".png", ".npy")
 
 
-def read_image(path):
+def read_image(path, index=None, allow_large=False):
     """Read a 2-D pattern.
+
+    Parameters
+    ----------
+    path : str or Path
+    index : int or tuple of int, optional
+        The pattern of a stack (a 3-D TIFF or .npy, or a microscope file
+        holding several patterns): a flat index or one per leading axis.
+    allow_large : bool
+        Accept images above :data:`laueline.io.microscope.MAX_SIDE_PX` on
+        a side.
 
     Returns
     -------
@@ -31,10 +44,15 @@ def read_image(path):
     path = Path(path)
     if not path.is_file():
         raise InputError(f"cannot read {path}: no such file")
+    from ..io.microscope import MAX_SIDE_PX, MICROSCOPE_SUFFIXES, read_pattern
+
     suffix = path.suffix.lower()
+    if suffix in MICROSCOPE_SUFFIXES:
+        read = read_pattern(path, index=index, allow_large=allow_large)
+        return read.image, read.saturation
     if suffix not in IMAGE_SUFFIXES:
         raise InputError(f"{path}: unsupported image type '{suffix}'; use "
-                         f"{', '.join(IMAGE_SUFFIXES)}")
+                         f"{', '.join(IMAGE_SUFFIXES + tuple(MICROSCOPE_SUFFIXES))}")
     try:
         if suffix in (".tif", ".tiff"):
             import tifffile
@@ -54,11 +72,17 @@ def read_image(path):
         rgb = data[..., :3]
         if np.all(rgb == rgb[..., :1]):
             data = rgb[..., 0]
+    if index is not None and data.ndim > 2:
+        data = _pick(path, data, index)
     if data.ndim != 2:
         raise InputError(f"{path}: a pattern must be a 2-D image; this file holds an array "
                          f"of shape {data.shape}")
     if data.size == 0 or min(data.shape) < 16:
         raise InputError(f"{path}: the image is empty or too small ({data.shape})")
+    if max(data.shape) > MAX_SIDE_PX and not allow_large:
+        raise InputError(f"{path}: the image is {data.shape[1]} x {data.shape[0]} px, above the "
+                         f"{MAX_SIDE_PX} x {MAX_SIDE_PX} limit; allow_large "
+                         "(--allow-large-image) reads it")
     if not (np.issubdtype(data.dtype, np.integer) or np.issubdtype(data.dtype, np.floating)):
         raise InputError(f"{path}: unsupported pixel type {data.dtype}")
     saturation = float(np.iinfo(data.dtype).max) if np.issubdtype(data.dtype, np.integer) \
@@ -67,6 +91,21 @@ def read_image(path):
     if not np.all(np.isfinite(image)):
         raise InputError(f"{path}: the image holds non-finite values")
     return image, saturation
+
+
+def _pick(path, data, index):
+    """One image of a stack: ``index`` flat or one per leading axis."""
+    lead = data.shape[:-2]
+    idx = [int(v) for v in np.atleast_1d(index)]
+    total = int(np.prod(lead))
+    if len(idx) == 1 and len(lead) > 1:
+        if not 0 <= idx[0] < total:
+            raise InputError(f"{path}: index {idx[0]} is outside the {total} images")
+        idx = [int(v) for v in np.unravel_index(idx[0], lead)]
+    if len(idx) != len(lead) or any(not 0 <= i < n for i, n in zip(idx, lead)):
+        raise InputError(f"{path}: index {idx} does not fit the stack shape "
+                         f"{' x '.join(map(str, lead))}")
+    return data[tuple(idx)]
 
 
 def write_image(path, image, force=False):

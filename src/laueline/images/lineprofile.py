@@ -1,0 +1,555 @@
+"""Deficit-line profiles: sampling across lines and a batched fit of their minima.
+
+A dynamical HOLZ deficit line is not a symmetric Gaussian dip: it is
+asymmetric and carries side fringes.  Its profile across the line is
+modelled by a Gauss-Hermite series (van der Marel and Franx, ApJ 407, 525,
+1993),
+
+    f(d) = b0 + b1 d - D exp(-u^2 / 2) [1 + c u^2 + a u^3],   u = (d - x0) / s,
+
+with depth D, width s, an odd (asymmetry) term a and an even term c
+(c < 0 sharpens the core and raises bright side fringes, c > 0 flattens
+it); b0 + b1 d takes up what the background model left.  The series lacks
+the linear term on purpose: the bracketed dip then has zero slope at u = 0
+and, for |a| <= 0.4 and c <= 0.45, its deepest point there, so x0 is the
+position of the deficit minimum itself, not the centre of a Gaussian that
+an asymmetric line would pull aside.  Weak Gaussian priors (a within 0.2,
+c within 0.3, one sigma) keep the shape terms at zero unless the data ask
+for them.
+
+Profiles are taken on short segments of a line: the pixels of the
+flattened image near each segment centre, binned by their exact distance
+across the line (no interpolation).  Pixels near other lines are left out.  All profiles of all lines are fitted
+together by a damped Gauss-Newton (Levenberg-Marquardt) iteration
+vectorised over profiles.
+"""
+
+from __future__ import annotations
+
+import math
+from dataclasses import dataclass
+
+import numpy as np
+
+__all__ = ["ProfileFit", "sample_profiles", "fit_profiles", "fit_line_offsets"]
+
+# one-sigma priors: none on position, depth, width and level; the background
+# slope is small after flattening (0.5 % per px), which keeps a profile cut on
+# one side (near the rim or another line) from trading slope against position
+_PRIOR_SD = np.array([np.inf, np.inf, np.inf, np.inf, 0.005, 0.2, 0.3])
+_N_PARAMS = 7  # x0, depth, width, base, slope, asymmetry, fringe
+
+
+@dataclass
+class ProfileFit:
+    """Batched fits of M profiles (arrays of shape (M,) unless noted).
+
+    Attributes
+    ----------
+    minimum : offset (px, along the normal) of the profile's minimum
+    minimum_var : its variance (px^2)
+    depth, depth_sigma : fitted D (relative to the flattened background)
+    width : fitted s (px; the FWHM of the Gaussian core is 2.355 s)
+    asymmetry, fringe : a and c of the Gauss-Hermite series
+    ok : usable fits
+    params : (M, 7) all parameters
+    """
+
+    minimum: np.ndarray
+    minimum_var: np.ndarray
+    depth: np.ndarray
+    depth_sigma: np.ndarray
+    width: np.ndarray
+    asymmetry: np.ndarray
+    fringe: np.ndarray
+    ok: np.ndarray
+    params: np.ndarray
+
+
+def sample_profiles(flat, valid, points, normals, half_width, segment, others=None,
+                    step=0.5):
+    """Profiles across lines at segment centres, from the pixels themselves.
+
+    Every usable pixel within ``segment / 2`` of a segment centre along the
+    line and within ``half_width`` across it enters the profile at its exact
+    distance d from the line; pixels are binned by d in ``step``-px bins and
+    each bin keeps its mean intensity, its pixel count and its mean d.  No
+    interpolation: an interpolated profile would be blurred (moving the
+    minimum of an asymmetric dip) and distorted where the line runs along a
+    pixel row.
+
+    Parameters
+    ----------
+    flat : ndarray (rows, cols)
+        Flattened image (background removed, 0 on the background).
+    valid : ndarray of bool (rows, cols)
+        Usable pixels.
+    points, normals : ndarray (M, 2)
+        Segment centres (x, y) px and unit normals.
+    half_width : float or ndarray (M,)
+        Profiles reach from -half_width to +half_width px along the normal.
+    segment : float
+        Length of a segment along the line (px).
+    others : tuple of (M, J) arrays, optional
+        ``(distance, along_normal, along_tangent, keep_out)``: signed
+        distance of each other (straight) line from each segment centre,
+        the components of that line's normal along the segment's normal and
+        tangent, and the half width (px) to keep clear of it; 0 for none.
+    step : float
+        Bin width across the line (px).
+
+    Returns
+    -------
+    d : ndarray (M, n)
+        Mean distance across the line of each bin (its centre when empty), px.
+    profile : ndarray (M, n)
+        Mean flattened intensity; 0 where nothing is usable.
+    count : ndarray (M, n)
+        Number of pixels averaged (0: left out).
+    crowded : ndarray of bool (M,)
+        Another line passes through the sampled patch.
+    """
+    points = np.asarray(points, float)
+    normals = np.asarray(normals, float)
+    m_count = len(points)
+    rows, cols = flat.shape
+    hw_m = np.broadcast_to(np.asarray(half_width, float), (m_count,))
+    hw = float(np.max(hw_m)) if m_count else 1.0
+    patch = (2 * (int(math.ceil(math.hypot(hw, segment / 2.0))) + 1) + 1) ** 2
+    chunk = max(1, _MAX_SAMPLES // patch)
+    if m_count > chunk:  # memory bounded by a few million samples at a time
+        parts = []
+        for lo in range(0, m_count, chunk):  # chunks of segments, not single ones
+            sl = slice(lo, lo + chunk)
+            sub = None if others is None else tuple(a[sl] for a in others)
+            parts.append(_sample(flat, valid, points[sl], normals[sl], hw_m[sl], hw, segment,
+                                 sub, step))
+        return tuple(np.concatenate(k) for k in zip(*parts))
+    return _sample(flat, valid, points, normals, hw_m, hw, segment, others, step)
+
+
+_MAX_SAMPLES = 4_000_000
+
+
+def _sample(flat, valid, points, normals, hw_m, hw, segment, others, step):
+    """:func:`sample_profiles` for one chunk of segments (all sharing the bins of ``hw``)."""
+    m_count = len(points)
+    rows, cols = flat.shape
+    n_bins = int(math.ceil(2 * hw / step))
+    centres = -hw + step * (np.arange(n_bins) + 0.5)
+    reach_px = int(math.ceil(math.hypot(hw, segment / 2.0))) + 1
+    off = np.arange(-reach_px, reach_px + 1)
+    base = np.round(points).astype(int)
+    ix = base[:, 0, None, None] + off[None, None, :]
+    iy = base[:, 1, None, None] + off[None, :, None]
+    dx = ix - points[:, 0, None, None]
+    dy = iy - points[:, 1, None, None]
+    nx, ny = normals[:, 0, None, None], normals[:, 1, None, None]
+    d = dx * nx + dy * ny
+    v = -dx * ny + dy * nx
+    inframe = (ix >= 0) & (ix < cols) & (iy >= 0) & (iy < rows)
+    ixc, iyc = np.clip(ix, 0, cols - 1), np.clip(iy, 0, rows - 1)
+    ixc, iyc = np.broadcast_to(ixc, d.shape), np.broadcast_to(iyc, d.shape)
+    use = inframe & (np.abs(v) <= segment / 2.0) & (np.abs(d) < hw_m[:, None, None]) \
+        & valid[iyc, ixc]
+    crowded = np.zeros(m_count, dtype=bool)
+    if others is not None:
+        dist, along_n, along_t, keep = others
+        # the other line's distance at (d, v) is dist + d along_n + v along_t;
+        # only (segment, line) pairs whose line comes near the sampled patch
+        reach = np.abs(dist) - hw * np.abs(along_n) - 0.5 * segment * np.abs(along_t)
+        m_idx, j_idx = np.nonzero((reach < keep) & (keep > 0))
+        crowded[m_idx] = True
+        if len(m_idx):
+            near = np.abs(dist[m_idx, j_idx][:, None, None]
+                          + d[m_idx] * along_n[m_idx, j_idx][:, None, None]
+                          + v[m_idx] * along_t[m_idx, j_idx][:, None, None]) \
+                < keep[m_idx, j_idx][:, None, None]
+            hits = np.zeros(d.shape, dtype=np.int32)
+            np.add.at(hits, m_idx, near.astype(np.int32))
+            use &= hits == 0
+    seg_id = np.broadcast_to(np.arange(m_count)[:, None, None], d.shape)[use]
+    bins = np.clip(((d[use] + hw) / step).astype(int), 0, n_bins - 1)
+    key = seg_id * n_bins + bins
+    size = m_count * n_bins
+    count = np.bincount(key, minlength=size).astype(float).reshape(m_count, n_bins)
+    total = np.bincount(key, flat[iyc[use], ixc[use]], minlength=size).reshape(m_count, n_bins)
+    dsum = np.bincount(key, d[use], minlength=size).reshape(m_count, n_bins)
+    profile = np.divide(total, count, out=np.zeros_like(total), where=count > 0)
+    dmean = np.where(count > 0, dsum / np.maximum(count, 1), centres[None, :])
+    return dmean, profile, count, crowded
+
+
+def _model(p, d):
+    """Profile model and Jacobian; p (M, 7), d (n,) -> f (M, n), J (M, n, 7)."""
+    x0, depth, width, base, slope, a, c = (p[:, k:k + 1] for k in range(_N_PARAMS))
+    u = (d - x0) / width
+    u2 = u * u
+    e = np.exp(-0.5 * u2)
+    g = e * (1.0 + c * u2 + a * u2 * u)
+    dg = e * (-u * (1.0 + c * u2 + a * u2 * u) + 2.0 * c * u + 3.0 * a * u2)
+    f = base + slope * d - depth * g
+    jac = np.empty(f.shape + (_N_PARAMS,))
+    jac[..., 0] = depth * dg / width
+    jac[..., 1] = -g
+    jac[..., 2] = depth * dg * u / width
+    jac[..., 3] = 1.0
+    jac[..., 4] = d
+    jac[..., 5] = -depth * e * u2 * u
+    jac[..., 6] = -depth * e * u2
+    return f, jac
+
+
+def fit_profiles(d, profile, count, start_x0, start_width, noise, *, max_width=None,
+                 search=2.0, shape_terms=True, iterations=20):
+    """Fit the Gauss-Hermite deficit model to every profile at once.
+
+    Parameters
+    ----------
+    d, profile, count :
+        As returned by :func:`sample_profiles`.
+    start_x0, start_width : ndarray (M,) or float
+        Start values of the dip centre and width (px).
+    noise : float
+        Noise of one flattened pixel (relative units); a profile point
+        averaged over n pixels has noise / sqrt(n) before the residual scale.
+    max_width : float, optional
+        Largest width s accepted (px).
+    search : float
+        The fit starts from the deepest point of the smoothed profile within
+        this distance (px) of ``start_x0``.
+    shape_terms : bool
+        Free the asymmetry and fringe terms after a plain Gaussian fit;
+        False stops at the Gaussian (as a start for :func:`template_minima`).
+
+    Returns
+    -------
+    ProfileFit
+    """
+    m_count = profile.shape[0]
+    start_x0 = np.broadcast_to(np.asarray(start_x0, float), (m_count,))
+    start_width = np.broadcast_to(np.asarray(start_width, float), (m_count,))
+    max_width = float(max_width or max(3.0 * float(np.max(start_width)), 4.0))
+    w = np.sqrt(count) / noise                                   # (M, n) inverse sigmas
+    used = count > 0
+    base0 = _masked_median(profile, used)
+    # start at the deepest point of the lightly smoothed profile near the start
+    from scipy.ndimage import uniform_filter1d
+
+    smooth = uniform_filter1d(np.where(used, profile, base0[:, None]), 3, axis=1)
+    near = np.abs(d - start_x0[:, None]) <= search + 0.5
+    at = np.argmin(np.where(near, smooth, np.inf), axis=1)
+    dip0 = base0 - smooth[np.arange(m_count), at]
+    p = np.stack([d[np.arange(m_count), at], np.maximum(dip0, noise), start_width, base0,
+                  np.zeros(m_count), np.zeros(m_count), np.zeros(m_count)], 1)
+    # first a plain Gaussian dip (shape terms held at zero), then everything
+    held = _PRIOR_SD.copy()
+    held[5:] = 1e-6
+    if shape_terms:
+        p = _levenberg_marquardt(p, d, profile, used, w, noise, held, max_width, iterations)
+    p, r, jac, a_mat = _levenberg_marquardt(p, d, profile, used, w, noise,
+                                            _PRIOR_SD if shape_terms else held, max_width,
+                                            iterations, final=True)
+    n_used = used.sum(axis=1)
+    dof = np.maximum(n_used - _N_PARAMS, 1)
+    s2 = np.sum(r * r, axis=1) / dof
+    s2 = s2 * _correlation_factor(r, used)
+    ok = n_used >= _N_PARAMS + 2
+    cov = np.full((m_count, _N_PARAMS, _N_PARAMS), np.nan)
+    good_mat = ok & np.all(np.isfinite(a_mat), axis=(1, 2))
+    if good_mat.any():
+        sign, _ = np.linalg.slogdet(a_mat[good_mat])
+        idx = np.flatnonzero(good_mat)[sign > 0]
+        cov[idx] = np.linalg.inv(a_mat[idx]) * s2[idx, None, None]
+        ok &= np.isin(np.arange(m_count), idx)
+    minimum, depth, width, a, c = p[:, 0], p[:, 1], p[:, 2], p[:, 5], p[:, 6]
+    var = cov[:, 0, 0]
+    depth_sigma = np.sqrt(np.abs(cov[:, 1, 1]))
+    ok &= np.isfinite(var) & (var > 0) & (depth > 0) & (width < 0.98 * max_width)
+    ok &= (minimum > d[:, 0] + width) & (minimum < d[:, -1] - width)
+    return ProfileFit(minimum, var, depth, depth_sigma, width, a, c, ok, p)
+
+
+def _levenberg_marquardt(p, d, profile, used, w, noise, prior_sd, max_width, iterations,
+                         final=False):
+    m_count = len(p)
+    prior_w = 1.0 / prior_sd
+    finite_prior = np.isfinite(prior_sd)
+
+    def cost_and_parts(p):
+        f, jac = _model(p, d)
+        r = (f - profile) * w
+        prior = np.where(finite_prior, p * np.where(finite_prior, prior_w, 0.0), 0.0)
+        return np.sum(r * r, axis=1) + np.sum(prior * prior, axis=1), r, jac
+
+    lam = np.full(m_count, 1e-2)
+    cost, r, jac = cost_and_parts(p)
+    prior_diag = np.where(finite_prior, prior_w ** 2, 0.0)
+    for _ in range(iterations):
+        jw = jac * w[..., None]
+        a_mat = np.matmul(jw.transpose(0, 2, 1), jw) + np.diag(prior_diag)[None]
+        grad = np.matmul(jw.transpose(0, 2, 1), r[..., None])[..., 0] + prior_diag[None] * p
+        diag = np.einsum("mii->mi", a_mat)
+        damped = a_mat + (lam[:, None] * np.maximum(diag, 1e-12))[:, :, None] * np.eye(_N_PARAMS)
+        try:
+            step = -np.linalg.solve(damped, grad[..., None])[..., 0]
+        except np.linalg.LinAlgError:
+            break
+        trial = p + step
+        trial[:, 2] = np.clip(trial[:, 2], 0.3, max_width)
+        trial[:, 5] = np.clip(trial[:, 5], -0.4, 0.4)
+        trial[:, 6] = np.clip(trial[:, 6], -0.8, 0.45)
+        trial[:, 0] = np.clip(trial[:, 0], d[:, 0], d[:, -1])
+        new_cost, new_r, new_jac = cost_and_parts(trial)
+        better = new_cost < cost
+        p = np.where(better[:, None], trial, p)
+        cost = np.where(better, new_cost, cost)
+        r = np.where(better[:, None], new_r, r)
+        jac = np.where(better[:, None, None], new_jac, jac)
+        lam = np.where(better, lam / 3.0, lam * 4.0)
+        if np.all(lam > 1e6):
+            break
+    if not final:
+        return p
+    jw = jac * w[..., None]
+    a_mat = np.matmul(jw.transpose(0, 2, 1), jw) + np.diag(prior_diag)[None]
+    return p, r, jac, a_mat
+
+
+def _masked_median(profile, used):
+    masked = np.where(used, profile, np.nan)
+    with np.errstate(all="ignore"):
+        out = np.nanmedian(masked, axis=1)
+    return np.nan_to_num(out)
+
+
+def _correlation_factor(r, used):
+    """Variance inflation for correlated neighbouring profile points.
+
+    Neighbouring points share pixels (bilinear interpolation, detector blur),
+    so the residual scatter overstates the information; the factor
+    (1 + rho) / (1 - rho) with rho the lag-1 correlation of the residuals
+    (pooled over all profiles) is the usual effective-sample-size correction
+    of an AR(1) series.
+    """
+    both = used[:, 1:] & used[:, :-1]
+    if both.sum() < 20:
+        return 1.0
+    a, b = r[:, 1:][both], r[:, :-1][both]
+    rho = float(np.sum(a * b) / math.sqrt(np.sum(a * a) * np.sum(b * b) + 1e-300))
+    rho = min(max(rho, 0.0), 0.8)
+    return (1 + rho) / (1 - rho)
+
+
+def fit_line_offsets(s, offset, var, weight_ok, span, *, curvature_sagitta_px=0.1):
+    """Weighted fits offset = r + beta s + kappa s^2 of each line's segment minima.
+
+    Parameters
+    ----------
+    s, offset, var : ndarray (L, K)
+        Coordinate along each line, measured offset along its normal and its
+        variance, for K segments of L lines.
+    weight_ok : ndarray of bool (L, K)
+        Segments to use.
+    span : ndarray (L,)
+        Half chord length (px); a Gaussian prior holds the sagitta
+        kappa span^2 to about ``curvature_sagitta_px`` unless the data insist.
+
+    Returns
+    -------
+    coef : ndarray (L, 3)
+        r, beta, kappa.
+    cov : ndarray (L, 3, 3)
+        Scaled up by chi2/dof when the scatter exceeds the variances (Birge).
+    chi2, dof : ndarray (L,)
+    """
+    wgt = np.where(weight_ok, 1.0 / np.where(var > 0, var, np.inf), 0.0)
+    design = np.stack([np.ones_like(s), s, s * s], axis=2)          # (L, K, 3)
+    a_mat = np.einsum("lk,lki,lkj->lij", wgt, design, design)
+    kappa_prior = curvature_sagitta_px / np.maximum(span, 1.0) ** 2
+    a_mat[:, 2, 2] += 1.0 / kappa_prior ** 2
+    rhs = np.einsum("lk,lki,lk->li", wgt, design, offset)
+    a_mat[:, 0, 0] += 1e-12
+    a_mat[:, 1, 1] += 1e-12
+    cov = np.linalg.inv(a_mat)
+    coef = np.einsum("lij,lj->li", cov, rhs)
+    resid = offset - np.einsum("lki,li->lk", design, coef)
+    chi2 = np.sum(wgt * resid * resid, axis=1)
+    dof = np.maximum(weight_ok.sum(axis=1) - 3, 1)
+    cov = cov * np.maximum(chi2 / dof, 1.0)[:, None, None]
+    return coef, cov, chi2, dof
+
+
+def template_minima(d, profile, count, line_of, fit, noise, *, clean=None, step=0.2,
+                    passes=2, refit=True):
+    """Minimum positions from a profile template taken from each line itself.
+
+    The Gauss-Hermite series cannot follow every dynamical profile; a biased
+    shape biases the minimum.  Here the profiles of one line, shifted by
+    their fitted positions and normalised by their depth, are averaged on a
+    fine grid into that line's own template, whose minimum (a parabola
+    through the template's deepest 0.8 px) fixes the position of the deficit
+    minimum relative to the template; every profile is then fitted by the
+    template (shift, depth, background b0 + b1 d) and the template rebuilt.
+
+    Parameters
+    ----------
+    d, profile, count : as from :func:`sample_profiles`
+    line_of : ndarray of int (M,)
+        The line each profile belongs to.
+    fit : ProfileFit
+        Start values (Gauss-Hermite fits); profiles with ``ok`` False do
+        not enter the templates.
+    noise : float
+        Noise of one flattened pixel.
+    clean : ndarray of bool (M,), optional
+        Profiles free of other lines; only they build the templates of
+        lines that have at least three of them.
+    refit : bool
+        Fit every profile with its template.  Without, the positions are
+        the Gaussian centres of ``fit`` plus the offset from a Gaussian
+        centre to the minimum that the template shows: less noisy for weak
+        lines, whose single profiles cannot carry a template fit.
+
+    Returns
+    -------
+    minimum, minimum_var : ndarray (M,)
+    ok : ndarray of bool (M,)
+    template_offset : ndarray (L,)
+        Minimum of each line's template relative to its origin (px).
+    template_var : ndarray (L,)
+        Variance of that minimum (px^2), shared by all profiles of the line:
+        the template averages the profiles that build it, so its minimum is
+        as uncertain as their weighted mean position.
+    """
+    from scipy import ndimage
+
+    line_of = np.asarray(line_of, int)
+    n_lines = int(line_of.max()) + 1 if len(line_of) else 0
+    p = fit.params.copy()
+    shift, depth, base, slope = p[:, 0].copy(), p[:, 1].copy(), p[:, 3].copy(), p[:, 4].copy()
+    ok = fit.ok.copy()
+    builds = ok.copy()
+    if clean is not None:
+        n_clean = np.bincount(line_of, ok & clean, minlength=n_lines)
+        builds = ok & (clean | (n_clean < 3)[line_of])
+    half = float(np.max(np.abs(d)))
+    grid = np.arange(-half, half + step / 2, step)
+    n_grid = len(grid)
+    w = np.sqrt(count) / noise
+    offset = np.zeros(max(n_lines, 1))
+    var = np.full(len(shift), np.nan)
+    width = np.maximum(fit.width, 0.5)
+    for _ in range(passes):
+        # template: normalised deficit of every usable profile, on the fine grid
+        rel = d - shift[:, None]
+        norm = (profile - base[:, None] - slope[:, None] * d) / depth[:, None]
+        use = (count > 0) & (ok & builds)[:, None] & (np.abs(rel) < half)
+        bins = np.clip(np.round((rel + half) / step).astype(int), 0, n_grid - 1)
+        key = (line_of[:, None] * n_grid + bins)[use]
+        weight = (count * depth[:, None] ** 2)[use]
+        total = np.bincount(key, weight * norm[use], minlength=n_lines * n_grid)
+        wsum = np.bincount(key, weight, minlength=n_lines * n_grid)
+        template = np.divide(total, wsum, out=np.zeros_like(total), where=wsum > 0)
+        template = template.reshape(n_lines, n_grid)
+        have = wsum.reshape(n_lines, n_grid) > 0
+        # fill empty bins from their neighbours, then a light smoothing (one bin)
+        for k in range(n_lines):
+            if have[k].sum() >= 2 and not have[k].all():
+                template[k] = np.interp(grid, grid[have[k]], template[k][have[k]])
+        template = ndimage.gaussian_filter1d(template, 1.0, axis=1, mode="nearest")
+        # each template's minimum near its origin: a parabola through 5 bins
+        line_width = np.bincount(line_of, width, minlength=n_lines) / \
+            np.maximum(np.bincount(line_of, minlength=n_lines), 1)
+        near = np.abs(grid)[None, :] <= np.maximum(1.5 * line_width, 1.0)[:, None]
+        at = np.argmin(np.where(near, template, np.inf), axis=1)
+        # a parabola through the template's core (+-0.7 sigma): wide enough to
+        # average the template's noise, narrow enough to follow its minimum
+        reach = np.clip(np.round(0.7 * line_width / step).astype(int), 2, 20)
+        big = int(reach.max())
+        at = np.clip(at, big, n_grid - 1 - big)
+        offs = np.arange(-big, big + 1)
+        yv = np.take_along_axis(template, at[:, None] + offs[None, :], axis=1)
+        wv = (np.abs(offs)[None, :] <= reach[:, None]).astype(float)
+        xv = offs * step
+        design = np.stack([np.ones_like(xv), xv, xv * xv], 1)           # (W, 3)
+        normal = np.einsum("lw,wi,wj->lij", wv, design, design)
+        coef = np.linalg.solve(normal, np.einsum("lw,wi,lw->li", wv, design, yv)[..., None])[..., 0]
+        curv = coef[:, 2]
+        vertex = np.where(curv > 0, -coef[:, 1] / (2 * np.where(curv > 0, curv, 1.0)), 0.0)
+        lim = reach * step
+        offset = grid[at] + np.clip(vertex, -lim, lim)
+        # variance of the vertex: the template bins carry noise^2 / sum(count
+        # depth^2) each before the one-bin smoothing; propagated through the
+        # smoothing, the weighted parabola and vertex = -c1 / (2 c2)
+        # bins no profile fell into were filled from their neighbours: they
+        # take their neighbours' variance (and add no information of their own:
+        # the count of independent bins is that of the filled ones)
+        wsum_l = wsum.reshape(n_lines, n_grid)
+        bin_var = np.divide(noise ** 2, wsum_l, out=np.full_like(wsum_l, np.nan),
+                            where=wsum_l > 0)
+        for k in range(n_lines):  # per line only where bins are missing
+            filled = np.isfinite(bin_var[k])
+            if filled.sum() >= 2 and not filled.all():
+                spacing = np.interp(grid, grid[filled], np.arange(filled.sum()))
+                density = np.gradient(spacing) / 1.0  # filled bins per grid bin
+                bin_var[k] = np.interp(grid, grid[filled], bin_var[k][filled]) / \
+                    np.clip(density, 1e-3, 1.0)
+        bin_var = np.where(np.isfinite(bin_var), bin_var, 1e6)
+        bin_var = np.pad(bin_var, ((0, 0), (4, 4)), mode="edge")
+        kernel = np.exp(-0.5 * np.arange(-4, 5) ** 2)
+        kernel /= kernel.sum()
+        vb = np.take_along_axis(bin_var, at[:, None] + np.arange(-big - 4, big + 5)[None, :],
+                                axis=1)                                   # (L, W + 8)
+        n_inv = np.linalg.inv(normal)
+        left = np.einsum("lij,wj,lw->liw", n_inv, design, wv)            # (L, 3, W)
+        # the smoothed bin w is sum_k kernel[k] raw[w + k - 4]: spread each row
+        left_raw = np.zeros(left.shape[:2] + (left.shape[2] + 8,))
+        for k in range(9):  # nine kernel taps, not a loop over data
+            left_raw[:, :, k:k + left.shape[2]] += kernel[k] * left
+        coef_cov = np.einsum("liw,lw,ljw->lij", left_raw, vb, left_raw)
+        safe = np.where(curv > 0, curv, 1.0)
+        grad = np.stack([np.zeros_like(curv), -1.0 / (2 * safe), coef[:, 1] / (2 * safe ** 2)], 1)
+        vertex_var = np.einsum("li,lij,lj->l", grad, coef_cov, grad)
+        vertex_var = np.where(curv > 0, vertex_var, lim ** 2)
+        if not refit:
+            var = fit.minimum_var.copy()
+            break
+        # refit every profile with its line's template: shift, depth, b0, b1
+        slope_t = np.gradient(template, step, axis=1)
+        for _ in range(6):
+            coords = (d - shift[:, None] + half) / step
+            rows = np.broadcast_to(line_of[:, None], coords.shape)
+            tv = ndimage.map_coordinates(template, [rows.ravel(), coords.ravel()], order=1,
+                                         mode="nearest").reshape(coords.shape)
+            tdv = ndimage.map_coordinates(slope_t, [rows.ravel(), coords.ravel()], order=1,
+                                          mode="nearest").reshape(coords.shape)
+            model = base[:, None] + slope[:, None] * d + depth[:, None] * tv
+            r = (model - profile) * w
+            jac = np.stack([-depth[:, None] * tdv, tv, np.ones_like(tv),
+                            d], axis=2) * w[..., None]
+            a_mat = np.matmul(jac.transpose(0, 2, 1), jac) + 1e-9 * np.eye(4)
+            grad = np.matmul(jac.transpose(0, 2, 1), r[..., None])[..., 0]
+            try:
+                delta = -np.linalg.solve(a_mat, grad[..., None])[..., 0]
+            except np.linalg.LinAlgError:
+                ok[:] = False
+                break
+            delta[:, 0] = np.clip(delta[:, 0], -1.0, 1.0)
+            shift = shift + delta[:, 0]
+            depth, base, slope = depth + delta[:, 1], base + delta[:, 2], slope + delta[:, 3]
+        n_used = (count > 0).sum(axis=1)
+        s2 = np.sum(r * r, axis=1) / np.maximum(n_used - 4, 1) * _correlation_factor(r, count > 0)
+        try:
+            var = np.linalg.inv(a_mat)[:, 0, 0] * s2
+        except np.linalg.LinAlgError:
+            var = np.full(len(shift), np.nan)
+        ok &= np.isfinite(var) & (var > 0) & (depth > 0) & (np.abs(shift) < half - 1.0)
+    inv = np.where(ok & builds & np.isfinite(var) & (var > 0), 1.0 / np.where(var > 0, var, 1.0),
+                   0.0)
+    if refit:  # positions from template fits: the template's origin is their mean
+        weight_sum = np.bincount(line_of, inv, minlength=n_lines)
+        template_var = np.where(weight_sum > 0, 1.0 / np.maximum(weight_sum, 1e-300), np.inf)
+    else:      # Gaussian centres plus the template's offset: its vertex carries the noise
+        template_var = vertex_var
+    return shift + offset[line_of], var, ok, offset, template_var

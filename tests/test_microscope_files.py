@@ -1,0 +1,212 @@
+"""Microscope files written by rosettasciio's own writers, read back through laueline."""
+
+import json
+import math
+
+import numpy as np
+import pytest
+from conftest import run_cli
+from scipy import constants
+
+from laueline import read_crystal
+from laueline.errors import InputError
+from laueline.images.render import RenderSettings, render_pattern
+from laueline.io.microscope import (iter_pattern_chunks, mrad_per_pixel, open_microscope_file,
+                                    read_pattern)
+
+SI = read_crystal("Si")
+
+
+def wavelength_codata_A(kv):
+    """Relativistic wavelength from CODATA constants (scipy.constants), written out here
+    independently of laueline.optics: lambda = h / sqrt(2 m e V (1 + e V / 2 m c^2))."""
+    ev = constants.e * kv * 1e3
+    p = math.sqrt(2 * constants.m_e * ev * (1 + ev / (2 * constants.m_e * constants.c ** 2)))
+    return constants.h / p * 1e10
+
+
+def signal_dict(data, axes, metadata=None, original=None):
+    """A signal in the dictionary form rosettasciio's writers take."""
+    metadata = {"General": {"title": "pattern"}, "Signal": {"signal_type": ""}, **(metadata or {})}
+    return {"data": data, "axes": axes, "metadata": metadata,
+            "original_metadata": original or {}, "tmp_parameters": {},
+            "attributes": {"_lazy": False}, "learning_results": {}, "models": {},
+            "package_info": {"name": "", "version": ""}}
+
+
+def axis(name, size, scale, units, navigate, offset=0.0):
+    return {"name": name, "size": size, "scale": scale, "offset": offset, "units": units,
+            "navigate": navigate}
+
+
+@pytest.fixture(scope="module")
+def small_pattern():
+    image, _ = render_pattern(SI, (2, 3, 0), 200, 6, RenderSettings(shape=(128, 128), seed=3),
+                              x_axis=(0, 0, 4))
+    return image
+
+
+def test_hspy_scan_lazy_with_calibration(tmp_path, small_pattern):
+    from rsciio.hspy import file_writer
+
+    # a 3 x 4 scan of 128 x 128 patterns, 0.02 1/nm per pixel, 300 kV, camera length 80 mm
+    data = np.stack([small_pattern + k for k in range(12)]).reshape(3, 4, 128, 128)
+    axes = [axis("y", 3, 2.5, "nm", True), axis("x", 4, 2.5, "nm", True),
+            axis("ky", 128, 0.02, "1/nm", False), axis("kx", 128, 0.02, "1/nm", False)]
+    md = {"Acquisition_instrument": {"TEM": {"beam_energy": 300.0, "camera_length": 80.0}}}
+    file_writer(str(tmp_path / "scan.hspy"), signal_dict(data.astype(np.uint16), axes, md),
+                chunks=(1, 2, 128, 128))
+    opened = open_microscope_file(tmp_path / "scan.hspy")
+    assert hasattr(opened.data, "compute")  # lazy: a dask array
+    meta = opened.metadata
+    assert meta.kv == 300.0 and meta.camera_length_mm == 80.0
+    # t = lambda q: 0.02 1/nm = 0.002 1/A per pixel (reciprocal lengths without 2 pi)
+    expected = 1.0 / (0.002 * wavelength_codata_A(300.0) * 1e3)
+    # 1e-9: the two wavelength routes differ only by rounding
+    assert meta.scale_px_per_mrad == pytest.approx(expected, rel=1e-9)
+    assert [(a.name, a.size, a.scale, a.units) for a in meta.navigation] == \
+        [("y", 3, 2.5, "nm"), ("x", 4, 2.5, "nm")]
+    assert opened.saturation == 65535
+    # one pattern by flat index and by navigation index
+    read = read_pattern(tmp_path / "scan.hspy", index=6)
+    np.testing.assert_array_equal(read.image, data[1, 2])
+    np.testing.assert_array_equal(read_pattern(tmp_path / "scan.hspy", index=(2, 3)).image,
+                                  data[2, 3])
+    # chunks one at a time, covering the scan once
+    total = np.zeros((3, 4))
+    for slices, block in iter_pattern_chunks(opened):
+        assert block.shape[:2] == (1, 2)  # the stored chunk, not the whole scan
+        total[slices] += block.sum(axis=(-1, -2))
+    np.testing.assert_allclose(total, data.sum(axis=(-1, -2)))
+    with pytest.raises(InputError, match="12 patterns"):
+        read_pattern(tmp_path / "scan.hspy")
+    with pytest.raises(InputError, match="index"):
+        read_pattern(tmp_path / "scan.hspy", index=12)
+
+
+def test_hspy_override_is_reported(tmp_path, small_pattern):
+    from rsciio.hspy import file_writer
+
+    axes = [axis("ky", 128, 0.5, "mrad", False), axis("kx", 128, 0.5, "mrad", False)]
+    md = {"Acquisition_instrument": {"TEM": {"beam_energy": 200.0}}}
+    file_writer(str(tmp_path / "p.hspy"), signal_dict(small_pattern, axes, md))
+    read = read_pattern(tmp_path / "p.hspy")
+    assert read.metadata.scale_px_per_mrad == pytest.approx(2.0)  # 0.5 mrad per pixel
+    read = read_pattern(tmp_path / "p.hspy", kv=120, scale_px_per_mrad=2.5)
+    assert read.metadata.kv == 120 and read.metadata.scale_px_per_mrad == 2.5
+    text = read.metadata.text()
+    assert "120 kV from the command line, not the file's 200 kV" in text
+    assert "2.5 px/mrad from the command line, not the file's 2 px/mrad" in text
+
+
+def test_ncem_emd_reciprocal_angstrom(tmp_path, small_pattern):
+    from rsciio.emd import file_writer
+
+    # rosettasciio writes the Berkeley (NCEM) flavour; it keeps axis scales and units
+    axes = [axis("ky", 128, 0.004, "1/A", False), axis("kx", 128, 0.004, "1/A", False)]
+    file_writer(str(tmp_path / "p.emd"), signal_dict(small_pattern.astype(np.float32), axes))
+    read = read_pattern(tmp_path / "p.emd", kv=200)
+    expected = 1.0 / (0.004 * wavelength_codata_A(200.0) * 1e3)
+    assert read.metadata.scale_px_per_mrad == pytest.approx(expected, rel=1e-6)  # float32 axis
+    np.testing.assert_allclose(read.image, small_pattern.astype(np.float32))
+    # without a voltage the reciprocal pixel size stays unconverted, with a warning
+    meta = read_pattern(tmp_path / "p.emd").metadata
+    assert meta.scale_px_per_mrad is None and "voltage" in meta.warnings[0]
+
+
+def test_blockfile_detector_length_and_camera_length(tmp_path, small_pattern):
+    from rsciio.blockfile import file_writer
+
+    # blockfiles store the detector pixel in cm and the camera length in the header;
+    # rosettasciio's own mapping turns the header value into mm (factor 1e-4)
+    data = np.stack([small_pattern, small_pattern])
+    data = np.clip(data / data.max() * 250, 0, 255).astype(np.uint8)
+    axes = [axis("x", 2, 1.0, "nm", True), axis("dy", 128, 0.0025, "cm", False),
+            axis("dx", 128, 0.0025, "cm", False)]
+    header = {"Beam_energy": 200000, "Camera_length": 2500000, "Note": ""}
+    file_writer(str(tmp_path / "s.blo"), signal_dict(data, axes,
+                                                     original={"blockfile_header": header}),
+                show_progressbar=False)
+    read = read_pattern(tmp_path / "s.blo", index=1)
+    meta = read.metadata
+    assert meta.kv == pytest.approx(200.0) and meta.camera_length_mm == pytest.approx(250.0)
+    # 0.025 mm pixel over a 250 mm camera length: 0.1 mrad per pixel
+    assert meta.scale_px_per_mrad == pytest.approx(10.0, rel=1e-6)
+    np.testing.assert_array_equal(read.image, data[1])
+
+
+def test_zspy_round_trip(tmp_path, small_pattern):
+    from rsciio.zspy import file_writer
+
+    axes = [axis("ky", 128, 0.01, "1/nm", False), axis("kx", 128, 0.01, "1/nm", False)]
+    md = {"Acquisition_instrument": {"TEM": {"beam_energy": 200.0}}}
+    try:
+        file_writer(str(tmp_path / "p.zspy"), signal_dict(small_pattern, axes, md))
+    except AttributeError as exc:  # this rosettasciio's zspy writer predates zarr 3
+        pytest.skip(f"rosettasciio cannot write zspy with the installed zarr: {exc}")
+    expected = 1.0 / (0.001 * wavelength_codata_A(200.0) * 1e3)
+    assert read_pattern(tmp_path / "p.zspy").metadata.scale_px_per_mrad == \
+        pytest.approx(expected, rel=1e-9)
+
+
+def test_unit_conversions():
+    # 1/nm and 1/A differ by ten; rad and urad against mrad; detector lengths over L
+    lam = wavelength_codata_A(200.0)
+    assert mrad_per_pixel(0.1, "1/nm", kv=200) == pytest.approx(0.01 * lam * 1e3, rel=1e-9)
+    assert mrad_per_pixel(0.01, "Å^-1", kv=200) == pytest.approx(0.01 * lam * 1e3, rel=1e-9)
+    assert mrad_per_pixel(2e-5, "rad") == pytest.approx(0.02)
+    assert mrad_per_pixel(20, "µrad") == pytest.approx(0.02)
+    assert mrad_per_pixel(0.015, "mm", camera_length_mm=150) == pytest.approx(0.1)
+    with pytest.raises(InputError, match="nm"):
+        mrad_per_pixel(0.1, "nm")  # a real-space image, not a pattern
+    with pytest.raises(InputError, match="voltage"):
+        mrad_per_pixel(0.1, "1/nm")
+
+
+def test_bad_files(tmp_path, small_pattern):
+    from rsciio.hspy import file_writer
+
+    (tmp_path / "junk.dm4").write_bytes(b"not a DigitalMicrograph file")
+    with pytest.raises(InputError, match="rosettasciio cannot read it"):
+        read_pattern(tmp_path / "junk.dm4")
+    file_writer(str(tmp_path / "line.hspy"),
+                signal_dict(np.arange(100.0), [axis("e", 100, 1.0, "eV", False)]))
+    with pytest.raises(InputError, match="no image"):
+        read_pattern(tmp_path / "line.hspy")
+    axes = [axis("ky", 128, 0.01, "furlong", False), axis("kx", 128, 0.01, "furlong", False)]
+    file_writer(str(tmp_path / "odd.hspy"), signal_dict(small_pattern, axes))
+    with pytest.raises(InputError, match="cannot be converted"):
+        read_pattern(tmp_path / "odd.hspy")
+    # the caller's scale makes the file's units irrelevant
+    assert read_pattern(tmp_path / "odd.hspy", scale_px_per_mrad=20).metadata.scale_px_per_mrad \
+        == 20
+    big = np.zeros((4100, 16), np.uint8)
+    np.save(tmp_path / "big.npy", big)
+    with pytest.raises(InputError, match="4096"):
+        read_pattern(tmp_path / "big.npy")
+    assert read_pattern(tmp_path / "big.npy", allow_large=True).image.shape == (4100, 16)
+
+
+def test_cli_detect_reads_a_scan(tmp_path, capsys):
+    from rsciio.hspy import file_writer
+
+    image, _ = render_pattern(SI, (2, 3, 0), 200, 6, RenderSettings(shape=(256, 256), seed=4),
+                              x_axis=(0, 0, 4))
+    data = np.stack([image, image[::-1]]).astype(np.uint16)
+    axes = [axis("scan", 2, 5.0, "nm", True), axis("ky", 256, 0.01, "1/nm", False),
+            axis("kx", 256, 0.01, "1/nm", False)]
+    md = {"Acquisition_instrument": {"TEM": {"beam_energy": 200.0}}}
+    path = tmp_path / "scan.hspy"
+    file_writer(str(path), signal_dict(data, axes, md))
+    code, out, err = run_cli(capsys, "detect", path, "--json", tmp_path / "d.json")
+    assert code == 2 and "--index" in err and len(err.strip().splitlines()) == 1
+    assert not (tmp_path / "d.json").exists()
+    code, out, err = run_cli(capsys, "detect", path, "--index", 1, "--kv", 300,
+                             "--json", tmp_path / "d.json")
+    assert code == 0, err
+    assert "voltage 300 kV from the command line, not the file's 200 kV" in out
+    doc = json.loads((tmp_path / "d.json").read_text())
+    assert doc["file"]["kv"] == 300 and doc["file"]["kv_file"] == 200
+    assert doc["file"]["index"] == [1]
+    expected = 1.0 / (0.001 * wavelength_codata_A(300.0) * 1e3)
+    assert doc["file"]["scale_px_per_mrad"] == pytest.approx(expected, rel=1e-9)
