@@ -550,7 +550,7 @@ def _cmd_detect(args):
         cal = Calibration.from_document(document, source=args.calibration)
         kv, detector = cal.kv, cal.detector
         disk = find_disk(image) if args.disk_px is None else None
-        distortion = document["detector"].get("distortion")
+        distortion = cal.detector.distortion if any(cal.detector.distortion) else None
         if distortion is None and disk is not None:
             distortion = disk.detector_distortion
         detector = detector.replace(distortion=tuple(distortion or (0.0, 0.0)))
@@ -1012,8 +1012,8 @@ def build_parser():
                       help="a fit whose voltage and detector place the predicted lines")
     seed.add_argument("--disk-mrad", type=float,
                       help="disk radius in mrad (default: the found disk over the scale)")
-    seed.add_argument("--min-strength", type=float, default=0.1,
-                      help="predicted lines weaker than this are not sought (0.1)")
+    seed.add_argument("--min-strength", type=float, default=0.05,
+                      help="predicted lines weaker than this are not sought (0.05)")
     seed.add_argument("--search-px", type=float, default=3.0,
                       help="how far a line may lie from its predicted place, px (3)")
     p.add_argument("--min-angle-deg", type=float, default=5.0,
