@@ -70,6 +70,7 @@ __all__ = [
     "select_beams",
     "DynamicalLines",
     "dynamical_lines",
+    "disk_intensity",
 ]
 
 #: Largest beam count accepted.  A dense complex eigen-problem of n beams
@@ -308,6 +309,7 @@ DEFAULT_HOLZ_EXCITATION = 0.005
 #: multiple of the exact limit, HOLZ beams up to this excitation error.
 _BETHE_ZOLZ_FACTOR = 1.6
 _BETHE_EXCITATION = 0.05
+_BETHE_RATIO = 0.01
 #: The larger beam set of the convergence check: both limits scaled by these.
 _CONVERGENCE_ZOLZ_FACTOR = 1.3
 _CONVERGENCE_HOLZ_FACTOR = 2.5
@@ -408,79 +410,100 @@ def _coupling_block(crystal, rows_hkl, cols_hkl, kv, absorption_ratio):
     return u[np.ravel(inverse)].reshape(len(rows_hkl), len(cols_hkl))
 
 
+class _Engine:
+    """Every beam of a disk calculation with the couplings between all of them.
+
+    The potentials are computed once; groups of directions take index
+    subsets (exact beams, Bethe beams) of this table.
+    """
+
+    def __init__(self, crystal, beams, frame, wave_number, kv, absorption_ratio, thickness_A,
+                 extra_hkl=()):
+        hkl = np.concatenate([beams.zolz_hkl, beams.zolz_weak_hkl, beams.holz_hkl,
+                              np.asarray(extra_hkl, dtype=np.int64).reshape(-1, 3)])
+        _, first = np.unique(hkl, axis=0, return_index=True)
+        self.hkl = hkl[np.sort(first)]
+        self.n_zolz = len(beams.zolz_hkl)
+        self.zolz_weak = np.arange(self.n_zolz, self.n_zolz + len(beams.zolz_weak_hkl))
+        self.holz = np.arange(self.n_zolz + len(beams.zolz_weak_hkl), len(self.hkl))
+        self.g = crystal.g_vectors(self.hkl)
+        self.coupling = _coupling_block(crystal, self.hkl, self.hkl, kv, absorption_ratio)
+        u0 = potential_coefficients(crystal, np.zeros((1, 3)), kv, 0.0)[0].real
+        self.coupling[np.diag_indices(len(self.hkl))] -= u0
+        self.bound = beams.holz_excitation
+        self.frame, self.K, self.thickness_A = frame, wave_number, thickness_A
+        self._index = {tuple(h): i for i, h in enumerate(self.hkl.tolist())}
+
+    def index(self, hkl):
+        return np.array([self._index[tuple(int(v) for v in h)]
+                         for h in np.asarray(hkl).reshape(-1, 3)], dtype=int)
+
+    def excitation(self, idx, t_mrad):
+        """|s_g| (1/angstrom) of beams idx at points (p, 2): shape (p, len(idx))."""
+        k = incident_wavevectors(np.asarray(t_mrad, dtype=float).reshape(-1, 2), self.frame,
+                                 self.K)
+        return np.abs(excitation_matrices(self.g[idx], k)) / (2.0 * self.K)
+
+    def group(self, t_mrad, include=(), exclude=()):
+        """Group for points t_mrad: the zero layer, ``include`` and the HOLZ beams
+        excited below the bound somewhere on the points exactly; the other HOLZ
+        candidates and the far zero layer through Bethe potentials."""
+        s = self.excitation(self.holz, t_mrad).min(axis=0)
+        # exact: excited below the bound, or coupled so strongly to the direct beam
+        # that the Bethe ratio |U_g| / (2 K s_g) exceeds 1 %
+        strength = np.abs(self.coupling[self.holz, 0]) / (2.0 * self.K)
+        near = (s <= self.bound) | (strength >= _BETHE_RATIO * s)
+        strong, weak = self.holz[near], self.holz[~near]
+        exact = np.concatenate([np.arange(self.n_zolz), np.asarray(include, dtype=int),
+                                strong])
+        exact = exact[np.sort(np.unique(exact, return_index=True)[1])]
+        exact = exact[~np.isin(exact, np.asarray(exclude, dtype=int))]
+        weak = np.concatenate([self.zolz_weak, weak])
+        return _Group(self, exact, weak[~np.isin(weak, exact)])
+
+
 class _Group:
-    """A beam set (exact beams, Bethe beams) solved for stacks of disk points.
+    """Exact beams and Bethe beams of an engine, solved for stacks of disk points.
 
     Weak beams w enter through second-order Bethe potentials (Bethe 1928;
     Spence and Zuo 1992, ch. 3): U_gh -> U_gh - sum_w U_gw U_wh / (2 K s_w),
     the eigenvalue in the denominator neglected beside 2 K s_w.
     """
 
-    def __init__(self, crystal, hkl, frame, wave_number, kv, absorption_ratio, thickness_A,
-                 weak_hkl=None):
-        self.hkl = np.asarray(hkl, dtype=np.int64)
-        _check_beams(len(self.hkl))
-        self.g = crystal.g_vectors(self.hkl)
-        self.coupling = coupling_matrix(crystal, self.hkl, kv, absorption_ratio)
-        weak = np.zeros((0, 3), dtype=np.int64) if weak_hkl is None else \
-            np.asarray(weak_hkl, dtype=np.int64).reshape(-1, 3)
-        self.n_weak = len(weak)
-        self.weak_hkl = weak
-        if self.n_weak:
-            self.g_weak = crystal.g_vectors(weak)
-            self.to_weak = _coupling_block(crystal, self.hkl, weak, kv, absorption_ratio)
-            self.from_weak = _coupling_block(crystal, weak, self.hkl, kv, absorption_ratio)
-        self.frame = frame
-        self.K = wave_number
-        self.thickness_A = thickness_A
+    def __init__(self, engine, exact, weak):
+        _check_beams(len(exact))
+        self.engine, self.exact, self.weak = engine, exact, weak
+        self.hkl = engine.hkl[exact]
+        self.coupling = engine.coupling[np.ix_(exact, exact)]
+        self.to_weak = engine.coupling[np.ix_(exact, weak)]
+        self.from_weak = engine.coupling[np.ix_(weak, exact)]
 
     def __len__(self):
-        return len(self.hkl)
+        return len(self.exact)
+
+    def without(self, idx):
+        keep = ~np.isin(self.exact, np.asarray(idx, dtype=int))
+        return _Group(self.engine, self.exact[keep], self.weak)
 
     def direct(self, t_mrad):
         """Direct-beam intensity at disk points (..., 2) in mrad."""
+        eng = self.engine
         t = np.asarray(t_mrad, dtype=float)
-        k = incident_wavevectors(t.reshape(-1, 2), self.frame, self.K)
-        kn = -k @ self.frame.beam_direction
-        diagonal = excitation_matrices(self.g, k)
+        k = incident_wavevectors(t.reshape(-1, 2), eng.frame, eng.K)
+        kn = -k @ eng.frame.beam_direction
+        diagonal = excitation_matrices(eng.g[self.exact], k)
         m, n = diagonal.shape
         amp = np.empty(m, dtype=complex)
-        step = max(1, int(_CHUNK_BYTES // (16.0 * n * max(n, self.n_weak) * 4)))
+        step = max(1, int(_CHUNK_BYTES // (16.0 * n * max(n, len(self.weak)) * 4)))
         for start in range(0, m, step):
             sl = slice(start, min(m, start + step))
             coupling = self.coupling
-            if self.n_weak:
-                inv = 1.0 / excitation_matrices(self.g_weak, k[sl])
-                coupling = coupling - np.einsum("sw,mw,wt->mst", self.to_weak, inv,
-                                                self.from_weak, optimize=True)
-            amp[sl] = _solve_stack(diagonal[sl], coupling, kn[sl], self.thickness_A,
+            if len(self.weak):
+                inv = 1.0 / excitation_matrices(eng.g[self.weak], k[sl])
+                coupling = coupling - (self.to_weak[None] * inv[:, None, :]) @ self.from_weak
+            amp[sl] = _solve_stack(diagonal[sl], coupling, kn[sl], eng.thickness_A,
                                    np.array([0]))[:, 0]
         return (amp.real ** 2 + amp.imag ** 2).reshape(t.shape[:-1])
-
-
-def _holz_split(crystal, beams, t_mrad, frame, wave_number):
-    """HOLZ beams to take exactly and through Bethe potentials for these points."""
-    cand = beams.holz_hkl
-    if not len(cand):
-        return cand, cand
-    k = incident_wavevectors(np.asarray(t_mrad, dtype=float).reshape(-1, 2), frame, wave_number)
-    s = np.min(np.abs(excitation_matrices(crystal.g_vectors(cand), k)), axis=0) / (
-        2.0 * wave_number)
-    return cand[s <= beams.holz_excitation], cand[(s > beams.holz_excitation)
-                                                  & (s <= _BETHE_EXCITATION)]
-
-
-def _make_group(crystal, beams, line_hkl, t_mrad, frame, wave_number, kv, a, thickness_A):
-    strong, weak = _holz_split(crystal, beams, t_mrad, frame, wave_number)
-    hkl = np.concatenate([beams.zolz_hkl, np.asarray(line_hkl, dtype=np.int64).reshape(-1, 3),
-                          strong])
-    _, first = np.unique(hkl, axis=0, return_index=True)
-    hkl = hkl[np.sort(first)]
-    weak = np.concatenate([beams.zolz_weak_hkl, weak])
-    if len(weak):
-        in_strong = (weak[:, None, :] == hkl[None, :, :]).all(axis=2).any(axis=1)
-        weak = weak[~in_strong]
-    return _Group(crystal, hkl, frame, wave_number, kv, a, thickness_A, weak_hkl=weak)
 
 
 # ---------------------------------------------------------------------------
@@ -678,8 +701,9 @@ def dynamical_lines(pattern, thickness_nm, *, absorption_ratio=DEFAULT_ABSORPTIO
         bigger = select_beams(crystal, frame, K, pattern.disk_mrad, gmax=pattern.gmax,
                               zolz_gmax=zolz_gmax * _CONVERGENCE_ZOLZ_FACTOR,
                               holz_excitation=holz_excitation * _CONVERGENCE_HOLZ_FACTOR)
-    background = _Group(crystal, beams.zolz_hkl, frame, K, kv, a, thickness_A,
-                        weak_hkl=beams.zolz_weak_hkl)
+    engine = _Engine(crystal, beams, frame, K, kv, a, thickness_A, extra_hkl=pattern.hkl)
+    big_engine = None if bigger is None else _Engine(crystal, bigger, frame, K, kv, a,
+                                                     thickness_A, extra_hkl=pattern.hkl)
     wanted = range(pattern.n_lines) if lines is None else [int(i) for i in lines]
     L = pattern.n_lines
     empty2, empty1 = np.zeros((0, 2)), np.zeros(0)
@@ -697,13 +721,13 @@ def dynamical_lines(pattern, thickness_nm, *, absorption_ratio=DEFAULT_ABSORPTIO
         w = _window_mrad(pattern, i, thickness_A, nearest)
         grid = np.linspace(-1.0, 1.0, _COARSE)[None, :] * w[:, None]
         scan = base[:, None, :] + grid[..., None] * normal[:, None, :]
-        group = _make_group(crystal, beams, pattern.hkl[i], scan, frame, K, kv, a, thickness_A)
+        own = engine.index(pattern.hkl[i])
+        group = engine.group(scan, include=own)
         n_beams = max(n_beams, len(group))
         rows = np.arange(len(base))
         # local disk intensity: the same beams without the line's own, smooth
         # across the scan (three points and a parabola)
-        without = _Group(crystal, group.hkl[~(group.hkl == pattern.hkl[i]).all(axis=1)], frame,
-                         K, kv, a, thickness_A, weak_hkl=group.weak_hkl)
+        without = group.without(own)
         ends = np.stack([grid[:, 0], np.zeros(len(base)), grid[:, -1]], axis=1)
         bg3 = without.direct(base[:, None, :] + ends[..., None] * normal[:, None, :])
         coef = np.array([np.polyfit(ends[r], bg3[r], 2) for r in rows])  # (k, 3), tiny
@@ -721,8 +745,7 @@ def dynamical_lines(pattern, thickness_nm, *, absorption_ratio=DEFAULT_ABSORPTIO
         width = _half_depth_width(grid, relative - 1.0, k0, depth)
         u_min = np.where(found, u_min, np.nan)
         if bigger is not None and np.any(found):
-            big = _make_group(crystal, bigger, pattern.hkl[i], scan, frame, K, kv, a,
-                              thickness_A)
+            big = big_engine.group(scan, include=big_engine.index(pattern.hkl[i]))
             # the check runs on the two points nearest the middle of the line
             sub = rows[found][np.argsort(np.abs(np.flatnonzero(found) - len(rows) / 2))[:2]]
             u_big, _ = _refine_minimum(lambda uu: ratio(uu, sub, big), u_min[sub], step[sub])
@@ -771,3 +794,66 @@ def _half_depth_width(grid, relative, k0, depth):
     left = cross(li, np.minimum(li + 1, c - 1))
     right = cross(ri, np.maximum(ri - 1, 0))
     return np.where(has_left & has_right & (depth > 0), right - left, np.nan)
+
+
+# ---------------------------------------------------------------------------
+# the whole disk
+# ---------------------------------------------------------------------------
+
+#: Zero-layer beams taken exactly for disk images (a smaller set than for the
+#: line minima: an image needs the look of the lines, not 1e-3 mrad).
+IMAGE_ZOLZ_GMAX = 1.5
+_IMAGE_CELL_MRAD = 0.5
+
+
+def disk_intensity(pattern, t_mrad, thickness_nm, *, absorption_ratio=DEFAULT_ABSORPTION_RATIO,
+                   zolz_gmax=IMAGE_ZOLZ_GMAX, holz_excitation=DEFAULT_HOLZ_EXCITATION):
+    """Direct-beam (bright-field) intensity at points of the central disk.
+
+    Every point is solved with the zero-layer beams up to ``zolz_gmax`` and
+    the HOLZ beams whose excitation error there is below ``holz_excitation``
+    somewhere in its 0.5 mrad square cell of the disk taken exactly, the
+    others (up to 0.05 1/angstrom, and the zero layer up to 1.6
+    ``zolz_gmax``) through Bethe potentials.  The points of a cell are solved
+    together as one stack.
+
+    Parameters
+    ----------
+    pattern : laueline.lines.Pattern
+        Crystal, frame, wave number and disk.
+    t_mrad : array_like, shape (..., 2)
+        Disk points in mrad.
+    thickness_nm, absorption_ratio, zolz_gmax, holz_excitation :
+        As for :func:`dynamical_lines`.
+
+    Returns
+    -------
+    intensity : ndarray, shape (...)
+        |phi_0|^2 for unit incident intensity.
+    n_beams : int
+        Largest number of exact beams of any group of points.
+    """
+    t = check_thickness(thickness_nm)
+    a = check_absorption_ratio(absorption_ratio)
+    points = np.asarray(t_mrad, dtype=float)
+    flat = points.reshape(-1, 2)
+    crystal, frame = pattern.crystal, pattern.frame
+    K, kv = pattern.beam.wave_number, pattern.beam.kv
+    beams = select_beams(crystal, frame, K, pattern.disk_mrad, gmax=pattern.gmax,
+                         zolz_gmax=zolz_gmax, holz_excitation=holz_excitation)
+    engine = _Engine(crystal, beams, frame, K, kv, a, t * 10.0)
+    cand = engine.holz
+    # points are solved in square cells of the disk; each cell takes exactly the
+    # HOLZ beams excited below the bound at any of its points
+    cell = np.floor(flat / _IMAGE_CELL_MRAD).astype(np.int64)
+    _, inverse = np.unique(cell, axis=0, return_inverse=True)
+    inverse = np.ravel(inverse)
+    order = np.argsort(inverse, kind="stable")
+    bounds = np.flatnonzero(np.diff(inverse[order])) + 1
+    out = np.empty(len(flat))
+    n_beams = len(beams.zolz_hkl)
+    for members in np.split(order, bounds):
+        group = engine.group(flat[members])
+        n_beams = max(n_beams, len(group))
+        out[members] = group.direct(flat[members])
+    return out.reshape(points.shape[:-1]), int(n_beams)
