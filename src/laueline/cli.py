@@ -97,6 +97,7 @@ def _cmd_predict(args):
     from .lines import predict
 
     csv_paths = _csv_pair(args.csv) if args.csv else (None, None)
+    _check_dynamical_options(args)
     report.check_outputs([args.json, *csv_paths], args.force, args.figure)
     crystal = _load_crystal(args)
     if args.cell is not None:
@@ -106,6 +107,13 @@ def _cmd_predict(args):
                       min_angle_deg=args.min_angle_deg, strain=args.strain,
                       inner_potential=args.inner_potential)
     print(report.pattern_text(pattern))
+    dynamical = None
+    if args.dynamical:
+        from .dynamical import dynamical_lines
+
+        dynamical = dynamical_lines(pattern, args.thickness_nm,
+                                    absorption_ratio=args.absorption_ratio)
+        print(report.dynamical_text(pattern, dynamical))
     if args.csv:
         (lh, lr), (ch, cr) = report.pattern_tables(pattern)
         report.write_csv(csv_paths[0], lh, lr, args.force)
@@ -114,10 +122,42 @@ def _cmd_predict(args):
     def figure():
         from .plot import pattern_figure
 
-        return pattern_figure(pattern, show_crossings=args.mark_crossings)
+        disk_image = None
+        if dynamical is not None:
+            from .dynamical import disk_intensity_grid
 
-    _finish(args, report.pattern_document(pattern), figure, extra=csv_paths)
+            disk_image = disk_intensity_grid(pattern, args.thickness_nm,
+                                             absorption_ratio=args.absorption_ratio)
+        return pattern_figure(pattern, show_crossings=args.mark_crossings,
+                              disk_image=disk_image)
+
+    _finish(args, report.pattern_document(pattern, dynamical), figure, extra=csv_paths)
     return 0
+
+
+def _check_dynamical_options(args):
+    """--dynamical needs a thickness; the thickness and absorption must be physical."""
+    if not args.dynamical:
+        if args.thickness_nm is not None or args.absorption_ratio is not None:
+            raise InputError("--thickness-nm and --absorption-ratio apply with --dynamical")
+        return
+    from .dynamical import DEFAULT_ABSORPTION_RATIO, check_absorption_ratio, check_thickness
+
+    if args.thickness_nm is None:
+        raise InputError("--dynamical needs the foil thickness: give --thickness-nm")
+    args.thickness_nm = check_thickness(args.thickness_nm, "--thickness-nm")
+    if args.absorption_ratio is None:
+        args.absorption_ratio = DEFAULT_ABSORPTION_RATIO
+    args.absorption_ratio = check_absorption_ratio(args.absorption_ratio, "--absorption-ratio")
+
+
+def _add_dynamical_options(p):
+    p.add_argument("--dynamical", action="store_true",
+                   help="compute the lines with Bloch waves (needs --thickness-nm)")
+    p.add_argument("--thickness-nm", type=float, metavar="T",
+                   help="foil thickness in nm, (0, 2000], for --dynamical")
+    p.add_argument("--absorption-ratio", type=float, metavar="A",
+                   help="absorptive to elastic potential ratio in [0, 1) (0.1)")
 
 
 def _add_sample_frame_options(p):
@@ -389,6 +429,7 @@ def build_parser():
     state.add_argument("--cell", nargs=6, type=float,
                        metavar=("A", "B", "C", "ALPHA", "BETA", "GAMMA"),
                        help="cell parameters in A and deg replacing the CIF's")
+    _add_dynamical_options(p)
     _add_output_options(p, csv=True)
     p.add_argument("--mark-crossings", action="store_true", help="mark crossings in the figure")
     p.set_defaults(run=_cmd_predict)

@@ -82,7 +82,7 @@ def draw_disk_lines(ax, pattern, *, n_labels=10, show_crossings=True, to_plot=No
                 zorder=3)
 
 
-def pattern_figure(pattern, *, n_labels=10, show_crossings=False):
+def pattern_figure(pattern, *, n_labels=10, show_crossings=False, disk_image=None):
     """Two panels: the central disk with labelled loci, and the whole-pattern overview.
 
     Parameters
@@ -92,6 +92,9 @@ def pattern_figure(pattern, *, n_labels=10, show_crossings=False):
         Number of strongest lines labelled with their indices.
     show_crossings : bool
         Mark the crossings.
+    disk_image : (ndarray, float), optional
+        A simulated disk intensity on a square grid (rows along t_y upward)
+        and the half-width of that grid in mrad, drawn beneath the lines.
 
     Returns
     -------
@@ -102,6 +105,11 @@ def pattern_figure(pattern, *, n_labels=10, show_crossings=False):
     fig = _new_figure(10.5, 5.2)
     ax_disk, ax_all = fig.subplots(1, 2, width_ratios=[1.15, 1])
     draw_disk_lines(ax_disk, pattern, n_labels=n_labels, show_crossings=show_crossings)
+    if disk_image is not None:
+        image, half = disk_image
+        shown = ax_disk.imshow(image, origin="lower", extent=(-half, half, -half, half),
+                               cmap="gray", zorder=1, interpolation="bilinear")
+        shown.set_clip_path(Circle((0, 0), pattern.disk_mrad, transform=ax_disk.transData))
     r = pattern.disk_mrad * 1.06
     ax_disk.set_xlim(-r, r)
     ax_disk.set_ylim(-r, r)
