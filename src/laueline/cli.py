@@ -337,6 +337,7 @@ def _cmd_render(args):
     if Path(args.out).suffix.lower() not in IMAGE_SUFFIXES:
         raise InputError(f"--out must end in one of {', '.join(IMAGE_SUFFIXES)}")
     truth_path = _truth_path(args.out)
+    _check_dynamical_options(args)
     report.check_outputs([args.out, truth_path], args.force)
     crystal = _load_crystal(args)
     if args.cell is not None:
@@ -350,7 +351,9 @@ def _cmd_render(args):
         dose=args.dose, seed=args.seed)
     image, truth = render_pattern(crystal, args.zone, args.kv, args.disk_mrad, settings,
                                   strain=args.strain, x_axis=args.x_axis, gmax=args.gmax,
-                                  inner_potential=args.inner_potential)
+                                  inner_potential=args.inner_potential,
+                                  thickness_nm=args.thickness_nm if args.dynamical else None,
+                                  absorption_ratio=args.absorption_ratio or 0.1)
     truth["image"] = str(args.out)
     write_image(args.out, image, force=args.force)
     report.write_json(truth, truth_path, args.force)
@@ -586,6 +589,7 @@ def build_parser():
     p.add_argument("--dose", type=float, default=2000.0,
                    help="counts per pixel on the disk; 0 for no noise (2000)")
     p.add_argument("--seed", type=int, default=0, help="noise seed (0)")
+    _add_dynamical_options(p)
     p.add_argument("--force", action="store_true", help="overwrite existing files")
     p.set_defaults(run=_cmd_render)
 
