@@ -1,6 +1,7 @@
 """Bloch-wave engine against closed forms, handbook values and an ODE integration."""
 
 import dataclasses
+import json
 import math
 
 import numpy as np
@@ -224,3 +225,62 @@ def test_bad_input(si, si230):
         bloch_amplitudes(si, too_many, k, 100.0, kv=200)
     with pytest.raises(InputError, match="thickness"):
         dynamical_lines(si230, 0.0)
+
+
+# -- command line ---------------------------------------------------------------
+
+def test_cli_bad_dynamical_input_writes_nothing(capsys, tmp_path):
+    from conftest import run_cli
+
+    out = tmp_path / "p.json"
+    cases = [
+        ["predict", "Si", "--zone", "1", "1", "4", "--dynamical"],
+        ["predict", "Si", "--zone", "1", "1", "4", "--dynamical", "--thickness-nm", "0"],
+        ["predict", "Si", "--zone", "1", "1", "4", "--dynamical", "--thickness-nm", "2500"],
+        ["predict", "Si", "--zone", "1", "1", "4", "--dynamical", "--thickness-nm", "100",
+         "--absorption-ratio", "1"],
+        ["predict", "Si", "--zone", "1", "1", "4", "--thickness-nm", "100"],
+        ["predict", "Si", "--zone", "1", "1", "4", "--dynamical", "--thickness-nm",
+         str(tmp_path / "missing.json")],
+    ]
+    for argv in cases:
+        code, _, err = run_cli(capsys, *argv, "--json", out)
+        assert code == 2, argv
+        assert err.startswith("laueline: error:") and err.count("\n") == 1, err
+        assert "Traceback" not in err and not out.exists()
+    image = tmp_path / "d.png"
+    code, _, err = run_cli(capsys, "render", "Si", "--zone", "1", "1", "4", "--dynamical",
+                           "--out", image)
+    assert code == 2 and "--thickness-nm" in err and not image.exists()
+    code, _, err = run_cli(capsys, "refine", "Si", "--zone", "1", "1", "4", "--dynamical",
+                           "--thickness-nm", "-3", "--points", tmp_path / "none.csv")
+    assert code == 2 and "thickness" in err
+
+
+def test_cli_predict_dynamical_document(capsys, tmp_path):
+    from conftest import run_cli
+
+    out = tmp_path / "p.json"
+    code, text, err = run_cli(capsys, "predict", "Si", "--zone", "2", "3", "0", "--disk-mrad",
+                              "1.5", "--min-strength", "0.3", "--dynamical", "--thickness-nm",
+                              "150", "--json", out)
+    assert code == 0, err
+    doc = json.loads(out.read_text())
+    assert doc["schema"] == "laueline.pattern/2"
+    top = doc["dynamical"]
+    assert top["thickness_nm"] == 150 and top["absorption_ratio"] == 0.1
+    assert top["n_beams"] > 10
+    holz = [ln for ln in doc["lines"] if ln["laue_zone"] >= 1]
+    assert holz
+    for ln in holz:
+        dyn = ln["dynamical"]
+        assert set(dyn) >= {"minima_mrad", "contrast", "width_mrad"}
+        for x, y in dyn["minima_mrad"]:
+            assert math.hypot(x, y) <= 1.5
+    assert "dynamical" in text
+    # without --dynamical the document stays version 1
+    out1 = tmp_path / "p1.json"
+    code, _, _ = run_cli(capsys, "predict", "Si", "--zone", "1", "1", "4", "--json", out1)
+    doc1 = json.loads(out1.read_text())
+    assert code == 0 and doc1["schema"] == "laueline.pattern/1"
+    assert all("dynamical" not in ln for ln in doc1["lines"])

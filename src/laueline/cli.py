@@ -136,16 +136,32 @@ def _cmd_predict(args):
 
 
 def _check_dynamical_options(args):
-    """--dynamical needs a thickness; the thickness and absorption must be physical."""
+    """--dynamical needs a thickness; the thickness and absorption must be physical.
+
+    The thickness is a number of nm or the JSON document ``laueline thickness``
+    writes (its thickness and, unless --thickness-sigma-nm is given, its sigma).
+    """
+    sigma_given = getattr(args, "thickness_sigma_nm", None) is not None
     if not args.dynamical:
-        if args.thickness_nm is not None or args.absorption_ratio is not None:
-            raise InputError("--thickness-nm and --absorption-ratio apply with --dynamical")
+        if args.thickness_nm is not None or args.absorption_ratio is not None or sigma_given:
+            raise InputError("--thickness-nm, --thickness-sigma-nm and --absorption-ratio "
+                             "apply with --dynamical")
         return
     from .dynamical import DEFAULT_ABSORPTION_RATIO, check_absorption_ratio, check_thickness
 
     if args.thickness_nm is None:
         raise InputError("--dynamical needs the foil thickness: give --thickness-nm")
-    args.thickness_nm = check_thickness(args.thickness_nm, "--thickness-nm")
+    try:
+        value = float(args.thickness_nm)
+    except ValueError:
+        from . import report
+        from .dynamical import thickness_from_document
+
+        value, sigma = thickness_from_document(
+            report.read_json(args.thickness_nm, "laueline.thickness"))
+        if hasattr(args, "thickness_sigma_nm") and not sigma_given:
+            args.thickness_sigma_nm = sigma
+    args.thickness_nm = check_thickness(value, "--thickness-nm")
     if args.absorption_ratio is None:
         args.absorption_ratio = DEFAULT_ABSORPTION_RATIO
     args.absorption_ratio = check_absorption_ratio(args.absorption_ratio, "--absorption-ratio")
@@ -154,8 +170,9 @@ def _check_dynamical_options(args):
 def _add_dynamical_options(p):
     p.add_argument("--dynamical", action="store_true",
                    help="compute the lines with Bloch waves (needs --thickness-nm)")
-    p.add_argument("--thickness-nm", type=float, metavar="T",
-                   help="foil thickness in nm, (0, 2000], for --dynamical")
+    p.add_argument("--thickness-nm", metavar="T",
+                   help="foil thickness in nm, (0, 2000], for --dynamical; or the JSON "
+                        "that 'laueline thickness' wrote")
     p.add_argument("--absorption-ratio", type=float, metavar="A",
                    help="absorptive to elastic potential ratio in [0, 1) (0.1)")
 
@@ -200,6 +217,7 @@ def _cmd_refine(args):
     from .points import read_points
     from .refine import calibration_from_document, refine
 
+    _check_dynamical_options(args)
     report.check_outputs([args.json], args.force, args.figure)
     crystal = _load_crystal(args)
     if (args.points is None) == (args.image is None):
@@ -228,25 +246,50 @@ def _cmd_refine(args):
         image, saturation = read_image(args.image)
         detection = detect_lines(image, disk=args.disk_px, saturation=saturation,
                                  min_angle_deg=args.min_angle_deg, source=args.image)
-        result = refine_image(crystal, args.zone, detection,
-                              disk_mrad=args.disk_mrad if args.disk_mrad_given else None,
-                              **common)
+        observations = detection
+        options = dict(common, disk_mrad=args.disk_mrad if args.disk_mrad_given else None)
+        fit = refine_image
     else:
-        points = read_points(args.points, y_up=args.y_up)
-        result = refine(crystal, args.zone, points, disk_mrad=args.disk_mrad,
-                        min_angle_deg=args.min_angle_deg, match_mrad=args.match_mrad, **common)
+        observations = read_points(args.points, y_up=args.y_up)
+        options = dict(common, disk_mrad=args.disk_mrad, min_angle_deg=args.min_angle_deg,
+                       match_mrad=args.match_mrad)
+        fit = refine
+    dynamical = None
+    if args.dynamical:
+        from .dynamical import refine_dynamical
+
+        dynamical = refine_dynamical(crystal, args.zone, observations,
+                                     thickness_nm=args.thickness_nm,
+                                     thickness_sigma_nm=args.thickness_sigma_nm,
+                                     absorption_ratio=args.absorption_ratio, **options)
+        result = dynamical.result
+    else:
+        result = fit(crystal, args.zone, observations, **options)
     print(report.fit_text(result, y_up=args.y_up))
+    if dynamical is not None:
+        from .dynamical import dynamical_fit_text
+
+        print(dynamical_fit_text(dynamical))
 
     def figure():
         from .plot import fit_figure
 
         return fit_figure(result, crystal, image=image)
 
-    _finish(args, report.fit_document(result, y_up=args.y_up,
-                                      calibration_source=args.calibration,
-                                      points_source=args.points or args.image), figure)
+    document = report.fit_document(result, y_up=args.y_up, calibration_source=args.calibration,
+                                   points_source=args.points or args.image)
+    if dynamical is not None:
+        from .dynamical import dynamical_fit_document
+
+        document = dynamical_fit_document(
+            document, dynamical, report.fit_document(dynamical.kinematic, y_up=args.y_up))
+    _finish(args, document, figure)
     if not result.converged:
         sys.stderr.write("laueline: the fit did not converge; see the warnings\n")
+        return EXIT_NOT_CONVERGED
+    if dynamical is not None and not dynamical.settled:
+        sys.stderr.write("laueline: the dynamical correction did not settle; the strain "
+                         "kept changing by more than a tenth of its sigma\n")
         return EXIT_NOT_CONVERGED
     return 0
 
@@ -491,6 +534,9 @@ def build_parser():
     elastic.add_argument("--stiffness-GPa", dest="stiffness_gpa", metavar="FILE",
                          help="6x6 Voigt stiffness in GPa (reference Cartesian frame)")
     _add_sample_frame_options(p)
+    _add_dynamical_options(p)
+    p.add_argument("--thickness-sigma-nm", type=float, metavar="S",
+                   help="1-sigma of the thickness for the systematic uncertainty (10 %%)")
     _add_output_options(p)
     p.set_defaults(run=_cmd_refine)
 

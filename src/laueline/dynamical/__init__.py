@@ -10,6 +10,9 @@ from .beams import DEFAULT_HOLZ_EXCITATION, DEFAULT_ZOLZ_GMAX, BeamSet, select_b
 from .bloch import (DEFAULT_ABSORPTION_RATIO, MAX_BEAMS, MAX_THICKNESS_NM, bloch_amplitudes,
                     bloch_intensities, check_absorption_ratio, check_thickness,
                     coupling_matrix, excitation_matrices, potential_coefficients)
+from .correction import (KINEMATIC_BIAS_FLOOR, DynamicalFit, KinematicBias,
+                         dynamical_fit_document, dynamical_fit_text, kinematic_bias,
+                         refine_dynamical, thickness_from_document)
 from .minima import (IMAGE_ZOLZ_GMAX, DynamicalLines, disk_intensity, disk_intensity_grid,
                      dynamical_lines)
 
@@ -19,5 +22,7 @@ __all__ = [
     "check_thickness", "check_absorption_ratio", "potential_coefficients", "coupling_matrix",
     "excitation_matrices", "bloch_amplitudes", "bloch_intensities",
     "BeamSet", "select_beams", "DynamicalLines", "dynamical_lines", "disk_intensity",
-    "disk_intensity_grid",
+    "disk_intensity_grid", "DynamicalFit", "refine_dynamical", "KinematicBias",
+    "kinematic_bias", "KINEMATIC_BIAS_FLOOR", "thickness_from_document",
+    "dynamical_fit_document", "dynamical_fit_text",
 ]
