@@ -257,30 +257,23 @@ def test_cli_bad_dynamical_input_writes_nothing(capsys, tmp_path):
     assert code == 2 and "thickness" in err
 
 
-def test_cli_predict_dynamical_document(capsys, tmp_path):
-    from conftest import run_cli
+def test_pattern_document_version_2(si):
+    from laueline.report import pattern_document
 
-    out = tmp_path / "p.json"
-    code, text, err = run_cli(capsys, "predict", "Si", "--zone", "2", "3", "0", "--disk-mrad",
-                              "1.5", "--min-strength", "0.3", "--dynamical", "--thickness-nm",
-                              "150", "--json", out)
-    assert code == 0, err
-    doc = json.loads(out.read_text())
+    pattern = predict(si, (2, 3, 0), 200.0, 1.5, min_strength=0.3)
+    dyn = dynamical_lines(pattern, 150.0, lines=[0], check_convergence=False, zolz_gmax=1.2)
+    doc = json.loads(json.dumps(pattern_document(pattern, dyn)))
     assert doc["schema"] == "laueline.pattern/2"
     top = doc["dynamical"]
     assert top["thickness_nm"] == 150 and top["absorption_ratio"] == 0.1
-    assert top["n_beams"] > 10
-    holz = [ln for ln in doc["lines"] if ln["laue_zone"] >= 1]
-    assert holz
-    for ln in holz:
-        dyn = ln["dynamical"]
-        assert set(dyn) >= {"minima_mrad", "contrast", "width_mrad"}
-        for x, y in dyn["minima_mrad"]:
-            assert math.hypot(x, y) <= 1.5
-    assert "dynamical" in text
-    # without --dynamical the document stays version 1
-    out1 = tmp_path / "p1.json"
-    code, _, _ = run_cli(capsys, "predict", "Si", "--zone", "1", "1", "4", "--json", out1)
-    doc1 = json.loads(out1.read_text())
-    assert code == 0 and doc1["schema"] == "laueline.pattern/1"
-    assert all("dynamical" not in ln for ln in doc1["lines"])
+    assert top["n_beams"] > 10 and top["convergence_mrad"] is None
+    first = doc["lines"][0]["dynamical"]
+    assert set(first) >= {"minima_mrad", "contrast", "width_mrad"}
+    assert len(first["minima_mrad"]) >= 5
+    for x, y in first["minima_mrad"]:
+        assert math.hypot(x, y) <= 1.5
+    assert doc["lines"][1]["dynamical"]["minima_mrad"] == []  # not computed
+    # without the dynamical lines the document stays version 1
+    doc1 = pattern_document(pattern)
+    assert doc1["schema"] == "laueline.pattern/1"
+    assert all("dynamical" not in ln for ln in doc1["lines"]) and "dynamical" not in doc1
