@@ -277,3 +277,47 @@ def test_pattern_document_version_2(si):
     doc1 = pattern_document(pattern)
     assert doc1["schema"] == "laueline.pattern/1"
     assert all("dynamical" not in ln for ln in doc1["lines"]) and "dynamical" not in doc1
+
+
+# -- corrected fits -------------------------------------------------------------
+
+def test_corrected_fit_in_the_kinematic_limit_matches_the_kinematic_fit(si):
+    # With every potential scaled by 1e-3 and no absorption the dynamical shifts
+    # vanish (kinematic limit, see above), so the corrected strain must equal the
+    # kinematic one and the systematic part must vanish, both to 5 % of the fit's
+    # statistical sigma (the residual shifts are below 1e-3 mrad).
+    from conftest import DETECTOR, synthetic_points
+
+    from laueline.dynamical import refine_dynamical
+
+    weak = dataclasses.replace(si, occupancy=si.occupancy * 1e-3)
+    strain = [8e-4, -4e-4, 3e-4, 0.0, 1e-4, 2e-4]
+    points = synthetic_points(weak, (1, 1, 4), n=10, strain=strain, x_axis=None,
+                              rng=np.random.default_rng(3), noise_px=0.05, disk_mrad=3.0)
+    fit = refine_dynamical(weak, (1, 1, 4), points, thickness_nm=150.0,
+                           absorption_ratio=0.0, zolz_gmax=1.0, disk_mrad=3.0,
+                           calibration=(200.0, DETECTOR))
+    assert fit.settled and fit.rounds == 1
+    sigma = np.sqrt(np.diag(fit.covariance_voigt_statistical))
+    assert np.all(np.abs(fit.strain_voigt - fit.strain_voigt_kinematic) < 0.05 * sigma)
+    assert np.all(np.sqrt(np.diag(fit.covariance_voigt_systematic)) < 0.05 * sigma)
+    np.testing.assert_allclose(fit.covariance_voigt,
+                               fit.covariance_voigt_statistical
+                               + fit.covariance_voigt_systematic)
+
+
+def test_kinematic_bias_floor(si):
+    # When the engine would take too long the documented floor is returned:
+    # 2e-4 per component with a calibration held (the independent figures,
+    # 1.5e-4 to 1.9e-4, rounded up), 1e-3 without.
+    from conftest import DETECTOR, synthetic_points
+
+    from laueline.dynamical import KINEMATIC_BIAS_FLOOR, kinematic_bias
+    from laueline.refine import refine
+
+    points = synthetic_points(si, (2, 3, 0), n=12, x_axis=None)
+    fit = refine(si, (2, 3, 0), points, calibration=(200.0, DETECTOR))
+    bias = kinematic_bias(fit, si, points, max_seconds=0.0)
+    assert bias.method == "floor" and KINEMATIC_BIAS_FLOOR["calibrated"] == 2e-4
+    np.testing.assert_allclose(bias.sigma_voigt, 2e-4)
+    np.testing.assert_allclose(np.diag(bias.covariance_voigt), 4e-8)

@@ -32,8 +32,9 @@ from dataclasses import dataclass, field
 import numpy as np
 
 from ..errors import InputError
+from .beams import DEFAULT_ZOLZ_GMAX
 from .bloch import DEFAULT_ABSORPTION_RATIO, check_absorption_ratio, check_thickness
-from .minima import dynamical_lines
+from .minima import IMAGE_ZOLZ_GMAX, dynamical_lines
 
 __all__ = ["DynamicalFit", "refine_dynamical", "KinematicBias", "kinematic_bias",
            "KINEMATIC_BIAS_FLOOR", "thickness_from_document", "dynamical_fit_document",
@@ -163,12 +164,13 @@ def _fitted_pattern(result, crystal, hkl_needed):
     raise InputError(f"lines {missing[:3]} of the fit are not predicted in the disk")
 
 
-def _line_shift_model(pattern, hkl_needed, thickness_nm, absorption_ratio, check):
+def _line_shift_model(pattern, hkl_needed, thickness_nm, absorption_ratio, check,
+                      zolz_gmax=DEFAULT_ZOLZ_GMAX):
     """Per needed line: (along-line coordinates, shifts) for interpolation, and the run."""
     index = {tuple(h): i for i, h in enumerate(pattern.hkl.tolist())}
     wanted = sorted({index[tuple(h)] for h in hkl_needed})
     run = dynamical_lines(pattern, thickness_nm, absorption_ratio=absorption_ratio,
-                          lines=wanted, check_convergence=check)
+                          lines=wanted, check_convergence=check, zolz_gmax=zolz_gmax)
     model = {}
     for i in wanted:
         normal = pattern.normal[i]
@@ -272,7 +274,8 @@ def _settled(new, old):
 
 
 def refine_dynamical(crystal, zone, observations, *, thickness_nm, thickness_sigma_nm=None,
-                     absorption_ratio=DEFAULT_ABSORPTION_RATIO, **fit_options):
+                     absorption_ratio=DEFAULT_ABSORPTION_RATIO, zolz_gmax=DEFAULT_ZOLZ_GMAX,
+                     **fit_options):
     """Fit crossings or detected lines with the dynamical shifts corrected.
 
     Parameters
@@ -289,6 +292,8 @@ def refine_dynamical(crystal, zone, observations, *, thickness_nm, thickness_sig
         Its 1-sigma; 10 % of the thickness by default.
     absorption_ratio : float
         a in U'_g = a U_g, [0, 1).
+    zolz_gmax : float
+        Zero-layer beams taken exactly (1/angstrom), see :func:`dynamical_lines`.
     **fit_options
         Passed to the fit (kv, model, calibration, disk_mrad, ...).
 
@@ -334,7 +339,8 @@ def refine_dynamical(crystal, zone, observations, *, thickness_nm, thickness_sig
     model = None
     for rounds in range(1, _MAX_ROUNDS + 1):
         pattern = _fitted_pattern(current, crystal, hkl_needed)
-        model, run = _line_shift_model(pattern, hkl_needed, t, a, check=False)
+        model, run = _line_shift_model(pattern, hkl_needed, t, a, check=False,
+                                       zolz_gmax=zolz_gmax)
         n_beams = max(n_beams, run.n_beams)
         new = fit(correct(kinematic, model))
         change = _settled(new, current)
@@ -351,7 +357,8 @@ def refine_dynamical(crystal, zone, observations, *, thickness_nm, thickness_sig
                 "absorption/2": (t, a / 2), "absorption*2": (t, min(2 * a, 0.99))}
     moved, params = {}, {}
     for name, (tv, av) in variants.items():
-        vmodel, _ = _line_shift_model(pattern, hkl_needed, tv, av, check=False)
+        vmodel, _ = _line_shift_model(pattern, hkl_needed, tv, av, check=False,
+                                      zolz_gmax=zolz_gmax)
         res = fit(correct(kinematic, vmodel))
         moved[name] = _voigt(res) - _voigt(current)
         params[name] = res.values - current.values
@@ -411,7 +418,8 @@ def kinematic_bias(result, crystal, points=None, *, thickness_nm=200.0,
     """Kinematic-bias estimate of a finished kinematic fit.
 
     The engine computes the dynamical shifts of the fit's lines at a typical
-    thickness and the fit is repeated on observations moved by them; the
+    thickness (zero layer exact to 1.5 1/A, enough for an estimate) and the
+    fit is repeated on observations moved by them; the
     change of the strain, e, gives the covariance e e^T (its diagonal is the
     bias squared).  When the first line alone shows that all of them would
     take longer than ``max_seconds``, or the observations are not given, a
@@ -425,7 +433,8 @@ def kinematic_bias(result, crystal, points=None, *, thickness_nm=200.0,
     crystal : Crystal
         Its reference crystal.
     points : laueline.points.Points, optional
-        The crossings it was fitted to (detected-line fits use the floor).
+        The crossings it was fitted to (for their sigma_px); by default the
+        fit's own table of points.  Detected-line fits use the floor.
     thickness_nm, absorption_ratio : float
         The typical foil for the estimate (200 nm, 0.1).
     max_seconds : float
@@ -451,17 +460,25 @@ def kinematic_bias(result, crystal, points=None, *, thickness_nm=200.0,
         return KinematicBias(cov, np.full(6, floor), "floor", t,
                              f"conservative floor {floor:.0e} per component ({why})")
 
-    if points is None or result.lines is not None:
-        return from_floor("the engine estimate needs the crossings the fit used")
+    if result.lines is not None:
+        return from_floor("the engine estimate is made for crossing fits")
+    if points is None:
+        from ..points import Points
+
+        rows = result.points
+        points = Points(np.array([[r["x_px"], r["y_px"]] for r in rows], dtype=float),
+                        np.array([r["hkl_a"] for r in rows]),
+                        np.array([r["hkl_b"] for r in rows]))
     hkl_needed = _hkl_used(result)
     pattern = _fitted_pattern(result, crystal, hkl_needed)
     start = time.perf_counter()
-    first, _ = _line_shift_model(pattern, hkl_needed[:1], t, a, check=False)
+    _line_shift_model(pattern, hkl_needed[:1], t, a, check=False, zolz_gmax=IMAGE_ZOLZ_GMAX)
     spent = time.perf_counter() - start
     if spent * len(hkl_needed) > max_seconds:
         return from_floor(f"the engine would take about {spent * len(hkl_needed):.0f} s for "
                           f"{len(hkl_needed)} lines")
-    model, _ = _line_shift_model(pattern, hkl_needed, t, a, check=False)
+    model, _ = _line_shift_model(pattern, hkl_needed, t, a, check=False,
+                                 zolz_gmax=IMAGE_ZOLZ_GMAX)
     det = result.detector
     options = dict(kv=result.kv, model=result.model, x_axis=result.x_axis,
                    rotation_deg=det.rotation_deg, mirror=det.mirror, center_px=det.center_px,
