@@ -35,6 +35,7 @@ DEFAULT_HOLZ_EXCITATION = 0.005
 _BETHE_ZOLZ_FACTOR = 1.6
 _BETHE_EXCITATION = 0.05
 _BETHE_RATIO = 0.01
+_PRODUCTS_BYTES = 256e6
 #: The larger beam set of the convergence check: both limits scaled by these.
 _CONVERGENCE_ZOLZ_FACTOR = 1.3
 _CONVERGENCE_HOLZ_FACTOR = 2.5
@@ -202,6 +203,13 @@ class _Group:
         self.coupling = engine.coupling[np.ix_(exact, exact)]
         self.to_weak = engine.coupling[np.ix_(exact, weak)]
         self.from_weak = engine.coupling[np.ix_(weak, exact)]
+        # products U_gw U_wh of every weak beam, so that the Bethe terms of a stack
+        # of directions are one matrix product (m, w) @ (w, n^2)
+        n, w = len(exact), len(weak)
+        self.products = None
+        if w and 16.0 * w * n * n <= _PRODUCTS_BYTES:
+            self.products = (self.to_weak.T[:, :, None] * self.from_weak[:, None, :]).reshape(
+                w, n * n)
 
     def __len__(self):
         return len(self.exact)
@@ -225,7 +233,10 @@ class _Group:
             coupling = self.coupling
             if len(self.weak):
                 inv = 1.0 / excitation_matrices(eng.g[self.weak], k[sl])
-                coupling = coupling - (self.to_weak[None] * inv[:, None, :]) @ self.from_weak
+                if self.products is not None:
+                    coupling = coupling - (inv @ self.products).reshape(-1, n, n)
+                else:
+                    coupling = coupling - (self.to_weak[None] * inv[:, None, :]) @ self.from_weak
             amp[sl] = _solve_stack(diagonal[sl], coupling, kn[sl], eng.thickness_A,
                                    np.array([0]))[:, 0]
         return (amp.real ** 2 + amp.imag ** 2).reshape(t.shape[:-1])
