@@ -42,8 +42,9 @@ __all__ = ["DynamicalFit", "refine_dynamical", "KinematicBias", "kinematic_bias"
 
 #: Fractional thickness uncertainty assumed when none is given.
 DEFAULT_THICKNESS_FRACTION = 0.1
-_MAX_ROUNDS = 6
+_MAX_ROUNDS = 10
 _SETTLED = 0.1  # strain change below this fraction of its sigma ends the iteration
+_STRAIN_FLOOR = 1e-6
 #: Conservative 1-sigma bias of a kinematic strain component (Green-Lagrange), used
 #: when the engine would take too long: the issue's independent many-beam figures
 #: give 1.5e-4 to 1.9e-4 for well-determined combinations with a calibration held,
@@ -190,38 +191,38 @@ def _shift_at(model, hkl, points_mrad):
     return np.interp(np.asarray(points_mrad) @ along, q, shift), normal
 
 
-def _crossing_corrections_px(result, model):
-    """Pixel displacements of the used crossings predicted by the shifts."""
+def _crossing_corrections_px(state, model, ha, hb):
+    """Pixel displacements of crossings (ha, hb) predicted by the shifts at a state."""
     from ..lines import crossing_positions
 
-    rows = [r for r in result.points if r["used"]]
-    ha = np.array([r["hkl_a"] for r in rows])
-    hb = np.array([r["hkl_b"] for r in rows])
-    xy = crossing_positions(result.basis, result.zone, result.x_axis, result.wave_number,
-                            ha, hb)
-    d = np.zeros((len(rows), 2))
-    for k in range(len(rows)):
+    xy = crossing_positions(state.basis, state.zone, state.x_axis, state.wave_number, ha, hb)
+    d = np.zeros((len(ha), 2))
+    for k in range(len(ha)):
         sa, na = _shift_at(model, ha[k], xy[k:k + 1])
         sb, nb = _shift_at(model, hb[k], xy[k:k + 1])
         d[k] = np.linalg.solve(np.array([na, nb]), np.array([sa[0], sb[0]]))
-    det = result.detector
+    det = state.detector
     return det.to_pixels(xy + d) - det.to_pixels(xy)
 
 
-def _corrected_points(points, result, model):
+def _corrected_points(points, measured, state, model):
+    """Measured crossings (the rows of fit ``measured``) moved back by the shifts
+    computed at fit ``state`` (its crossing positions and detector)."""
     from ..points import Points
 
-    used = np.array([r["used"] for r in result.points])
-    xy = np.array([[r["x_px"], r["y_px"]] for r in result.points])[used]
-    ha = np.array([r["hkl_a"] for r in result.points])[used]
-    hb = np.array([r["hkl_b"] for r in result.points])[used]
+    used = np.array([r["used"] for r in measured.points])
+    xy = np.array([[r["x_px"], r["y_px"]] for r in measured.points])[used]
+    ha = np.array([r["hkl_a"] for r in measured.points])[used]
+    hb = np.array([r["hkl_b"] for r in measured.points])[used]
     sigma = None if points.sigma_px is None else np.asarray(points.sigma_px)[used]
-    return Points(xy - _crossing_corrections_px(result, model), ha, hb, sigma)
+    return Points(xy - _crossing_corrections_px(state, model, ha, hb), ha, hb, sigma)
 
 
-def _corrected_detection(detection, result, model):
-    """The detection with every assigned line moved back by its dynamical shift."""
-    det = result.detector
+def _corrected_detection(detection, measured, state, model):
+    """The detection with every line assigned in fit ``measured`` moved back by its
+    dynamical shift, converted to pixels with the detector of fit ``state``."""
+    result = measured
+    det = state.detector
     centre = np.asarray(detection.disk.center_px, dtype=float)
     lines = list(detection.lines)
     for entry in result.lines or []:
@@ -269,8 +270,8 @@ def _settled(new, old):
         return float(np.max(np.abs(new.values - old.values) / sig)) if len(sig) else 0.0
     sig = np.sqrt(np.maximum(np.diag(new.strain.covariance_voigt), 0.0))
     change = np.abs(_voigt(new) - _voigt(old))
-    sig = np.where(sig > 0, sig, np.inf)
-    return float(np.max(change / sig))
+    # noise-free data make sigma vanish: changes below 1e-6 count as settled
+    return float(np.max(change / np.maximum(sig, _STRAIN_FLOOR / _SETTLED)))
 
 
 def refine_dynamical(crystal, zone, observations, *, thickness_nm, thickness_sigma_nm=None,
@@ -330,8 +331,8 @@ def refine_dynamical(crystal, zone, observations, *, thickness_nm, thickness_sig
 
     def correct(state, model):
         if image:
-            return _corrected_detection(observations, state, model)
-        return _corrected_points(observations, state, model)
+            return _corrected_detection(observations, kinematic, state, model)
+        return _corrected_points(observations, kinematic, state, model)
 
     hkl_needed = _hkl_used(kinematic)
     warnings = []
@@ -342,7 +343,7 @@ def refine_dynamical(crystal, zone, observations, *, thickness_nm, thickness_sig
         model, run = _line_shift_model(pattern, hkl_needed, t, a, check=False,
                                        zolz_gmax=zolz_gmax)
         n_beams = max(n_beams, run.n_beams)
-        new = fit(correct(kinematic, model))
+        new = fit(correct(current, model))
         change = _settled(new, current)
         current = new
         if change < _SETTLED:
@@ -359,7 +360,7 @@ def refine_dynamical(crystal, zone, observations, *, thickness_nm, thickness_sig
     for name, (tv, av) in variants.items():
         vmodel, _ = _line_shift_model(pattern, hkl_needed, tv, av, check=False,
                                       zolz_gmax=zolz_gmax)
-        res = fit(correct(kinematic, vmodel))
+        res = fit(correct(current, vmodel))
         moved[name] = _voigt(res) - _voigt(current)
         params[name] = res.values - current.values
     d_t = 0.5 * (moved["thickness+"] - moved["thickness-"])
@@ -485,7 +486,8 @@ def kinematic_bias(result, crystal, points=None, *, thickness_nm=200.0,
                    scale_px_per_mrad=det.scale_px_per_mrad, disk_mrad=result.disk_mrad,
                    inner_potential=result.inner_potential,
                    calibration=(result.kv, det) if calibrated else None)
-    moved = refine(crystal, result.zone, _corrected_points(points, result, model), **options)
+    moved = refine(crystal, result.zone, _corrected_points(points, result, result, model),
+                   **options)
     e = _voigt(moved) - _voigt(result)
     return KinematicBias(np.outer(e, e), np.abs(e), "engine", t,
                          f"strain change when the lines are moved by their dynamical shifts "
