@@ -10,7 +10,9 @@ fit is repeated; the shifts are recomputed at the new state until the
 strain changes by less than a tenth of its uncertainty.
 
 * A crossing of lines a and b moves by the d (mrad) that solves
-  n_a . d = shift_a, n_b . d = shift_b, with n the unit normals.
+  n_a . d = shift_a, n_b . d = shift_b, with n the unit normals; a crossing
+  that would move by more than 0.25 mrad (lines meeting at a grazing angle)
+  is left out of the corrected fit.
 * A detected line moves along its normal by the shift, fitted as a
   constant plus a linear change along the line (an offset and a small
   rotation of the detected line).
@@ -45,6 +47,9 @@ DEFAULT_THICKNESS_FRACTION = 0.1
 _MAX_ROUNDS = 10
 _SETTLED = 0.1  # strain change below this fraction of its sigma ends the iteration
 _STRAIN_FLOOR = 1e-6
+#: A crossing the shifts would move further than this (mrad) is left out of a
+#: corrected fit: its lines meet at too grazing an angle.
+_MAX_CROSSING_MOVE_MRAD = 0.25
 #: Conservative 1-sigma bias of a kinematic strain component (Green-Lagrange), used
 #: when the engine would take too long: the issue's independent many-beam figures
 #: give 1.5e-4 to 1.9e-4 for well-determined combinations with a calibration held,
@@ -215,7 +220,12 @@ def _corrected_points(points, measured, state, model):
     ha = np.array([r["hkl_a"] for r in measured.points])[used]
     hb = np.array([r["hkl_b"] for r in measured.points])[used]
     sigma = None if points.sigma_px is None else np.asarray(points.sigma_px)[used]
-    return Points(xy - _crossing_corrections_px(state, model, ha, hb), ha, hb, sigma)
+    d = _crossing_corrections_px(state, model, ha, hb)
+    # lines meeting at a grazing angle leave their crossing undefined to within the
+    # shifts: such crossings are left out of the corrected fit
+    keep = np.hypot(d[:, 0], d[:, 1]) <= _MAX_CROSSING_MOVE_MRAD * state.detector.scale_px_per_mrad
+    return Points(xy[keep] - d[keep], ha[keep], hb[keep],
+                  None if sigma is None else sigma[keep])
 
 
 def _corrected_detection(detection, measured, state, model):
