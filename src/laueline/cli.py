@@ -127,6 +127,7 @@ def _cmd_predict(args):
     from .lines import predict
 
     csv_paths = _csv_pair(args.csv) if args.csv else (None, None)
+    _check_dynamical_options(args)
     report.check_outputs([args.json, *csv_paths], args.force, args.figure)
     crystal = _load_crystal(args)
     if args.cell is not None:
@@ -136,6 +137,13 @@ def _cmd_predict(args):
                       min_angle_deg=args.min_angle_deg, strain=args.strain,
                       inner_potential=args.inner_potential)
     print(report.pattern_text(pattern))
+    dynamical = None
+    if args.dynamical:
+        from .dynamical import dynamical_lines
+
+        dynamical = dynamical_lines(pattern, args.thickness_nm,
+                                    absorption_ratio=args.absorption_ratio)
+        print(report.dynamical_text(pattern, dynamical))
     if args.csv:
         (lh, lr), (ch, cr) = report.pattern_tables(pattern)
         report.write_csv(csv_paths[0], lh, lr, args.force)
@@ -144,10 +152,59 @@ def _cmd_predict(args):
     def figure():
         from .plot import pattern_figure
 
-        return pattern_figure(pattern, show_crossings=args.mark_crossings)
+        disk_image = None
+        if dynamical is not None:
+            from .dynamical import disk_intensity_grid
 
-    _finish(args, report.pattern_document(pattern), figure, extra=csv_paths)
+            disk_image = disk_intensity_grid(pattern, args.thickness_nm,
+                                             absorption_ratio=args.absorption_ratio)
+        return pattern_figure(pattern, show_crossings=args.mark_crossings,
+                              disk_image=disk_image)
+
+    _finish(args, report.pattern_document(pattern, dynamical), figure, extra=csv_paths)
     return 0
+
+
+def _check_dynamical_options(args):
+    """--dynamical needs a thickness; the thickness and absorption must be physical.
+
+    The thickness is a number of nm or the JSON document ``laueline thickness``
+    writes (its thickness and, unless --thickness-sigma-nm is given, its sigma).
+    """
+    sigma_given = getattr(args, "thickness_sigma_nm", None) is not None
+    if not args.dynamical:
+        if args.thickness_nm is not None or args.absorption_ratio is not None or sigma_given:
+            raise InputError("--thickness-nm, --thickness-sigma-nm and --absorption-ratio "
+                             "apply with --dynamical")
+        return
+    from .dynamical import DEFAULT_ABSORPTION_RATIO, check_absorption_ratio, check_thickness
+
+    if args.thickness_nm is None:
+        raise InputError("--dynamical needs the foil thickness: give --thickness-nm")
+    try:
+        value = float(args.thickness_nm)
+    except ValueError:
+        from . import report
+        from .dynamical import thickness_from_document
+
+        value, sigma = thickness_from_document(
+            report.read_json(args.thickness_nm, "laueline.thickness"))
+        if hasattr(args, "thickness_sigma_nm") and not sigma_given:
+            args.thickness_sigma_nm = sigma
+    args.thickness_nm = check_thickness(value, "--thickness-nm")
+    if args.absorption_ratio is None:
+        args.absorption_ratio = DEFAULT_ABSORPTION_RATIO
+    args.absorption_ratio = check_absorption_ratio(args.absorption_ratio, "--absorption-ratio")
+
+
+def _add_dynamical_options(p):
+    p.add_argument("--dynamical", action="store_true",
+                   help="compute the lines with Bloch waves (needs --thickness-nm)")
+    p.add_argument("--thickness-nm", metavar="T",
+                   help="foil thickness in nm, (0, 2000], for --dynamical; or the JSON "
+                        "that 'laueline thickness' wrote")
+    p.add_argument("--absorption-ratio", type=float, metavar="A",
+                   help="absorptive to elastic potential ratio in [0, 1) (0.1)")
 
 
 def _add_sample_frame_options(p):
@@ -237,6 +294,7 @@ def _cmd_refine(args):
     from .fit.patterns import read_patterns
     from .points import read_points
 
+    _check_dynamical_options(args)
     report.check_outputs([args.json], args.force, args.figure)
     crystal = _load_crystal(args)
     given = [o for o, v in (("--points", args.points), ("--image", args.image),
@@ -305,22 +363,55 @@ def _cmd_refine(args):
             points = read_points(args.points, y_up=args.y_up)
             specs = [PatternSpec(tuple(args.zone), points=points, pixel_frame=frame,
                                  source=args.points, **defaults)]
-        result = refine_patterns(crystal, specs, **options)
+        dynamical = None
+        if args.dynamical:
+            if len(specs) != 1:
+                raise InputError("--dynamical corrects the fit of one pattern; give --points or "
+                                 "--image, not --patterns")
+            from .dynamical import refine_dynamical
+
+            spec = specs[0]
+            observations = spec.detection if spec.detection is not None else spec.points
+            single = {k: v for k, v in defaults.items() if v is not None}
+            if spec.detection is None:
+                single["pixel_frame"] = frame
+            dynamical = refine_dynamical(crystal, tuple(args.zone), observations,
+                                         thickness_nm=args.thickness_nm,
+                                         thickness_sigma_nm=args.thickness_sigma_nm,
+                                         absorption_ratio=args.absorption_ratio,
+                                         **single, **options)
+            result = dynamical.result
+        else:
+            result = refine_patterns(crystal, specs, **options)
     except InputError as exc:
         raise InputError(_refine_message(str(exc))) from None
     print(report.fit_text(result))
+    if dynamical is not None:
+        from .dynamical import dynamical_fit_text
+
+        print(dynamical_fit_text(dynamical))
 
     def figure():
         from .plot import fit_figure
 
         return fit_figure(result, crystal, image=image)
 
-    _finish(args, report.fit_document(result), figure)
+    document = report.fit_document(result)
+    if dynamical is not None:
+        from .dynamical import dynamical_fit_document
+
+        document = dynamical_fit_document(document, dynamical,
+                                          report.fit_document(dynamical.kinematic))
+    _finish(args, document, figure)
     if not result.success:
         sys.stderr.write(f"laueline: the fit did not converge: {result.message}\n")
         return EXIT_NOT_CONVERGED
     if not result.plausible:
         sys.stderr.write(f"laueline: the fit is implausible: {result.implausibility}\n")
+        return EXIT_NOT_CONVERGED
+    if dynamical is not None and not dynamical.settled:
+        sys.stderr.write("laueline: the dynamical correction did not settle; the strain "
+                         "kept changing by more than a tenth of its sigma\n")
         return EXIT_NOT_CONVERGED
     return 0
 
@@ -487,6 +578,7 @@ def _cmd_render(args):
     if Path(args.out).suffix.lower() not in IMAGE_SUFFIXES:
         raise InputError(f"--out must end in one of {', '.join(IMAGE_SUFFIXES)}")
     truth_path = _truth_path(args.out)
+    _check_dynamical_options(args)
     report.check_outputs([args.out, truth_path], args.force)
     crystal = _load_crystal(args)
     if args.cell is not None:
@@ -500,7 +592,9 @@ def _cmd_render(args):
         dose=args.dose, seed=args.seed)
     image, truth = render_pattern(crystal, args.zone, args.kv, args.disk_mrad, settings,
                                   strain=args.strain, x_axis=args.x_axis, gmax=args.gmax,
-                                  inner_potential=args.inner_potential)
+                                  inner_potential=args.inner_potential,
+                                  thickness_nm=args.thickness_nm if args.dynamical else None,
+                                  absorption_ratio=args.absorption_ratio or 0.1)
     truth["image"] = str(args.out)
     write_image(args.out, image, force=args.force)
     report.write_json(truth, truth_path, args.force)
@@ -726,6 +820,7 @@ def build_parser():
     state.add_argument("--cell", nargs=6, type=float,
                        metavar=("A", "B", "C", "ALPHA", "BETA", "GAMMA"),
                        help="cell parameters in A and deg replacing the CIF's")
+    _add_dynamical_options(p)
     _add_output_options(p, csv=True)
     p.add_argument("--mark-crossings", action="store_true",
                    help="mark in the figure the crossings among the labelled (strongest) lines")
@@ -815,6 +910,9 @@ def build_parser():
     elastic.add_argument("--stiffness-GPa", dest="stiffness_gpa", metavar="FILE",
                          help="6x6 Voigt stiffness in GPa (reference Cartesian frame)")
     _add_sample_frame_options(p)
+    _add_dynamical_options(p)
+    p.add_argument("--thickness-sigma-nm", type=float, metavar="S",
+                   help="1-sigma of the thickness for the systematic uncertainty (10 %%)")
     _add_output_options(p)
     p.set_defaults(run=_cmd_refine, kv=None)  # None: the image file's voltage, else 200
 
@@ -988,6 +1086,7 @@ def build_parser():
     p.add_argument("--dose", type=float, default=2000.0,
                    help="counts per pixel on the disk; 0 for no noise (2000)")
     p.add_argument("--seed", type=int, default=0, help="noise seed (0)")
+    _add_dynamical_options(p)
     p.add_argument("--force", action="store_true", help="overwrite existing files")
     p.set_defaults(run=_cmd_render)
 

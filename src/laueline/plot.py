@@ -263,7 +263,7 @@ def _ring_label_angle(radius, centres, disk):
     return theta[int(np.argmax(gap))]
 
 
-def pattern_figure(pattern, *, n_labels=10, show_crossings=False):
+def pattern_figure(pattern, *, n_labels=10, show_crossings=False, disk_image=None):
     """Two panels: the central disk with labelled loci, and the whole-pattern overview.
 
     Parameters
@@ -273,6 +273,9 @@ def pattern_figure(pattern, *, n_labels=10, show_crossings=False):
         Number of strongest lines labelled with their indices, on the lines.
     show_crossings : bool
         Mark the crossings of the labelled lines.
+    disk_image : (ndarray, float), optional
+        A simulated disk intensity on a square grid (rows along t_y upward)
+        and the half-width of that grid in mrad, drawn beneath the lines.
 
     Returns
     -------
@@ -282,11 +285,17 @@ def pattern_figure(pattern, *, n_labels=10, show_crossings=False):
 
     fig = _new_figure(11.0, 6.2)
     ax_disk, ax_all = fig.subplots(1, 2, width_ratios=[1.15, 1])
+    if disk_image is not None:
+        image, half = disk_image
+        shown = ax_disk.imshow(image, origin="lower", extent=(-half, half, -half, half),
+                               cmap="gray", zorder=1, interpolation="bilinear")
+        shown.set_clip_path(Circle((0, 0), pattern.disk_mrad, transform=ax_disk.transData))
     r = pattern.disk_mrad * 1.06
     ax_disk.set_xlim(-r, r)
     ax_disk.set_ylim(-r, r)
     ax_disk.set_aspect("equal")
-    draw_disk_lines(ax_disk, pattern, n_labels=n_labels, show_crossings=show_crossings)
+    draw_disk_lines(ax_disk, pattern, n_labels=n_labels, show_crossings=show_crossings,
+                    fill=disk_image is None)
     key = _strength_key(ax_disk, loc="upper left")
     if show_crossings and ax_disk.get_legend_handles_labels()[0]:
         ax_disk.add_artist(key)

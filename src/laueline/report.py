@@ -19,6 +19,8 @@ from .io import outputs
 
 __all__ = [
     "PATTERN_SCHEMA",
+    "PATTERN_SCHEMA_DYNAMICAL",
+    "dynamical_text",
     "FIT_SCHEMA",
     "fit_document",
     "fit_text",
@@ -45,6 +47,8 @@ __all__ = [
 ]
 
 PATTERN_SCHEMA = "laueline.pattern/1"
+#: A pattern document with the dynamical minima, contrast and width of its lines.
+PATTERN_SCHEMA_DYNAMICAL = "laueline.pattern/2"
 FIGURE_SUFFIXES = outputs.FIGURE_SUFFIXES
 
 F_UNIT = ("angstrom; kinematic electron structure factor sum_j occ_j f_j exp(-B_j s^2) "
@@ -95,23 +99,39 @@ def read_json(path, schema_prefix):
 # pattern
 # ---------------------------------------------------------------------------
 
-def pattern_document(pattern):
+def pattern_document(pattern, dynamical=None):
     """The ``laueline.pattern/1`` document of a :class:`~laueline.lines.Pattern`.
 
     Built from plain Python values (arrays converted once with ``tolist``),
-    so it is ready for :func:`json_text` without another pass.
+    so it is ready for :func:`json_text` without another pass.  With
+    ``dynamical`` (a :class:`laueline.dynamical.DynamicalLines`) the document
+    is ``laueline.pattern/2``: every line gains ``dynamical`` (the deficit
+    minima in mrad, depth, width and the shifts from the kinematic locus) and
+    the top level gains ``dynamical`` (thickness, absorption ratio, beam
+    count, convergence).  Version 1 keys are unchanged.
     """
     keys = ("hkl", "laue_zone", "g_inv_A", "f_abs", "strength", "normal", "offset_mrad",
             "points_mrad")
     columns = [getattr(pattern, k).tolist() for k in keys]
     lines = [dict(zip(keys, row)) for row in zip(*columns)]
+    if dynamical is not None:
+        for i, line in enumerate(lines):
+            found = np.isfinite(dynamical.shift_mrad[i])
+            line["dynamical"] = _clean({
+                "minima_mrad": dynamical.minima_mrad[i][found],
+                "contrast": dynamical.contrast[i], "width_mrad": dynamical.width_mrad[i],
+                "shift_mrad": dynamical.shift_mrad[i][found],
+                "normals": dynamical.normal_points[i][found],
+                "contrast_points": dynamical.contrast_points[i][found],
+                "width_points_mrad": dynamical.width_points_mrad[i][found],
+            })
     crossings = [{"lines": ab, "xy_mrad": xy, "angle_deg": angle}
                  for ab, xy, angle in zip(pattern.crossing_lines.tolist(),
                                           pattern.crossing_mrad.tolist(),
                                           pattern.crossing_angle_deg.tolist())]
     frame = pattern.frame
     rotation = np.asarray(frame.rotation, dtype=float).tolist()
-    return {
+    doc = {
         "schema": PATTERN_SCHEMA,
         "structure": _clean(pattern.crystal.summary()),
         "beam": {"kv": float(pattern.beam.kv), "wavelength_A": float(pattern.beam.wavelength_A),
@@ -132,8 +152,15 @@ def pattern_document(pattern):
                                   np.asarray(pattern.ring_radius_mrad).tolist())],
         "max_convergence_mrad": _clean(pattern.max_convergence_mrad),
         "overlap_hkl": [int(v) for v in pattern.overlap_hkl],
-        "warnings": list(pattern.warnings),
+        "warnings": list(pattern.warnings) + (list(dynamical.warnings) if dynamical else []),
     }
+    if dynamical is not None:
+        doc["schema"] = PATTERN_SCHEMA_DYNAMICAL
+        doc["dynamical"] = _clean(dict(dynamical.summary(), shift_sign=(
+            "shift_mrad is the distance of each minimum from the exact kinematic locus along "
+            "the unit normal given beside it (the side the reflection's g points to)"),
+            caution=DYNAMICAL_CAUTION))
+    return doc
 
 
 def pattern_tables(pattern):
@@ -202,6 +229,38 @@ def pattern_text(pattern, n_strongest=12):
     if pattern.warnings:
         out.append("")
         out.extend(f"note: {w}" for w in pattern.warnings)
+    return "\n".join(out)
+
+
+DYNAMICAL_CAUTION = (
+    "Dynamical minima come from a Bloch-wave model with a proportional absorptive "
+    "potential: they depend on the thickness and on the absorption ratio (halving or "
+    "doubling it moves weak lines by up to about 0.01 mrad), and the foil is taken as "
+    "perfect and flat.")
+
+
+def dynamical_text(pattern, dynamical, n_strongest=12):
+    """Readable summary of the dynamical minima of a pattern's lines."""
+    d = dynamical
+    conv = ("not checked" if d.convergence_mrad is None
+            else f"minima move by at most {d.convergence_mrad:.4f} mrad with more beams")
+    out = ["", f"dynamical  Bloch waves, {d.thickness_nm:g} nm, absorption ratio "
+               f"{d.absorption_ratio:g}; up to {d.n_beams} exact beams ({d.n_zolz} zero-layer, "
+               f"weaker ones through Bethe potentials); {conv}",
+           "",
+           "  HOLZ line (strongest)  points  shift mrad (mean, range)   depth   width mrad"]
+    holz = np.flatnonzero(pattern.laue_zone >= 1)
+    for i in holz[np.argsort(-pattern.strength[holz], kind="stable")[:n_strongest]]:
+        shift = d.shift_mrad[i][np.isfinite(d.shift_mrad[i])]
+        if not len(shift):
+            out.append(f"  {format_hkl(pattern.hkl[i]):>21} {0:7d}  no minimum found")
+            continue
+        out.append(f"  {format_hkl(pattern.hkl[i]):>21} {len(shift):7d}  {shift.mean():+.4f} "
+                   f"({shift.min():+.4f} .. {shift.max():+.4f})  {d.contrast[i]:6.3f} "
+                   f"{d.width_mrad[i]:9.3f}")
+    out.append("")
+    out.append("note: " + DYNAMICAL_CAUTION)
+    out.extend(f"note: {w}" for w in d.warnings)
     return "\n".join(out)
 
 

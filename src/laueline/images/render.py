@@ -6,8 +6,14 @@ the pixel from the exact locus (:func:`laueline.lines.locus_distances`), s
 set by the line width (FWHM, mrad) and the depth D proportional to the line
 strength.  The detector blurs with a Gaussian and counts with Poisson noise
 at a given dose (counts per pixel on the plateau).  The same seed gives the
-same image.  Nothing here models dynamical intensities: the images are for
-testing detection and fitting, and for the demo.
+same image.
+
+With a foil thickness the disk is instead the bright-field intensity of the
+Bloch-wave engine (:func:`laueline.dynamical.disk_intensity`): lines sit at
+their dynamical positions with their physical depth and width, and the
+zero-layer contrast of the disk is there too; the soft edge, background
+gradient, blur and noise follow as before, and the truth records the
+dynamical minima of every line beside its kinematic locus.
 """
 
 from __future__ import annotations
@@ -81,7 +87,8 @@ class RenderSettings:
 
 
 def render_pattern(crystal, zone, kv=200.0, disk_mrad=6.0, settings=None, *, strain=None,
-                   x_axis=None, gmax=4.0, inner_potential=False):
+                   x_axis=None, gmax=4.0, inner_potential=False, thickness_nm=None,
+                   absorption_ratio=0.1):
     """Render a central disk and return (image, truth).
 
     Parameters
@@ -92,6 +99,12 @@ def render_pattern(crystal, zone, kv=200.0, disk_mrad=6.0, settings=None, *, str
         As for :func:`laueline.lines.predict`.
     settings : RenderSettings
     strain : six components or 3x3, optional
+    thickness_nm : float, optional
+        Render the Bloch-wave disk of a foil this thick instead of drawn
+        lines (``line_width_mrad``, ``line_depth`` and ``omit`` then do not
+        apply: width, depth and visibility follow from the physics).
+    absorption_ratio : float
+        With ``thickness_nm``: a in U'_g = a U_g.
 
     Returns
     -------
@@ -129,6 +142,9 @@ def render_pattern(crystal, zone, kv=200.0, disk_mrad=6.0, settings=None, *, str
     plateau *= 1.0 + settings.background_tilt * along / (2 * radius_px)
     inside = r <= radius_px + 4 * max(settings.edge_width_px, 1.0)
     t_rad = det.to_mrad(np.stack([x[inside], y[inside]], axis=1)) * 1e-3
+    if thickness_nm is not None:
+        return _render_dynamical(pattern, det, settings, plateau, inside, t_rad, radius_px,
+                                 thickness_nm, absorption_ratio, kv, gmax, inner_potential)
     factor = np.ones(t_rad.shape[0])
     depth = np.minimum(settings.line_depth * pattern.strength, 0.95)
     sigma_mrad = settings.line_width_mrad / (2 * np.sqrt(2 * np.log(2)))
@@ -146,6 +162,13 @@ def render_pattern(crystal, zone, kv=200.0, disk_mrad=6.0, settings=None, *, str
         factor[near] *= 1.0 - depth[i] * np.exp(-0.5 * (d[near] / sigma_mrad) ** 2)
     disk = plateau.copy()
     disk[inside] *= factor
+    image = _detector_response(disk, settings)
+    return image, _truth(pattern, det, settings, radius_px, kv, gmax, inner_potential, drawn,
+                         depth, omitted)
+
+
+def _detector_response(disk, settings):
+    """Outside level, point-spread function and counting noise of the detector."""
     image = settings.outside_level + (1 - settings.outside_level) * disk
     if settings.blur_px > 0:
         from scipy.ndimage import gaussian_filter
@@ -154,13 +177,49 @@ def render_pattern(crystal, zone, kv=200.0, disk_mrad=6.0, settings=None, *, str
     rng = np.random.default_rng(settings.seed)
     if settings.dose > 0:
         image = rng.poisson(np.clip(image, 0, None) * settings.dose).astype(float)
+    return image
 
+
+def _render_dynamical(pattern, det, settings, plateau, inside, t_rad, radius_px,
+                      thickness_nm, absorption_ratio, kv, gmax, inner_potential):
+    """The Bloch-wave bright-field disk through the same detector, with its truth."""
+    from ..dynamical import disk_intensity, dynamical_lines
+
+    lines = dynamical_lines(pattern, thickness_nm, absorption_ratio=absorption_ratio)
+    t_mrad = t_rad * 1e3
+    r = np.hypot(t_mrad[:, 0], t_mrad[:, 1])
+    # the soft edge reaches a few pixels beyond the rim: those take the rim's intensity
+    t_mrad = t_mrad * np.minimum(1.0, pattern.disk_mrad / np.maximum(r, 1e-12))[:, None]
+    intensity, n_beams = disk_intensity(pattern, t_mrad, thickness_nm,
+                                        absorption_ratio=absorption_ratio)
+    disk = plateau.copy()
+    disk[inside] *= intensity / np.median(intensity[r <= pattern.disk_mrad])
+    image = _detector_response(disk, settings)
+    drawn = np.ones(pattern.n_lines, dtype=bool)
+    truth = _truth(pattern, det, settings, radius_px, kv, gmax, inner_potential, drawn,
+                   lines.contrast, set())
+    truth["dynamical"] = dict(lines.summary(), n_beams_image=n_beams,
+                              image="bright-field intensity of the Bloch-wave engine")
+    for entry, i in zip(truth["lines"], range(pattern.n_lines)):
+        found = np.isfinite(lines.shift_mrad[i])
+        minima = lines.minima_mrad[i][found]
+        entry["dynamical"] = {
+            "minima_mrad": minima.tolist(),
+            "minima_px": det.to_pixels(minima).tolist() if len(minima) else [],
+            "shift_mrad": lines.shift_mrad[i][found].tolist(),
+            "contrast": float(lines.contrast[i]), "width_mrad": float(lines.width_mrad[i])}
+    for key in ("line_width_mrad", "line_depth"):
+        truth["settings"].pop(key, None)
+    return image, truth
+
+
+def _truth(pattern, det, settings, radius_px, kv, gmax, inner_potential, drawn, depth, omitted):
     ha, hb = pattern.crossing_hkl()
     truth = {
         "schema": TRUTH_SCHEMA,
         "structure": pattern.crystal.summary(),
         "zone": list(pattern.zone), "x_axis": list(pattern.x_axis),
-        "kv": float(kv), "disk_mrad": float(disk_mrad), "gmax_inv_A": float(gmax),
+        "kv": float(kv), "disk_mrad": float(pattern.disk_mrad), "gmax_inv_A": float(gmax),
         "inner_potential": bool(inner_potential),
         "wave_number_inv_A": pattern.beam.wave_number,
         "strain": None if pattern.strain is None else pattern.strain.tolist(),
@@ -180,4 +239,4 @@ def render_pattern(crystal, zone, kv=200.0, disk_mrad=6.0, settings=None, *, str
                       for k in range(pattern.n_crossings)
                       if drawn[pattern.crossing_lines[k]].all()],
     }
-    return image, truth
+    return truth

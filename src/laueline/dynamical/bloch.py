@@ -48,8 +48,8 @@ import math
 
 import numpy as np
 
-from .errors import InputError
-from .optics import relativistic_factor
+from ..errors import InputError
+from ..optics import relativistic_factor
 
 __all__ = [
     "MAX_BEAMS",
