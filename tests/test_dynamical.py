@@ -252,8 +252,10 @@ def test_cli_bad_dynamical_input_writes_nothing(capsys, tmp_path):
     code, _, err = run_cli(capsys, "render", "Si", "--zone", "1", "1", "4", "--dynamical",
                            "--out", image)
     assert code == 2 and "--thickness-nm" in err and not image.exists()
+    points = tmp_path / "points.csv"
+    points.write_text("x,y\n10,20\n30,40\n50,10\n")
     code, _, err = run_cli(capsys, "refine", "Si", "--zone", "1", "1", "4", "--dynamical",
-                           "--thickness-nm", "-3", "--points", tmp_path / "none.csv")
+                           "--thickness-nm", "-3", "--points", points)
     assert code == 2 and "thickness" in err
 
 
