@@ -248,3 +248,23 @@ def test_killed_run_resumes_to_the_uninterrupted_result(setup, line_scan, tmp_pa
         np.testing.assert_array_equal(killed[name].values, clean[name].values)
     if not killed_part_way:
         pytest.skip("the run finished before it could be interrupted")
+
+
+def test_microscope_file_scan_matches_the_array(setup, line_scan, tmp_path):
+    """A line scan written by rosettasciio's own writer, read lazily with its step."""
+    from rsciio.hspy import file_writer
+    from test_microscope_files import axis, signal_dict
+
+    _, _, _, plan = setup
+    images, _ = line_scan
+    counts = np.round(images[:4]).astype(np.uint16)
+    axes = [axis("scan", 4, 7.5, "nm", True), axis("ky", SHAPE[0], 0.02, "1/nm", False),
+            axis("kx", SHAPE[1], 0.02, "1/nm", False)]
+    md = {"Acquisition_instrument": {"TEM": {"beam_energy": 200.0, "camera_length": 80.0}}}
+    file_writer(str(tmp_path / "scan.hspy"), signal_dict(counts, axes, md), chunks=(2,) + SHAPE)
+    scan = open_scan(tmp_path / "scan.hspy", chunk_patterns=2)
+    assert scan.nav_dims == ("scan",) and scan.nav_coords["scan"][1] == "nm"
+    np.testing.assert_allclose(scan.nav_coords["scan"][0], [0.0, 7.5, 15.0, 22.5])
+    from_file = map_strain(scan, plan, n_workers=1, progress=False)
+    from_array = map_strain(counts.astype(np.float32), plan, n_workers=1, progress=False)
+    np.testing.assert_array_equal(from_file["exx"].values, from_array["exx"].values)

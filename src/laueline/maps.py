@@ -1027,20 +1027,39 @@ def _read_pattern(path):
 
 
 def _scan_from_microscope_file(path, chunk_patterns, step_nm):
-    try:
-        from .io.microscope import open_lazy
-    except ImportError:
-        raise InputError(f"{path}: unsupported scan type '{path.suffix}'; use .npy, .zarr "
-                         "or a folder of images") from None
-    stack = open_lazy(path)
-    data = stack.data
+    from .io.microscope import MICROSCOPE_SUFFIXES, open_microscope_file
+
+    if path.suffix.lower() not in MICROSCOPE_SUFFIXES:
+        raise InputError(f"{path}: unsupported scan type '{path.suffix}'; use .npy, .zarr, a "
+                         "folder of images or a microscope file "
+                         f"({', '.join(sorted(MICROSCOPE_SUFFIXES))})")
+    opened = open_microscope_file(path)
+    data = opened.data
     if data.ndim not in (3, 4):
         raise InputError(f"{path}: holds a single pattern, not a scan; use refine --image")
-    step = step_nm if step_nm is not None else stack.navigation_step_nm
-    scan = scan_from_array(data, step_nm=step, source=str(path), chunk_patterns=chunk_patterns,
-                           metadata=stack.metadata)
+    axes = list(opened.metadata.navigation)
+    if step_nm is None and axes:
+        steps = [_step_in_nm(a) for a in axes]
+        step_nm = None if any(s is None for s in steps) else (steps if len(steps) == 2
+                                                              else steps[0])
+    scan = scan_from_array(data, step_nm=step_nm, source=str(path),
+                           chunk_patterns=chunk_patterns, metadata=opened.metadata.as_dict())
+    scan.reader = partial(_read_microscope, str(path))
     return scan
 
+
+def _step_in_nm(axis):
+    """A navigation axis' step in nm, or None when its unit is not a length."""
+    factor = {"nm": 1.0, "um": 1e3, "µm": 1e3, "a": 0.1, "å": 0.1, "pm": 1e-3,
+              "m": 1e9}.get(str(axis.units).strip().lower())
+    return None if factor is None or not axis.scale else float(axis.scale) * factor
+
+
+def _read_microscope(path, slices):
+    from .io.microscope import open_microscope_file
+
+    block = open_microscope_file(path).data[slices]
+    return np.asarray(block.compute() if hasattr(block, "compute") else block, dtype=float)
 
 # ---------------------------------------------------------------------------
 # running a scan: chunks on Dask, results in a zarr store
