@@ -84,7 +84,7 @@ def test_blind_detection_of_two_beam_profiles(distorted):
     values = np.array(list(errors.values()))
     assert len(values) >= 10
     assert np.all(values < 0.5), errors       # every resolvable line found
-    # the target: positions within 0.1 px rms of the true minima
+    # the target: positions within 0.1 px rms of the true minima
     assert math.sqrt(np.mean(values ** 2)) < 0.1, errors
     assert spurious == 0
 

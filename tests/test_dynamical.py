@@ -54,7 +54,7 @@ def test_two_beam_rocking_curve_with_absorption(si):
     damp = np.exp(-math.pi * t * a * u_0 / kn)
     phi0 = (np.cos(math.pi * s_eff * t) - 1j * s / s_eff * np.sin(math.pi * s_eff * t)) * damp
     phig = 1j * coupling / s_eff * np.sin(math.pi * s_eff * t) * damp
-    # 1e-6 absolute: the criterion; both routes are exact to rounding
+    # 1e-6 absolute: the target; both routes are exact to rounding
     np.testing.assert_allclose(intensity[:, 0], np.abs(phi0) ** 2, atol=1e-6, rtol=0)
     np.testing.assert_allclose(intensity[:, 1], np.abs(phig) ** 2, atol=1e-6, rtol=0)
     assert intensity[:, 1].max() > 0.05  # the reflection is really excited
@@ -168,7 +168,7 @@ def _pair(pattern, hkl):
 
 def test_kinematic_limit_puts_minima_on_the_loci(si):
     # All potentials scaled by 1e-3 (occupancies scaled): the dynamical minima must
-    # lie on the exact kinematic loci of lines.py; 1e-3 mrad is the bound.
+    # lie on the exact kinematic loci of lines.py; 1e-3 mrad is the target.
     # Without absorption: a proportional absorptive potential makes even a weak
     # line's profile asymmetric, since the deficit goes as (1 + i a)^2 U_g U_-g and the
     # dispersive (odd in s) part of the second-order term enters with 2a (the
@@ -198,9 +198,9 @@ def test_real_shifts_symmetry_and_convergence(si230):
     assert len(pa) >= 3
     np.testing.assert_allclose(sa[pa], sb[pb], atol=1e-4)
     # dynamical shifts of strong HOLZ lines in Si at 200 kV are a few 1e-2 mrad
-    # (the independent many-beam figures: -0.02 to +0.055 mrad)
+    # (independent many-beam figures: -0.02 to +0.055 mrad)
     assert 0.003 < np.mean(np.abs(sa)) < 0.06
-    # the convergence criterion: 2e-3 mrad when the beam set grows
+    # the convergence target: 2e-3 mrad when the beam set grows
     assert result.convergence_mrad is not None and result.convergence_mrad < 2e-3
     assert 0.0 < result.contrast[a] < 1.0
     assert 0.02 < result.width_mrad[a] < 0.5
@@ -310,7 +310,7 @@ def test_corrected_fit_in_the_kinematic_limit_matches_the_kinematic_fit(si):
 
 def test_kinematic_bias_floor(si):
     # When the engine would take too long the documented floor is returned:
-    # 2e-4 per component with a calibration held (the independent figures,
+    # 2e-4 per component with a calibration held (independent many-beam figures,
     # 1.5e-4 to 1.9e-4, rounded up), 1e-3 without.
     from conftest import DETECTOR, synthetic_points
 

@@ -23,7 +23,7 @@ def test_round_trip_labelled(si):
     pts = synthetic_points(si, ZONE, strain=E_TRUE)
     r = refine(si, ZONE, pts, x_axis=(0, 0, 4), center_px=(250, 250), scale_px_per_mrad=41,
                rotation_deg=15)
-    # noise-free: the issue asks for 1e-6; the solution is exact to rounding
+    # noise-free: the target is 1e-6; the solution is exact to rounding
     np.testing.assert_allclose(r.values[:6], GL_TRUE, atol=1e-9)
     assert r.detector.center_px == pytest.approx(DETECTOR.center_px, abs=1e-6)
     assert r.detector.scale_px_per_mrad == pytest.approx(40.0, rel=1e-8)
@@ -59,7 +59,7 @@ def test_unlabelled_symmetry_ambiguity_is_reported(si):
 def test_voltage_calibration(si):
     pts = synthetic_points(si, ZONE, kv=197.3)
     r = refine(si, ZONE, pts, kv=200.0, model="fixed", free=["kv"], x_axis=(0, 0, 4))
-    # the issue asks for 0.05 kV on noise-free data
+    # the target is 0.05 kV on noise-free data
     assert r.kv == pytest.approx(197.3, abs=0.05)
     assert r.kv_sigma is not None and "kv" in r.parameters
 
@@ -107,7 +107,7 @@ def test_pseudomorphic_sige_on_si(si):
     fit = refine(si, ZONE, pts, model="tetragonal", calibration=CAL, mirror=False,
                  x_axis=(0, 0, 4))
     (a_fit, sa), (c_fit, sc) = fit.parameter("a"), fit.parameter("c")
-    # the issue asks for 1e-4 relative precision of a and c from such data
+    # the target is 1e-4 relative precision of a and c from such data
     assert sa / a_fit < 1e-4 and sc / c_fit < 1e-4
     assert abs(a_fit - a_si) < 3 * sa and abs(c_fit - a_perp) < 3 * sc
     # composition from the fitted cell

@@ -158,7 +158,7 @@ def test_detection_finds_every_line_to_a_tenth_of_a_pixel(name, zone, x_axis):
     errors, spurious = _match_truth(det, truth)
     sought = len(_truth_lines(truth, det.disk))
     assert sought >= 8
-    # the issue: every line found, none spurious, positions within 0.1 px rms
+    # the target: every line found, none spurious, positions within 0.1 px rms
     assert np.all(errors < 0.5), errors
     assert np.sqrt(np.mean(errors ** 2)) < 0.1
     assert spurious == 0
@@ -184,7 +184,7 @@ def test_image_calibration_and_strain():
                               x_axis=X_AXIS, strain=E_TRUE)
     fit = refine_image(SI, ZONE, detect_lines(image), calibration=(cal.kv, cal.detector),
                        x_axis=X_AXIS)
-    # the issue: strain within twice its reported uncertainty
+    # the target: strain within twice its reported uncertainty
     assert np.all(np.abs(fit.values[:6] - E_TRUE) < 2 * fit.sigmas[:6] + 1e-6)
     assert fit.lines is not None and fit.n_used >= 25
 

@@ -76,7 +76,7 @@ def test_loci_against_brute_force_ewald_scan(si230):
         g = SI.g_vectors([si230.hkl[i]])[0]
         brute = _brute_force_points(g, frame, K, radius) * 1e3
         assert len(brute) > 10
-        # The issue asks for 1e-5 mrad; the 64-point polyline's own chord
+        # The target is 1e-5 mrad; the 64-point polyline's own chord
         # error is below 1e-6 mrad for these curvatures.
         assert np.max(_distance_to_polyline(brute, si230.points_mrad[i])) < 1e-5
 
@@ -117,7 +117,7 @@ def test_points_on_exact_locus_and_span_the_chord(si230):
     g = SI.g_vectors(si230.hkl)
     params = line_parameters(g, si230.frame, si230.beam.wave_number)
     residual = locus_residual(si230.points_mrad * 1e-3, params)
-    assert np.max(np.abs(residual)) * 1e3 < 1e-10  # mrad; the issue asks for 1e-5
+    assert np.max(np.abs(residual)) * 1e3 < 1e-10  # mrad; the target is 1e-5
     assert si230.points_mrad.shape[1] >= 50
     ends = np.linalg.norm(si230.points_mrad[:, [0, -1]], axis=2)
     np.testing.assert_allclose(ends, si230.disk_mrad, rtol=1e-9)

@@ -164,13 +164,13 @@ def test_cli_refuses_sample_axes_not_normal(tmp_path, capsys):
     assert not out.exists()
 
 
-# -- the survey of issue 10: visibility, members, overlap, reflection limit --
+# -- the survey: visibility, members, overlap, reflection limit --
 
 def test_sample_frame_shows_the_best_member(si):
     # Sample frame x' = [110], z' = [001], ranked by e_z'z'.  The members of
     # the [3 2 0] family differ: [3 2 0] (beam normal to z') against [0 2 3].
     # Under the independent-crossing model with every line above 5 % of
-    # |F| these are the values reported with the issue, 5.2e-5 and 10.5e-5.
+    # |F| these are the values reported for the old survey, 5.2e-5 and 10.5e-5.
     axes = sample_axes(si.basis, (1, 1, 0), (0, 0, 1))
     old = {}
     for zone in [(3, 2, 0), (0, 2, 3)]:
@@ -179,7 +179,7 @@ def test_sample_frame_shows_the_best_member(si):
         sigma, _ = strain_precision(si.basis, p.zone, p.x_axis, p.beam.wave_number, ha, hb,
                                     0.005, axes=axes)
         old[zone] = sigma[2]
-    assert old[(3, 2, 0)] == pytest.approx(5.2e-5, abs=0.05e-5)   # rounding of the issue
+    assert old[(3, 2, 0)] == pytest.approx(5.2e-5, abs=0.05e-5)   # rounding of the reported value
     assert old[(0, 2, 3)] == pytest.approx(10.5e-5, abs=0.05e-5)
     # Every member evaluated directly (its own predict), against the member
     # the survey picks by rotating the representative's covariance.

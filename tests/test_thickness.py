@@ -45,7 +45,7 @@ def test_thickness_and_numbering_from_rocking_curve(t, xi):
     x = s * px_per_inv_nm()
     r = thickness_from_fringes(x, SEPARATION_PX, kv=KV, d_spacing_A=D_SI220)
     assert r.first_fringe_index == first
-    # the issue asks for 1 %; numerical minima on the exact curve give better
+    # the target is 1 %; numerical minima on the exact curve give better
     assert r.thickness_nm == pytest.approx(t, rel=1e-3)
     assert r.extinction_distance_nm == pytest.approx(xi, rel=1e-3)
     assert any(c.first_fringe_index == first for c in r.candidates)
@@ -80,7 +80,7 @@ def test_kinematic_extinction_distance_against_table(name, hkl, table_nm):
     # Two-beam extinction distances at 100 kV, static lattice, as tabulated by
     # Hirsch et al. (1965, appendix) and reproduced in Williams and Carter
     # (2009, Table 13.1); values from memory.  The tables were computed with
-    # other scattering factors: the issue allows 10 %.
+    # other scattering factors: 10 % allowed.
     crystal = read_crystal(name).with_b_iso(0.0)
     assert kinematic_extinction_distance_nm(crystal, hkl, 100.0) == \
         pytest.approx(table_nm, rel=0.10)
@@ -330,13 +330,13 @@ def exact_row_minima(thickness_nm, n_beams=9):
 def test_kelly_allen_bias_and_numbering_on_many_beam_profile(profile_180, fit_180):
     # The Kelly-Allen line assumes two beams; with the 220 systematic row its
     # exact fringe minima give about 1.4 % too thick a foil (182.6 nm for
-    # 180 nm, the issue's independent nine-beam calculation).
+    # 180 nm, an independent nine-beam calculation).
     minima = exact_row_minima(180.0)
     g = 1.0 / D_SI220
     separation = 1e3 * wavelength_A(KV) * g      # distances in mrad
     exact = thickness_from_fringes(minima, separation, kv=KV, d_spacing_A=D_SI220)
     assert exact.first_fringe_index == 2       # t / xi = 1.8: first dark fringe n = 2
-    # 1.0-1.8 %: the issue's 1.4 % with room for other scattering factors
+    # 1.0-1.8 %: the 1.4 % of an independent nine-beam calculation, with room for other scattering factors
     assert 1.010 < exact.thickness_nm / 180.0 < 1.018
     # the same data through the profile route: the right numbering, and the
     # bias still there beside the many-beam fit
@@ -348,7 +348,7 @@ def test_kelly_allen_bias_and_numbering_on_many_beam_profile(profile_180, fit_18
 
 def test_many_beam_profile_fit(fit_180, profile_180):
     r = fit_180
-    # the issue asks for 1 % on held-out many-beam profiles
+    # the target is 1 % on many-beam profiles
     assert r.thickness_nm == pytest.approx(180.0, rel=0.01)
     # the reported total sigma covers the error (2 sigma, normal coverage 95 %)
     assert abs(r.thickness_nm - 180.0) < 2 * r.thickness_sigma_nm

@@ -174,7 +174,7 @@ def _voigt_rotation(axes):
 
 def plan_scan(crystal, zone, calibration, shape, *, disk_mrad, x_axis=None,
               min_strength=0.05, points_per_line=12, search_mrad=0.3, line_width_mrad=0.06,
-              inner_potential=False, systematic_covariance=None, sample_axes=None,
+              inner_potential=False, systematic_covariance="floor", sample_axes=None,
               reference=None):
     """Prepare the per-pattern fit of a zone axis with a calibration held.
 
@@ -203,9 +203,13 @@ def plan_scan(crystal, zone, calibration, shape, *, disk_mrad, x_axis=None,
         Typical full width of a line, mrad; sets the smoothing and the
         second, narrow window.
     inner_potential : bool
-    systematic_covariance : ndarray (6, 6), optional
-        Systematic covariance of the strain (for example the kinematic-bias
-        estimate); zero when not given.
+    systematic_covariance : ndarray (6, 6) or "floor", optional
+        Systematic covariance of the strain from the kinematic model.  By
+        default ("floor") the conservative kinematic-bias floor for fits with
+        a calibration held (:data:`laueline.dynamical.KINEMATIC_BIAS_FLOOR`,
+        2e-4 per component): the change of the dynamical line shifts between
+        the reference and the strained region, which neither the calibration
+        nor a reference pattern removes.  None for none.
     sample_axes : ndarray (3, 3), optional
         Rows of a sample frame (:func:`laueline.strain.sample_axes`).
     reference : ndarray (rows, cols), optional
@@ -346,8 +350,14 @@ def plan_scan(crystal, zone, calibration, shape, *, disk_mrad, x_axis=None,
     offset0 = position[0]
     jac = (position[1::2] - position[2::2]).T / (2 * _STEPS)[None, :]
 
-    systematic = np.zeros((6, 6)) if systematic_covariance is None else \
-        np.asarray(systematic_covariance, float).reshape(6, 6)
+    if isinstance(systematic_covariance, str) and systematic_covariance == "floor":
+        from .dynamical import KINEMATIC_BIAS_FLOOR
+
+        systematic = np.eye(6) * KINEMATIC_BIAS_FLOOR["calibrated"] ** 2
+    elif systematic_covariance is None:
+        systematic = np.zeros((6, 6))
+    else:
+        systematic = np.asarray(systematic_covariance, float).reshape(6, 6)
     rotation = None if sample_axes is None else _voigt_rotation(sample_axes)
     settings = {
         "zone": list(zone_r), "x_axis": list(x_ax), "kv": kv, "disk_mrad": float(disk_mrad),
