@@ -51,8 +51,10 @@ def setup():
     det = Detector(tuple(d["center_px"]), d["scale_px_per_mrad"], d["rotation_deg"], d["mirror"])
     axes = sample_axes(si.basis, (1, 1, 0), (0, 0, 1))
     reference, _ = _render(si, None, 7)
+    # no kinematic-bias floor: these kinematic renders have no dynamical shifts, so
+    # the totals are the statistical part plus the reference's measurement noise
     plan = plan_scan(si, ZONE, (KV, det), SHAPE, disk_mrad=DISK, x_axis=X_AXIS,
-                     sample_axes=axes, reference=reference)
+                     sample_axes=axes, reference=reference, systematic_covariance=None)
     return si, det, axes, plan
 
 
@@ -179,6 +181,13 @@ def test_unreadable_patterns_are_marked_and_counted(setup, line_scan, tmp_path):
     assert ds.attrs["n_unreadable"] == 1
     assert list(ds["ok"].values) == [True, True, False, True]
     assert np.isnan(ds["exx"].values[2])
+
+
+def test_kinematic_bias_floor_enters_the_totals(setup):
+    si, det, axes, _ = setup
+    plan = plan_scan(si, ZONE, (KV, det), SHAPE, disk_mrad=DISK, x_axis=X_AXIS)
+    # the floor of laueline.dynamical for fits with a calibration held: 2e-4 a component
+    np.testing.assert_allclose(np.sqrt(np.diag(plan.systematic_covariance)), 2e-4)
 
 
 def test_pattern_size_must_match_the_calibration(setup):
