@@ -184,6 +184,7 @@ def test_kinematic_limit_puts_minima_on_the_loci(si):
         assert np.all(result.contrast_points[i] > 0)
 
 
+@pytest.mark.slow
 def test_real_shifts_symmetry_and_convergence(si230):
     # The mirror z -> -z of the cubic point group maps the [2 3 0] disk onto itself
     # (t_x -> -t_x) and (h k l) onto (h k -l): at mirrored points the shifts agree to
@@ -283,6 +284,7 @@ def test_pattern_document_version_2(si):
 
 # -- corrected fits -------------------------------------------------------------
 
+@pytest.mark.slow
 def test_corrected_fit_in_the_kinematic_limit_matches_the_kinematic_fit(si):
     # With every potential scaled by 1e-3 and no absorption the dynamical shifts
     # vanish (kinematic limit, see above), so the corrected strain must equal the

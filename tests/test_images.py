@@ -189,6 +189,7 @@ def test_image_calibration_and_strain():
     assert fit.lines is not None and fit.n_used >= 25
 
 
+@pytest.mark.slow
 def test_image_uncertainties_match_scatter():
     # over repeated noise seeds the normalised errors (fit - truth) / sigma have
     # mean square near 1; 8 seeds x 6 components = 48 values, whose mean
@@ -358,6 +359,7 @@ def test_cli_bad_images(tmp_path, capsys):
         assert len(err.strip().splitlines()) == 1 and message in err, (name, err)
 
 
+@pytest.mark.slow
 def test_demo_runs_and_recovers_the_truth(tmp_path):
     import io
 

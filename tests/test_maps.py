@@ -99,6 +99,7 @@ def test_line_scan_within_reported_uncertainty(setup, line_scan):
     assert abs(step - 2e-3) < 3 * step_sigma
 
 
+@pytest.mark.slow
 def test_sigma_matches_scatter(setup):
     """Monte Carlo: the reported statistical sigma against the scatter over noise seeds."""
     si, _, _, plan = setup
@@ -219,6 +220,7 @@ def test_cli_refuses_a_calibration_of_another_zone(setup, line_scan, tmp_path, c
     assert not (tmp_path / "r.zarr").exists()
 
 
+@pytest.mark.slow
 def test_killed_run_resumes_to_the_uninterrupted_result(setup, line_scan, tmp_path):
     """A real interruption: SIGKILL while chunks are being written, then the same command."""
     import xarray as xr

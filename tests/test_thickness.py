@@ -302,6 +302,7 @@ def fit_180(profile_180):
     return fit_profile(pos, inten, SI, G220, kv=KV)
 
 
+@pytest.mark.slow
 def test_profile_edges_from_direct_disk(profile_180):
     # the outer fringes of the diffracted disk are as dark as the background:
     # the old thresholding made that disk too narrow and the thickness 151 nm
@@ -327,6 +328,7 @@ def exact_row_minima(thickness_nm, n_beams=9):
     return np.array([tilt[i] - c[1] / (2 * c[0]) for i, c in zip(k, coef)])
 
 
+@pytest.mark.slow
 def test_kelly_allen_bias_and_numbering_on_many_beam_profile(profile_180, fit_180):
     # The Kelly-Allen line assumes two beams; with the 220 systematic row its
     # exact fringe minima give about 1.4 % too thick a foil (182.6 nm for
@@ -418,6 +420,7 @@ def test_cli_dynamical_bad_input(tmp_path, capsys, extra, message):
     assert not out.exists()
 
 
+@pytest.mark.slow
 @pytest.mark.parametrize("thickness_nm, offset_mrad, first", [(260.0, 0.0, 3), (180.0, -0.4, 2)])
 def test_many_beam_fringe_numbering(thickness_nm, offset_mrad, first):
     # the first dark fringe of a foil t thick is n = floor(t / xi) + 1 (Hirsch
