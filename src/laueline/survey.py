@@ -55,6 +55,7 @@ from functools import reduce
 import numpy as np
 
 from .errors import InputError
+from .results import ResultMixin, format_indices
 from .limits import check_inputs
 from .lines import crossing_positions, predict
 from .strain import from_voigt, voigt
@@ -249,8 +250,15 @@ class AxisPrecision:
     covariance: np.ndarray | None = None
 
 
-@dataclass
-class SurveyResult:
+@dataclass(repr=False)
+class SurveyResult(ResultMixin):
+    """Ranked zone axes with their predicted strain precision.
+
+    ``axes`` lists one entry per candidate (dicts, best first); the JSON
+    document (:meth:`to_dict`), the text and the stereographic map
+    (:meth:`plot`) are those of ``laueline survey``.
+    """
+
     structure: dict
     kv: float
     disk_mrad: float
@@ -268,6 +276,25 @@ class SurveyResult:
     min_contrast: float = DEFAULT_MIN_CONTRAST
     contrast_model: str = "kinematic two-beam"
     sample_axes: np.ndarray | None = None
+
+    def _summary(self):
+        best = self.axes[0] if self.axes else None
+        top = "" if best is None else (f"; best [{format_indices(best.get('member') or best['zone'])}]"
+                                       if isinstance(best, dict) else "")
+        return (f"{self.structure.get('name', '')}, {self.kv:g} kV, disk {self.disk_mrad:g} mrad, "
+                f"{len(self.axes)} axes ranked by {self.ranked_by} ({self.frame}){top}")
+
+    def _document(self):
+        from .report import survey_document
+
+        return survey_document(self)
+
+    def _figure(self, crystal=None, **kwargs):
+        from .crystal import read_crystal
+        from .plot import survey_figure
+
+        crystal = crystal or read_crystal(self.structure.get("name", ""))
+        return survey_figure(self, crystal, **kwargs)
 
 
 def _needed_gmax(pattern, disk_mrad):

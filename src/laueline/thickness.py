@@ -43,6 +43,7 @@ from dataclasses import dataclass, field
 import numpy as np
 
 from .errors import InputError
+from .results import ResultMixin
 from .limits import check_inputs
 from .optics import relativistic_factor, wavelength_A
 
@@ -94,8 +95,8 @@ class Candidate:
     physical: bool
 
 
-@dataclass
-class ThicknessResult:
+@dataclass(repr=False)
+class ThicknessResult(ResultMixin):
     """Thickness and extinction distance from a two-beam fringe series.
 
     ``residual`` of a candidate is 1 - R^2 of its straight-line fit (0 for a
@@ -125,6 +126,21 @@ class ThicknessResult:
     hkl: tuple | None = None
     profile: object = None
     warnings: list = field(default_factory=list)
+
+    def _summary(self):
+        return (f"t = {self.thickness_nm:.1f} +- {self.thickness_sigma_nm:.2g} nm, extinction "
+                f"distance {self.extinction_distance_nm:.1f} nm, first fringe index "
+                f"{self.first_fringe_index}, {len(self.fringes)} fringes (Kelly-Allen)")
+
+    def _document(self):
+        from .report import thickness_document
+
+        return thickness_document(self)
+
+    def _figure(self, **kwargs):
+        from .plot import thickness_figure
+
+        return thickness_figure(self, **kwargs)
 
 
 def _line_fit(x, y, sigma_y=None):
@@ -835,8 +851,8 @@ class _RowStates:
         return amp.real ** 2 + amp.imag ** 2
 
 
-@dataclass
-class ProfileFitResult:
+@dataclass(repr=False)
+class ProfileFitResult(ResultMixin):
     """Thickness from a fit of systematic-row Bloch-wave intensities to a profile.
 
     Positions and lengths are in the profile's unit ("px" below).  The
@@ -888,6 +904,21 @@ class ProfileFitResult:
     warnings: list = field(default_factory=list)
     success: bool = True
     failure: str | None = None
+
+    def _summary(self):
+        return (f"t = {self.thickness_nm:.1f} +- {self.thickness_sigma_nm:.2g} nm (many-beam fit"
+                f" of {self.n_beams} beams, {self.kv:g} kV)"
+                + ("" if self.success else f"; failed: {self.failure}"))
+
+    def _document(self):
+        from .report import thickness_fit_document
+
+        return thickness_fit_document(self)
+
+    def _figure(self, **kwargs):
+        from .plot import thickness_fit_figure
+
+        return thickness_fit_figure(self, **kwargs)
 
 
 def _coverage(position, step, lo, hi):

@@ -6,7 +6,7 @@
    Si [2 3 0] patterns at 256 x 256 and 512 x 512, against a baseline of
    reading the same pattern from a .npy file plus one Gaussian filter over it
    (scipy.ndimage.gaussian_filter, sigma 1 px), measured in the same run.
-2. Scaling: a 96-pattern line scan with one and with two worker processes.
+2. Scaling: a 384-pattern line scan with one and with two worker processes.
 3. With --big: a synthetic 128 x 128 x 256 x 256 map generated chunk by chunk
    inside the run (never stored whole), written to a zarr store; wall time
    and the peak resident memory of this process and its workers.
@@ -72,13 +72,13 @@ def per_pattern(size):
 
 def scaling():
     plan, images = _setup(256, 8)
-    scan = scan_from_array(np.concatenate([images] * 12), chunk_patterns=8)
+    scan = scan_from_array(np.concatenate([images] * 48), chunk_patterns=16)
     walls = {}
     for workers in (1, 2):
         t = time.perf_counter()
         map_strain(scan, plan, n_workers=workers, progress=False)
         walls[workers] = time.perf_counter() - t
-    print(f"  96 patterns 256 x 256: 1 worker {walls[1]:.2f} s, 2 workers {walls[2]:.2f} s, "
+    print(f"  384 patterns 256 x 256: 1 worker {walls[1]:.2f} s, 2 workers {walls[2]:.2f} s, "
           f"speed-up {walls[1] / walls[2]:.2f} (load average {os.getloadavg()[0]:.2f})")
 
 
