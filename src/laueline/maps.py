@@ -864,6 +864,9 @@ class Scan:
         ``reader(slices) -> ndarray`` reading one chunk afresh from the
         source (picklable, so that workers read for themselves and a chunk
         that cannot be read fails alone); None for arrays held in memory.
+    in_memory : ndarray or None
+        The array itself when the scan is held in memory: each task is then
+        sent its own slice, not the whole array.
     """
 
     data: object
@@ -872,6 +875,7 @@ class Scan:
     source: str
     metadata: dict = field(default_factory=dict)
     reader: object = None
+    in_memory: object = None
 
     @property
     def nav_shape(self):
@@ -916,10 +920,13 @@ def scan_from_array(array, *, step_nm=None, source="array", chunk_patterns=64, m
     if any(n == 0 for n in array.shape[:-2]):
         raise InputError("the scan holds no pattern")
     nav_chunks = _nav_chunks(array.shape[:-2], chunk_patterns)
+    in_memory = None
     if isinstance(array, da.Array):
         data = array.rechunk(nav_chunks + (-1, -1))
     else:
         data = da.from_array(array, chunks=nav_chunks + (-1, -1))
+        if isinstance(array, np.ndarray) and not isinstance(array, np.memmap):
+            in_memory = array
     steps = (np.broadcast_to(np.asarray(step_nm, float), (len(dims),))
              if step_nm is not None else None)
     coords = {}
@@ -929,7 +936,9 @@ def scan_from_array(array, *, step_nm=None, source="array", chunk_patterns=64, m
             coords[name] = (np.arange(n, dtype=float), "step")
         else:
             coords[name] = (np.arange(n) * float(steps[k]), "nm")
-    return Scan(data, dims, coords, str(source), dict(metadata or {}))
+    scan = Scan(data, dims, coords, str(source), dict(metadata or {}))
+    scan.in_memory = in_memory
+    return scan
 
 
 def _nav_chunks(nav_shape, chunk_patterns):
@@ -1301,11 +1310,15 @@ def map_strain(scan, plan, *, out=None, force=False, scheduler=None, n_workers=N
     if store is not None:
         todo = _prepare_store(store, scan, plan, fingerprint, regions, force)
 
-    blocks = scan.data.to_delayed().reshape(-1) if scan.reader is None else None
+    lazy = scan.reader is None and scan.in_memory is None
+    blocks = scan.data.to_delayed().reshape(-1) if lazy else None
     index_of = {idx: k for k, (idx, _) in enumerate(regions)}
     tasks = []
     for idx, region in todo:
-        block = blocks[index_of[idx]] if blocks is not None else None
+        if scan.in_memory is not None:
+            block = np.ascontiguousarray(scan.in_memory[region])
+        else:
+            block = blocks[index_of[idx]] if blocks is not None else None
         tasks.append(dask.delayed(_run_chunk, pure=False)(block, plan, region, store,
                                                           scan.reader))
     outcomes = _compute(tasks, scan, todo, scheduler, n_workers, progress)
