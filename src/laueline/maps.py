@@ -974,23 +974,18 @@ def open_scan(path, *, chunk_patterns=64, step_nm=None):
     suffix = path.suffix.lower()
     if path.is_dir() and suffix != ".zarr":
         return _scan_from_folder(path, chunk_patterns, step_nm)
-    if suffix == ".npy":
+    arrays = {".npy": (lambda: np.load(path, mmap_mode="r", allow_pickle=False), _read_npy),
+              ".zarr": (lambda: da.from_zarr(str(path)), _read_zarr)}
+    if suffix in arrays:
+        opener, reader = arrays[suffix]
         try:
-            array = np.load(path, mmap_mode="r", allow_pickle=False)
+            array = opener()
         except Exception as exc:
-            raise InputError(f"{path}: not a readable .npy array ({_first_line(exc)})") from None
+            raise InputError(f"{path}: not a readable {suffix} array ({_first_line(exc)})") \
+                from None
         scan = scan_from_array(array, step_nm=step_nm, source=str(path),
                                chunk_patterns=chunk_patterns)
-        scan.reader = partial(_read_npy, str(path))
-        return scan
-    if suffix == ".zarr":
-        try:
-            array = da.from_zarr(str(path))
-        except Exception as exc:
-            raise InputError(f"{path}: not a readable zarr array ({_first_line(exc)})") from None
-        scan = scan_from_array(array, step_nm=step_nm, source=str(path),
-                               chunk_patterns=chunk_patterns)
-        scan.reader = partial(_read_zarr, str(path))
+        scan.reader = partial(reader, str(path))
         return scan
     return _scan_from_microscope_file(path, chunk_patterns, step_nm)
 
