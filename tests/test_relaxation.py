@@ -345,6 +345,9 @@ def split_image():
     return image, detector, truth
 
 
+# the whole pipeline (detection, single-strain fit, two profile passes, figure) takes
+# 10-20 s on one core: run with the slow workflows
+@pytest.mark.slow
 def test_split_lines_detected_and_mid_foil_strain_recovered(tmp_path, capsys, split_image):
     image, detector, truth = split_image
     np.save(tmp_path / "p.npy", image)
