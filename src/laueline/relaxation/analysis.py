@@ -256,9 +256,8 @@ def relaxation(crystal, zone, image, *, calibration, thickness_nm, model="cosh",
         The unstrained reference.
     zone : sequence of 3 int
     image : ndarray (rows, cols)
-    calibration : (kv, Detector)
-        From a reference fit (:class:`laueline.fit.Calibration`);
-        the voltage and the scale are held.
+    calibration : laueline.fit.Calibration or (kv, Detector)
+        From a reference fit; the voltage and the scale are held.
     thickness_nm : float
         Foil thickness (for example from :mod:`laueline.thickness`).
     model : {'uniform', 'cosh', 'table'}
@@ -305,7 +304,10 @@ def relaxation(crystal, zone, image, *, calibration, thickness_nm, model="cosh",
     image = np.asarray(image, dtype=float)
     if detection is None:
         detection = detect_lines(image, disk=disk_px)
-    kv, cal_det = calibration
+    from ..fit import Calibration
+
+    calibration = Calibration.coerce(calibration)
+    kv = calibration.kv
     warnings = []
     single, avg = _average_fit(crystal, zone, detection, kv, calibration, x_axis,
                                min_strength, warnings)
