@@ -475,9 +475,8 @@ def _cmd_relaxation(args):
     if args.displacement_table:
         table = read_displacement_table(args.displacement_table, args.thickness_nm)
         model = "table"
-    cal = Calibration.from_document(report.read_json(args.calibration, "laueline.fit"),
-                                    source=args.calibration)
-    calibration = (cal.kv, cal.detector)
+    calibration = Calibration.from_document(report.read_json(args.calibration, "laueline.fit"),
+                                            source=args.calibration)
     image, _ = read_image(args.image)
     result = relaxation(crystal, args.zone, image, calibration=calibration,
                         thickness_nm=args.thickness_nm, model=model, table=table,

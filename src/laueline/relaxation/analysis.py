@@ -164,15 +164,22 @@ class RelaxationResult:
         }
 
 
-def _default_half_width(thickness_nm, g_perp, scale_px_per_mrad, detected_fwhm_px=0.0):
-    """Profile half-width (px): 2.5 line widths plus 2 px, within 8..40 px.
+def _default_half_width(thickness_nm, g_perp, scale_px_per_mrad, blur_sigma_px=None):
+    """Profile half-width W (px) from the kinematic line width and the instrument blur.
 
-    The line width is the larger of the kinematic width of the median line
-    (0.886 / t in s) and the median width the detector found.  Wider windows
-    hold more of a split line but lose more columns to neighbouring lines.
+    The dip of a line whose surface layers are displaced by up to about one
+    cycle of g.w lies within about 2.5 / t in excitation error of its
+    mid-foil locus (the sinc^2 central lobe, +-1 / t, and the surface
+    component moved by one fringe more); two blur sigmas beyond that, the
+    outer quarter of the window (the flank level of every column) is clear
+    of the dip: 0.75 W = 2.5 / t + 2 sigma, for the median line, within
+    8..40 px.  The blur is ``blur_sigma_px`` or, when it is to be fitted,
+    1 px (a detector's point spread, common practice).  Widths that the line
+    detection reports are not used: those of split lines measure the split.
     """
-    fwhm_px = _SINC2_FWHM / (10.0 * thickness_nm) / np.median(g_perp) * 1e3 * scale_px_per_mrad
-    return float(np.clip(2.5 * max(fwhm_px, detected_fwhm_px) + 2.0, 8.0, 40.0))
+    blur = 1.0 if blur_sigma_px is None else float(blur_sigma_px)
+    px_per_inv_t = 1.0 / (10.0 * thickness_nm) / np.median(g_perp) * 1e3 * scale_px_per_mrad
+    return float(np.clip((2.5 * px_per_inv_t + 2.0 * blur) / 0.75, 8.0, 40.0))
 
 
 def profile_data(profiles, crystal, zone, x_axis, wave_number, detector):
@@ -249,9 +256,8 @@ def relaxation(crystal, zone, image, *, calibration, thickness_nm, model="cosh",
         The unstrained reference.
     zone : sequence of 3 int
     image : ndarray (rows, cols)
-    calibration : (kv, Detector)
-        From a reference fit (:class:`laueline.fit.Calibration`);
-        the voltage and the scale are held.
+    calibration : laueline.fit.Calibration or (kv, Detector)
+        From a reference fit; the voltage and the scale are held.
     thickness_nm : float
         Foil thickness (for example from :mod:`laueline.thickness`).
     model : {'uniform', 'cosh', 'table'}
@@ -260,8 +266,8 @@ def relaxation(crystal, zone, image, *, calibration, thickness_nm, model="cosh",
     min_strength : float
         Weaker predicted lines are neither profiled nor kept clear of.
     half_width_px : float, optional
-        Half-width of each profile; by default three kinematic line widths
-        of the broadest line plus 4 px, within 8..40 px.
+        Half-width of each profile; by default from the kinematic line
+        width (thickness) and the instrument blur (:func:`_default_half_width`).
     segments : int
         Profiles per line (stretches along it).
     instrument_sigma_px : float, optional
@@ -298,19 +304,20 @@ def relaxation(crystal, zone, image, *, calibration, thickness_nm, model="cosh",
     image = np.asarray(image, dtype=float)
     if detection is None:
         detection = detect_lines(image, disk=disk_px)
-    kv, cal_det = calibration
+    from ..fit import Calibration
+
+    calibration = Calibration.coerce(calibration)
+    kv = calibration.kv
     warnings = []
     single, avg = _average_fit(crystal, zone, detection, kv, calibration, x_axis,
                                min_strength, warnings)
     start = {c: avg.parameter(c)[0] for c in STRAIN_COMPONENTS if c in avg.parameters}
     strain = [start.get(c, 0.0) for c in STRAIN_COMPONENTS]
-    widths = [detection.lines[i].width_px for i in detection.good_lines]
     settings = dict(image=image, crystal=crystal, zone=avg.zone, x_axis=avg.x_axis, kv=kv,
                     wave_number=avg.wave_number, disk=detection.disk,
                     min_strength=min_strength, segments=segments,
                     min_significance=min_significance, thickness_nm=thickness_nm,
-                    model=model, table=table, instrument_sigma_px=instrument_sigma_px,
-                    detected_fwhm_px=float(np.median(widths)) if widths else 0.0)
+                    model=model, table=table, instrument_sigma_px=instrument_sigma_px)
     # first pass along the loci of the single-strain fit; second pass along the loci
     # of the first pass's mid-foil strain (a locus askew to its line smears the
     # column average)
@@ -360,8 +367,8 @@ def relaxation(crystal, zone, image, *, calibration, thickness_nm, model="cosh",
         warnings.append(fit.message)
     if fit.shift_ratio > 1.0:
         warnings.append(f"the profiles' positions scatter {fit.shift_ratio:.2f} times more than "
-                        "their noise allows (neighbouring lines, dynamical shifts): strain, "
-                        "centre and rotation uncertainties scaled up by that factor")
+                        "their noise allows (neighbouring lines, dynamical shifts): a random "
+                        "shift per profile of that size is included in every uncertainty")
     if fit.inflated:
         warnings.append(f"chi-square {fit.chi2:.1f} for {fit.dof} degrees of freedom: "
                         "uncertainties scaled up by "
@@ -389,8 +396,7 @@ _PLAUSIBLE_CHI2_PER_DOF = 5.0
 
 def _profile_pass(detector, strain, start, half_width_px, scan, warnings, *, image, crystal,
                   zone, x_axis, kv, wave_number, disk, min_strength, segments,
-                  min_significance, thickness_nm, model, table, instrument_sigma_px,
-                  detected_fwhm_px):
+                  min_significance, thickness_nm, model, table, instrument_sigma_px):
     """Profiles along the loci predicted for ``strain`` and ``detector``, and their fit."""
     from ..lines import predict
 
@@ -404,7 +410,7 @@ def _profile_pass(detector, strain, start, half_width_px, scan, warnings, *, ima
         g_perp = np.linalg.norm(pattern.frame.components(
             crystal.g_vectors(pattern.hkl))[:, :2], axis=1)
         half_width_px = _default_half_width(thickness_nm, g_perp, detector.scale_px_per_mrad,
-                                            detected_fwhm_px)
+                                            instrument_sigma_px)
     profiles = measure_line_profiles(
         image, list(loci), pattern.hkl, disk.center_px, disk.radius_px,
         half_width_px=half_width_px, segments=segments, obstacles_px=list(loci))

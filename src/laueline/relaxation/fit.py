@@ -294,7 +294,8 @@ def fit_profiles(data, thickness_nm, model="cosh", *, table=None, start=None,
     lacks (a neighbouring line's wing, a dynamical shift): the scatter of
     each profile's own best position about the fitted one, over its
     statistical sigma (a Birge ratio over profiles - rigid parameters),
-    scales the strain, centre and rotation uncertainties up when above 1;
+    scales every uncertainty up when above 1 (Birge 1932, Phys. Rev. 40,
+    207);
     ``sigmas_stat`` keeps the purely statistical values.
 
     For the ``cosh`` family the surface displacement is first located by a
@@ -409,15 +410,13 @@ def fit_profiles(data, thickness_nm, model="cosh", *, table=None, start=None,
         cov = cov * (chi2 / dof)
     # per-profile position term: a neighbouring line's wing or a dynamical shift moves a
     # profile as a whole; the scatter of the profiles' own best shifts about the fitted
-    # ones, against their statistical sigmas, scales the rigid parameters' covariance
+    # ones, against their statistical sigmas, is a Birge ratio that scales the whole
+    # covariance: a moved profile moves one component of a split line against the
+    # other, so the relaxation parameters take up the same error as the strain
     shift_ratio = _shift_scatter(m, x, 9 - sum(n in m.fixed for n in _RIGID))
-    rigid_idx = [i for i, n in enumerate(names) if n in _RIGID]
     cov_stat = cov.copy()
     if shift_ratio > 1.0:
-        cov[np.ix_(rigid_idx, rigid_idx)] *= shift_ratio ** 2
-        off = [i for i in range(len(names)) if i not in rigid_idx]
-        cov[np.ix_(rigid_idx, off)] *= shift_ratio
-        cov[np.ix_(off, rigid_idx)] *= shift_ratio
+        cov = cov * shift_ratio ** 2
     units = np.array([_STRAIN_UNIT if n in STRAIN_COMPONENTS else 1.0 for n in names])
     cov = cov * np.outer(units, units)
     cov_stat = cov_stat * np.outer(units, units)
