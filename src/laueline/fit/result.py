@@ -17,8 +17,9 @@ CAUTIONS = (
     "The model is kinematic: dynamical shifts of HOLZ lines are ignored; an effective "
     "voltage calibrated on a reference region absorbs them only in part.",
 )
-SYSTEMATIC_NOTE = ("the systematic part (dynamical line shifts, per-line errors) is not yet "
-                   "modelled and is zero here; the total equals the statistical part")
+SYSTEMATIC_NOTE = ("the statistical part includes per-line errors (line_sigma_px); the "
+                   "systematic part is the one given to the fit (for example a kinematic-bias "
+                   "estimate of dynamical line shifts) and is zero when none was given")
 
 
 class _Record:
@@ -88,6 +89,7 @@ class Check(_Record):
     passed: bool
     value: float | None
     limit: float | None
+    detail: str = ""   # why it failed: the worst points and the remedy
 
 
 @dataclass
@@ -215,6 +217,7 @@ class FitResult:
     inner_potential: bool = False
     crystal: object = field(default=None, repr=False)
     poorly_separated: list = field(default_factory=list)
+    line_sigma: object = None   # laueline.fit.engine.LineSigma: per-line error used
 
     # -- the first (often only) pattern -----------------------------------------
     converged = property(lambda self: self.success)
@@ -254,11 +257,11 @@ class FitResult:
 
     @property
     def implausibility(self):
-        """One sentence naming the failed checks, or ''."""
+        """One sentence naming the failed checks, the worst points and the remedy, or ''."""
         failed = [c for c in self.checks if not c.passed]
-        return "; ".join(c.name.replace("_", " ") + (f" {c.value:.3g} (limit {c.limit:.3g})"
-                                                     if c.value is not None else " failed")
-                         for c in failed)
+        return "; ".join(c.detail or (c.name.replace("_", " ") + (
+            f" {c.value:.3g} (limit {c.limit:.3g})" if c.value is not None else " failed"))
+            for c in failed)
 
     def parameter(self, name):
         """(value, sigma) of a refined parameter."""
