@@ -180,4 +180,4 @@ def test_implausible_fit_exits_3_and_still_writes(tmp_path, capsys):
     assert code == 3 and len(err.strip().splitlines()) == 1
     assert "implausible" in err and "chi square" in err
     doc = json.loads(out_json.read_text())
-    assert doc["success"] and not doc["plausible"]
+    assert not doc["success"] and not doc["plausible"]  # implausible: success false

@@ -265,7 +265,7 @@ def _cmd_refine(args):
         biaxial=args.biaxial, zero_normal_stress=args.zero_normal_stress,
         foil_normal=args.foil_normal,
         exclude_lines=_group_indices(args.exclude_lines or [], hexagonal, "--exclude-lines"),
-        tilt_tolerance_deg=args.tilt_tolerance_deg)
+        tilt_tolerance_deg=args.tilt_tolerance_deg, line_sigma_px=args.line_sigma_px)
     calibration = None
     if args.calibration:
         calibration = Calibration.from_document(
@@ -309,7 +309,7 @@ def _cmd_refine(args):
         return fit_figure(result, crystal, image=image)
 
     _finish(args, report.fit_document(result), figure)
-    if not result.success:
+    if not result.converged_fit:
         sys.stderr.write(f"laueline: the fit did not converge: {result.message}\n")
         return EXIT_NOT_CONVERGED
     if not result.plausible:
@@ -740,6 +740,9 @@ def build_parser():
                         "its centre, rotation and mirror")
     p.add_argument("--robust", action="store_true",
                    help="down-weight outliers and list those rejected")
+    p.add_argument("--line-sigma-px", type=float, default=None,
+                   help="sigma in px of an offset shared by all observations of one line "
+                        "(default: estimated from the residuals grouped by line)")
     p.add_argument("--disk-mrad", type=float, default=None,
                    help="disk radius in mrad for predicting and checking crossings (6); with "
                         "--image it sets the camera scale from the detected radius unless "

@@ -251,6 +251,11 @@ class FitResult:
         return sum(p.n_points for p in self.patterns)
 
     @property
+    def converged_fit(self):
+        """The least-squares fit converged and the assignment settled (checks aside)."""
+        return all(c.passed for c in self.checks if c.name == "converged")
+
+    @property
     def plausible(self):
         """All plausibility checks passed (chi-square, residuals, orientation, calibration)."""
         return all(c.passed for c in self.checks)
