@@ -162,8 +162,15 @@ def assemble_result(problem, crystal, x, converged, message, warnings, *, stiffn
     if sigma_stated and dof > 0 and not noise_estimated:
         chi2_out = chi2
         p_value = float(chi2_dist.sf(chi2, dof))
+        # limit 1e-3: an honest fit is refused once in a thousand (a 1 % level
+        # refuses two of every 200 honest fits); sigmas understated by a third fail
         if not inflate:  # detected lines scale their covariance up by design
-            checks.append(Check("chi_square_p_value", p_value >= 0.01, p_value, 0.01))
+            checks.append(Check(
+                "chi_square_p_value", p_value >= 1e-3, p_value, 1e-3,
+                "" if p_value >= 1e-3 else
+                f"chi square {chi2:.1f} for {dof} degrees of freedom (p = {p_value:.1e}): the "
+                f"scatter is {math.sqrt(chi2 / dof):.2f} times what the stated sigmas allow "
+                "(state larger sigma_px or a line sigma, or look for wrong points; --robust)"))
         if p_value < 0.01 and not inflate:
             warnings.append(f"chi-square {chi2:.1f} for {dof} degrees of freedom "
                             f"(p = {p_value:.1e}): the scatter exceeds the stated sigmas, so "
@@ -195,8 +202,9 @@ def assemble_result(problem, crystal, x, converged, message, warnings, *, stiffn
     if n_left:
         warnings.append(f"{n_left} observation(s) left out of the fit (see the tables)")
     failed = [c for c in checks if not c.passed and c.name != "converged"]
-    if converged and failed:
-        message = "implausible fit: " + "; ".join(c.detail or c.name for c in failed)
+    if failed:
+        reasons = "; ".join(c.detail or c.name for c in failed)
+        message = f"{message}; {reasons}" if message else f"implausible fit: {reasons}"
     if not message:
         message = (f"converged: {sum(p_.n_used for p_ in patterns)} observations in "
                    f"{len(patterns)} pattern(s), {dof} degrees of freedom")
