@@ -231,6 +231,24 @@ def _group_indices(values, hexagonal, option):
     return [tuple(values[i:i + size]) for i in range(0, len(values), size)]
 
 
+def _line_shape_note(image, detection, result, most=16):
+    """Split or broadened lines: one strain per pattern averages through the foil.
+
+    Only the lines the fit used are profiled, at most ``most`` of the
+    clearest (by signal-to-noise), which keeps the check to a few tenths of
+    a second: a foil that relaxes splits or broadens most of its lines.
+    """
+    from dataclasses import replace
+
+    from .relaxation import assess_line_profiles, line_shape_warning
+
+    used = [ln.index for ln in (result.lines or []) if ln.used]
+    keep = set(sorted(used, key=lambda i: -detection.lines[i].snr)[:most])
+    lines = [ln if i in keep else replace(ln, flag=ln.flag or "not profiled")
+             for i, ln in enumerate(detection.lines)]
+    return line_shape_warning(assess_line_profiles(image, replace(detection, lines=lines)))
+
+
 def _cmd_refine(args):
     from . import report
     from .fit import Calibration, PatternSpec, PixelFrame, is_hexagonal, refine_patterns
@@ -301,6 +319,10 @@ def _cmd_refine(args):
         result = refine_patterns(crystal, specs, **options)
     except InputError as exc:
         raise InputError(_refine_message(str(exc))) from None
+    if image is not None:
+        note = _line_shape_note(image, specs[0].detection, result)
+        if note is not None:
+            result.warnings.append(note)
     print(report.fit_text(result))
 
     def figure():
