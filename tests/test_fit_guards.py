@@ -129,3 +129,37 @@ def test_sample_x_not_normal_to_z_is_refused():
     axes = sample_axes(si.basis, (1, 1, 0), (0, 0, 1))
     np.testing.assert_allclose(axes @ axes.T, np.eye(3), atol=1e-12)
     assert np.linalg.det(axes) == pytest.approx(1.0)
+
+
+def test_line_sigma_option_and_its_report(tmp_path, capsys, crossings):
+    si, pts = crossings
+    path = tmp_path / "p.csv"
+    write_points(path, pts.xy_px, pts.hkl_a, pts.hkl_b)
+    cal = _calibration_file(tmp_path)
+    out_json = tmp_path / "fit.json"
+    code, out, err = run_cli(capsys, "refine", "Si", "--zone", *ZONE, "--x-axis", *X_AXIS,
+                             "--points", path, "--calibration", cal, "--line-sigma-px", 0.3,
+                             "--json", out_json)
+    assert code == 0, err
+    doc = json.loads(out_json.read_text())
+    assert doc["line_sigma_px"]["value"] == 0.3 and doc["line_sigma_px"]["source"] == "given"
+    assert "line sigma 0.3 px (given)" in out
+    code, _, err = run_cli(capsys, "refine", "Si", "--zone", *ZONE, "--x-axis", *X_AXIS,
+                           "--points", path, "--calibration", cal, "--line-sigma-px", -1)
+    assert code == 2 and "--line-sigma-px" in err and len(err.strip().splitlines()) == 1
+
+
+def test_systematic_part_adds_to_the_total(crossings):
+    # independent parts add (add_systematic); every reported sigma is the total
+    si, pts = crossings
+    sys_cov = np.diag(np.full(6, 1e-4)) ** 2
+    plain = refine(si, ZONE, pts, x_axis=X_AXIS, calibration=CAL)
+    fit = refine(si, ZONE, pts, x_axis=X_AXIS, calibration=CAL, systematic_covariance=sys_cov)
+    np.testing.assert_allclose(fit.strain_covariance_statistical,
+                               plain.strain_covariance_statistical, rtol=1e-9, atol=0)
+    np.testing.assert_allclose(fit.strain_covariance,
+                               fit.strain_covariance_statistical + sys_cov, rtol=1e-12)
+    np.testing.assert_allclose(fit.to_dict()["strain"]["covariance_voigt_systematic"], sys_cov)
+    total = np.sqrt(np.diag(fit.strain_covariance))
+    np.testing.assert_allclose(np.ravel(fit.strain.green_lagrange_sigma)[[0, 4, 8]],
+                               total[:3], rtol=1e-9)

@@ -206,6 +206,7 @@ _REFINE_OPTIONS = {
     "disk_mrad": "--disk-mrad", "match_mrad": "--match-mrad", "biaxial": "--biaxial",
     "tilt_deg": "tilt_deg", "model='fixed', free=['kv']": "--model fixed --free kv",
     "calibration": "--calibration", "hold": "--hold", "free": "--free",
+    "line_sigma_px": "--line-sigma-px",
     "a calibration": "--calibration", "(stiffness)": "(--cubic-elastic-GPa or --stiffness-GPa)",
 }
 
