@@ -59,7 +59,8 @@ def _trial_points(points, response, lines, rng):
 
 def test_reported_sigma_matches_the_scatter_with_line_offsets():
     # 200 trials of per-line offsets plus point noise; each fit holds the
-    # calibration's detector and voltage (the six strain components free), ~0.03 s
+    # calibration's detector and voltage (the six strain components free): about
+    # 0.04 s a fit, 8 s in all on an unloaded core
     si = read_crystal("Si")
     points = ewald_points(si, ZONE, X_AXIS, np.zeros(6), DETECTOR, n=30)
     response, lines = _offset_response(si, points)
