@@ -163,3 +163,27 @@ def test_systematic_part_adds_to_the_total(crossings):
     total = np.sqrt(np.diag(fit.strain_covariance))
     np.testing.assert_allclose(np.ravel(fit.strain.green_lagrange_sigma)[[0, 4, 8]],
                                total[:3], rtol=1e-9)
+
+
+def test_calibration_from_another_detector_size():
+    # an image fit remembers its image shape; a calibration made on 512 x 512 px
+    # images does not serve a 256 x 256 px one (another binning or camera)
+    from laueline.fit import refine_image
+    from laueline.images.detect import detect_lines
+    from laueline.images.render import RenderSettings, render_pattern
+
+    si = read_crystal("Si")
+    image, truth = render_pattern(si, ZONE, 200, 6, RenderSettings(rotation_deg=17, seed=3,
+                                                                  shape=(256, 256)),
+                                  x_axis=X_AXIS)
+    detection = detect_lines(image)
+    ref = refine_image(si, ZONE, detection, x_axis=X_AXIS, disk_mrad=6, mirror=False)
+    assert ref.success, ref.message
+    cal = ref.calibration()
+    assert cal.settings["image_shape"] == [256, 256]
+    same = refine_image(si, ZONE, detection, x_axis=X_AXIS, calibration=cal)
+    assert any(c.name == "calibration_detector" and c.passed for c in same.checks)
+    other = Calibration(cal.kv, cal.detector, "Si", cal.formula, cal.zone, cal.x_axis,
+                        {**cal.settings, "image_shape": [512, 512]})
+    fit = refine_image(si, ZONE, detection, x_axis=X_AXIS, calibration=other)
+    assert not fit.success and "512 x 512" in fit.message

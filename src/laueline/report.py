@@ -239,6 +239,7 @@ def _pattern_dict(pat):
         "points": [_point_dict(r, frame) for r in pat.points], "lines": lines,
         "line_residuals": [r.to_dict() for r in pat.line_table],
         "excluded_lines": [list(h) for h in pat.excluded],
+        "image_shape": None if pat.image_shape is None else list(pat.image_shape),
     }
 
 
@@ -312,7 +313,8 @@ def fit_document(result, *, calibration_source=None, points_source=None):
     if len(patterns) == 1:
         one = patterns[0]
         doc.update({k: one[k] for k in ("zone", "x_axis", "kv", "kv_sigma", "disk_mrad",
-                                        "detector", "points", "lines", "observations")})
+                                        "detector", "points", "lines", "observations",
+                                        "image_shape")})
         doc["wave_number_inv_A"] = one["wave_number_inv_A"]
         doc["calibration"] = one["calibration"]
         doc["points_file"] = one["source"] or None

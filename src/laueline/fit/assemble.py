@@ -393,6 +393,14 @@ def _calibration_checks(problem, crystal):
                              f"{where} was made at zone {list(cal.zone)}, this pattern is at "
                              f"{list(spec.zone)}: the effective voltage and camera scale "
                              "belong to one zone axis; use a calibration at this zone axis"))
+        shape = (cal.settings or {}).get("image_shape")
+        if shape and spec.detection is not None:
+            same = tuple(int(v) for v in shape) == tuple(spec.detection.shape)
+            out.append(Check("calibration_detector", same, None, None, "" if same else
+                             f"{where} was made on {shape[0]} x {shape[1]} px images, this "
+                             f"image has {spec.detection.shape[0]} x "
+                             f"{spec.detection.shape[1]}: another detector or binning; use a "
+                             "calibration made with this camera setting"))
         out.append(Check("calibration_converged", bool(cal.converged), None, None,
                          "" if cal.converged else f"{where} comes from a fit that did not "
                          "converge or was implausible: make the calibration again"))
@@ -507,7 +515,8 @@ def _pattern_result(problem, j, x, full, cov, factor, exclude, hexagonal):
         points=records, lines=lines, line_table=line_table, rms_px=rms, n_points=n_points,
         n_used=n_used, assigned=data.needs_assignment, tilt_deg=spec.tilt_deg,
         source=spec.source, pixel_frame=spec.pixel_frame, calibration=spec.calibration,
-        excluded=tuple(sorted(exclude)), hexagonal=hexagonal)
+        excluded=tuple(sorted(exclude)), hexagonal=hexagonal,
+        image_shape=None if lines is None else tuple(int(v) for v in data.detection.shape))
 
 
 def _line_table(hkl, d, z):

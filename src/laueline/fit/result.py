@@ -140,6 +140,7 @@ class PatternResult:
     calibration: Calibration | None = None
     excluded: tuple = ()
     hexagonal: bool = False
+    image_shape: tuple | None = None   # (rows, columns) of an image fit
 
     @property
     def observations(self):
@@ -280,7 +281,9 @@ class FitResult:
                            self.structure.get("formula", ""), p.zone, p.x_axis,
                            {"model": self.model, "parameters": list(self.parameters),
                             "inner_potential": self.inner_potential,
-                            "disk_mrad": p.disk_mrad}, self.success, p.source)
+                            "disk_mrad": p.disk_mrad,
+                            "image_shape": None if p.image_shape is None
+                            else list(p.image_shape)}, self.success, p.source)
 
     def fitted_pattern(self, pattern=0, crystal=None, min_strength=0.05):
         """The pattern predicted with the fitted basis and wave number (for figures)."""
