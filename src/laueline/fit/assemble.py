@@ -351,7 +351,8 @@ def _mirror_checks(problem, x):
     full = pm.full(x)
     out = []
     for j, (o, d) in enumerate(zip(problem._obs, problem.data)):
-        if o.kind != "crossings" or not isinstance(d, CrossingData) or not d.labelled or                 len(o) < 3:
+        if o.kind != "crossings" or not isinstance(d, CrossingData) or not d.labelled \
+                or len(o) < 3:
             continue
         geo = pm.geometry(full[None], j)
         spec = problem.specs[j]
