@@ -180,4 +180,28 @@ def test_implausible_fit_exits_3_and_still_writes(tmp_path, capsys):
     assert code == 3 and len(err.strip().splitlines()) == 1
     assert "implausible" in err and "chi square" in err
     doc = json.loads(out_json.read_text())
-    assert doc["success"] and not doc["plausible"]
+    assert not doc["success"] and not doc["plausible"]  # implausible: success false
+
+
+# -- split lines in an image: the single-strain fit says so ---------------------------
+
+def test_refine_image_warns_of_split_lines(tmp_path, capsys):
+    # lines split by surface relaxation, drawn from excitation errors and the
+    # quadrature profile of a depth-varying displacement (tests/test_relaxation.py)
+    from test_relaxation import ZONE as RELAX_ZONE
+    from test_relaxation import _render_split
+
+    from laueline.detector import Detector
+
+    si = read_crystal("Si")
+    detector = Detector((257.4, 253.8), 0.42 * 512 / 6, 12.0, False)
+    image = _render_split(si, np.array([1.5e-3, -0.5e-3, 1.0e-3, 0.0, 0.0, 0.3e-3]),
+                          np.array([0.04, 0.012]), 100.0, 400.0, detector)
+    np.save(tmp_path / "p.npy", image)
+    cal = tmp_path / "cal.json"
+    cal.write_text(json.dumps({"schema": "laueline.fit/1", "kv": 200.0,
+                               "detector": detector.as_dict()}))
+    code, out, err = run_cli(capsys, "refine", "Si", "--zone", *RELAX_ZONE, "--image",
+                             tmp_path / "p.npy", "--calibration", cal)
+    assert code in (0, 3), err
+    assert "split" in out and "laueline relaxation" in out

@@ -263,6 +263,7 @@ _REFINE_OPTIONS = {
     "disk_mrad": "--disk-mrad", "match_mrad": "--match-mrad", "biaxial": "--biaxial",
     "tilt_deg": "tilt_deg", "model='fixed', free=['kv']": "--model fixed --free kv",
     "calibration": "--calibration", "hold": "--hold", "free": "--free",
+    "line_sigma_px": "--line-sigma-px",
     "a calibration": "--calibration", "(stiffness)": "(--cubic-elastic-GPa or --stiffness-GPa)",
 }
 
@@ -286,6 +287,24 @@ def _group_indices(values, hexagonal, option):
         raise InputError(f"{option}: give indices in groups of {size}"
                          + (" (four-index for a hexagonal crystal)" if hexagonal else ""))
     return [tuple(values[i:i + size]) for i in range(0, len(values), size)]
+
+
+def _line_shape_note(image, detection, result, most=16):
+    """Split or broadened lines: one strain per pattern averages through the foil.
+
+    Only the lines the fit used are profiled, at most ``most`` of the
+    clearest (by signal-to-noise), which keeps the check to a few tenths of
+    a second: a foil that relaxes splits or broadens most of its lines.
+    """
+    from dataclasses import replace
+
+    from .relaxation import assess_line_profiles, line_shape_warning
+
+    used = [ln.index for ln in (result.lines or []) if ln.used]
+    keep = set(sorted(used, key=lambda i: -detection.lines[i].snr)[:most])
+    lines = [ln if i in keep else replace(ln, flag=ln.flag or "not profiled")
+             for i, ln in enumerate(detection.lines)]
+    return line_shape_warning(assess_line_profiles(image, replace(detection, lines=lines)))
 
 
 def _cmd_refine(args):
@@ -324,7 +343,7 @@ def _cmd_refine(args):
         biaxial=args.biaxial, zero_normal_stress=args.zero_normal_stress,
         foil_normal=args.foil_normal,
         exclude_lines=_group_indices(args.exclude_lines or [], hexagonal, "--exclude-lines"),
-        tilt_tolerance_deg=args.tilt_tolerance_deg)
+        tilt_tolerance_deg=args.tilt_tolerance_deg, line_sigma_px=args.line_sigma_px)
     calibration = None
     if args.calibration:
         calibration = Calibration.from_document(
@@ -385,6 +404,10 @@ def _cmd_refine(args):
             result = refine_patterns(crystal, specs, **options)
     except InputError as exc:
         raise InputError(_refine_message(str(exc))) from None
+    if image is not None:
+        note = _line_shape_note(image, specs[0].detection, result)
+        if note is not None:
+            result.warnings.append(note)
     print(report.fit_text(result))
     if dynamical is not None:
         from .dynamical import dynamical_fit_text
@@ -403,7 +426,7 @@ def _cmd_refine(args):
         document = dynamical_fit_document(document, dynamical,
                                           report.fit_document(dynamical.kinematic))
     _finish(args, document, figure)
-    if not result.success:
+    if not result.converged_fit:
         sys.stderr.write(f"laueline: the fit did not converge: {result.message}\n")
         return EXIT_NOT_CONVERGED
     if not result.plausible:
@@ -891,6 +914,9 @@ def build_parser():
                         "its centre, rotation and mirror")
     p.add_argument("--robust", action="store_true",
                    help="down-weight outliers and list those rejected")
+    p.add_argument("--line-sigma-px", type=float, default=None,
+                   help="sigma in px of an offset shared by all observations of one line "
+                        "(default: estimated from the residuals grouped by line)")
     p.add_argument("--disk-mrad", type=float, default=None,
                    help="disk radius in mrad for predicting and checking crossings (6); with "
                         "--image it sets the camera scale from the detected radius unless "

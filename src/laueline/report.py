@@ -298,6 +298,7 @@ def _pattern_dict(pat):
         "points": [_point_dict(r, frame) for r in pat.points], "lines": lines,
         "line_residuals": [r.to_dict() for r in pat.line_table],
         "excluded_lines": [list(h) for h in pat.excluded],
+        "image_shape": None if pat.image_shape is None else list(pat.image_shape),
     }
 
 
@@ -359,6 +360,8 @@ def fit_document(result, *, calibration_source=None, points_source=None):
         "units": units,
         "correlation": result.correlation,
         "condition_number": result.condition_number,
+        "line_sigma_px": (result.line_sigma.to_dict() if result.line_sigma is not None
+                          else None),
         "chi2": result.chi2, "dof": result.dof, "converged": result.success,
         "rms_px": result.rms_px, "n_points": result.n_points, "n_used": result.n_used,
         "patterns": patterns,
@@ -369,7 +372,8 @@ def fit_document(result, *, calibration_source=None, points_source=None):
     if len(patterns) == 1:
         one = patterns[0]
         doc.update({k: one[k] for k in ("zone", "x_axis", "kv", "kv_sigma", "disk_mrad",
-                                        "detector", "points", "lines", "observations")})
+                                        "detector", "points", "lines", "observations",
+                                        "image_shape")})
         doc["wave_number_inv_A"] = one["wave_number_inv_A"]
         doc["calibration"] = one["calibration"]
         doc["points_file"] = one["source"] or None
@@ -415,7 +419,10 @@ def fit_text(result):
     from .fit.indices import format_direction
 
     out = []
-    status = "" if result.success else "   NOT CONVERGED"
+    status = ""
+    if not result.success:
+        status = "   NOT CONVERGED" if any(c.name == "converged" and not c.passed
+                                           for c in result.checks) else "   IMPLAUSIBLE"
     hexagonal = result.patterns[0].hexagonal
     zones = "; ".join(f"[{format_direction(p.zone, hexagonal)}]" for p in result.patterns)
     kinds = {p.observations for p in result.patterns}
@@ -564,13 +571,24 @@ def _fit_tail(out, result):
         out.append("")
         out.extend(f"check failed: {c.name}" + (f" ({c.value:.3g}, limit {c.limit:.3g})"
                                                  if c.value is not None else "")
-                   for c in failed)
+                   + (f": {c.detail}" if c.detail else "") for c in failed)
+    line = result.line_sigma
+    if line is not None:
+        out.append("")
+        point = (f", point sigma {line.point_sigma_px:.3g} px estimated from the scatter "
+                 "within lines" if line.point_sigma_px is not None else "")
+        out.append(f"line sigma {line.value:.3g} px ({line.source}): an offset shared by all "
+                   f"observations of a line{point}")
     if result.warnings:
         out.append("")
         out.extend(f"warning: {w}" for w in result.warnings)
     out.append("")
-    out.append("note: the strain covariance is statistical only: dynamical line shifts and "
-               "per-line errors are not yet in it")
+    if np.any(result.strain_covariance_systematic):
+        out.append("note: strain sigmas are totals: statistical (point noise and per-line "
+                   "errors) plus the systematic covariance given")
+    else:
+        out.append("note: strain sigmas are statistical (point noise and per-line errors); no "
+                   "systematic part (dynamical line shifts) was given, so none is included")
     out.extend(f"caution: {c}" for c in CAUTIONS)
     return "\n".join(out)
 

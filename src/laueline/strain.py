@@ -107,17 +107,28 @@ def sample_axes(reference_basis, x_dir, z_dir):
     x_dir, z_dir : sequence of 3 numbers
         Lattice directions [u v w] of the sample x axis (for example a
         channel direction) and z axis (for example the growth direction or
-        interface normal).  x is made normal to z; y = z cross x.
+        interface normal).  They must be normal to each other in the
+        crystal: a frame is never made orthogonal silently; y = z cross x.
+
+    Raises
+    ------
+    InputError
+        Zero, parallel or non-normal directions.
     """
     A = np.asarray(reference_basis, float)
     z = A @ np.asarray(z_dir, float)
     x = A @ np.asarray(x_dir, float)
     if np.linalg.norm(z) == 0 or np.linalg.norm(x) == 0:
-        raise InputError("sample directions must be non-zero")
+        raise InputError("x_dir, z_dir: sample directions must be non-zero")
     z /= np.linalg.norm(z)
-    x = x - (x @ z) * z
-    if np.linalg.norm(x) < 1e-6 * np.linalg.norm(A @ np.asarray(x_dir, float)):
-        raise InputError("the sample x and z directions are parallel")
+    x /= np.linalg.norm(x)
+    cos = float(x @ z)
+    if abs(cos) > 1e-6:  # direction indices are exact; this only absorbs rounding
+        raise InputError(f"x_dir: the sample x axis {list(x_dir)} is not normal to the sample "
+                         f"z axis {list(z_dir)} (angle "
+                         f"{np.degrees(np.arccos(np.clip(cos, -1, 1))):.2f} deg); give "
+                         "normal directions")
+    x = x - cos * z
     x /= np.linalg.norm(x)
     return np.array([x, np.cross(z, x), z])
 

@@ -118,6 +118,8 @@ class Calibration:
         converged = doc.get("success", doc.get("converged", True))
         settings = {k: doc[k] for k in ("model", "parameters", "inner_potential", "disk_mrad")
                     if k in doc}
+        if part.get("image_shape"):
+            settings["image_shape"] = [int(v) for v in part["image_shape"]]
         zone = part.get("zone")
         x_axis = part.get("x_axis")
         return cls(kv, detector, str(structure.get("name", "")),

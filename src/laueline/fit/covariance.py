@@ -68,10 +68,14 @@ def whitener(cov):
     """W with W S W^T = I: a vector of 1/sigma for variances S (n,), else inverse Cholesky."""
     if cov.ndim == 1:
         return 1.0 / np.sqrt(cov)
-    from scipy.linalg import cholesky, solve_triangular
+    from scipy.linalg import cholesky
+    from scipy.linalg.lapack import dtrtri
 
     lower = cholesky(cov, lower=True)
-    return solve_triangular(lower, np.eye(len(cov)), lower=True)
+    inverse, info = dtrtri(lower, lower=1)   # LAPACK's triangular inverse, L^-1
+    if info != 0:
+        raise np.linalg.LinAlgError("singular residual covariance")
+    return inverse
 
 
 def apply_whitener(white, v):

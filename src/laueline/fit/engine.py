@@ -58,7 +58,8 @@ from .observations import CrossingData, LineData
 from .orientation import orientation_from_tilts, pattern_rotations_deg
 from .parameters import ParameterModel
 
-__all__ = ["PatternSpec", "refine", "refine_image", "refine_patterns"]
+__all__ = ["PatternSpec", "LineSigma", "DEFAULT_LINE_SIGMA_PX", "refine", "refine_image",
+           "refine_patterns"]
 
 _JAC_STEP = 1e-6
 _MAX_ROUNDS = 12
@@ -129,6 +130,7 @@ class _Problem:
         self.parameters = parameters
         self.specs = specs
         self.data = data
+        self.line_model = None   # (parameters x, line sigma px, point sigma px per pattern)
 
     def actives(self):
         return [d.active(self, j) for j, d in enumerate(self.data)]
@@ -137,6 +139,15 @@ class _Problem:
         """Active observations, their whiteners and the Jacobian columns of each pattern."""
         pm = self.parameters
         self._obs = self.actives()
+        if self.line_model is not None:
+            x, line_sigma, point_sigma = self.line_model
+            full = pm.full(x)
+            for j, o in enumerate(self._obs):
+                if len(o) == 0:
+                    continue
+                o.attach_lines(pm.geometry(full[None], j), line_sigma)
+                if point_sigma[j] is not None and getattr(o, "sigma_px", 0) is None:
+                    o.sigma_px = np.full(len(o), point_sigma[j])
         self._cov = [o.residual_covariance() for o in self._obs]
         self._white = [whitener(c) if len(c) else np.zeros(0) for c in self._cov]
         self._cols = [pm.columns_of_pattern(j) for j in range(len(self.specs))]
@@ -320,6 +331,117 @@ def _fit_loop(problem, robust):
     if not settled:
         converged, message = False, "the assignment did not settle"
     return x, converged, message, warnings
+
+
+# ---------------------------------------------------------------------------
+# the per-line error model
+# ---------------------------------------------------------------------------
+
+#: Line sigma (px) assumed when the data cannot separate a per-line offset from
+#: point noise and none is given: a quarter of a typical 2 px wide deficit line
+#: at 40 px/mrad (common practice for the precision of locating a line).
+DEFAULT_LINE_SIGMA_PX = 0.5
+
+
+@dataclass
+class LineSigma:
+    """The per-line offset sigma a fit used.
+
+    Attributes
+    ----------
+    value : float
+        Pixels.
+    source : str
+        ``given``, ``estimated`` (restricted maximum likelihood from the
+        residuals grouped by line), ``default`` (not determined by the data;
+        :data:`DEFAULT_LINE_SIGMA_PX`) or ``none`` (detected lines whose own
+        covariance is used alone).
+    point_sigma_px : float or None
+        Point sigma estimated from the scatter within lines (None when
+        stated per point or not used).
+    """
+
+    value: float
+    source: str
+    point_sigma_px: float | None = None
+
+    def to_dict(self):
+        return {"value": self.value, "source": self.source,
+                "point_sigma_px": self.point_sigma_px}
+
+
+def _within_line_point_sigma(r, J, loading):
+    """Point sigma from the scatter left when every line offset is free (one-way ANOVA).
+
+    Searle, Casella and McCulloch (1992), ch. 3: the within-class mean square
+    is unbiased for the point variance whatever the line variance.
+    """
+    design = np.concatenate([J, loading], axis=1)
+    coef, _, rank, _ = np.linalg.lstsq(design, r, rcond=None)
+    dof = len(r) - int(rank)
+    if dof < 1:
+        return None
+    left = r - design @ coef
+    return float(np.sqrt(left @ left / dof))
+
+
+def _line_error_model(problem, x, line_sigma_px):
+    """Set the per-line model of every pattern for the final fit; returns LineSigma.
+
+    Crossings: the point sigma is the stated one, else estimated from the
+    scatter within lines; the line sigma is given, else estimated by REML
+    (:func:`laueline.uncertainty.estimate_line_sigma`) when the data
+    determine it, else :data:`DEFAULT_LINE_SIGMA_PX`.  Detected lines carry
+    the detection's covariance plus the given line term (none otherwise).
+    """
+    from scipy.linalg import block_diag
+
+    from ..uncertainty import estimate_line_sigma
+
+    pm = problem.parameters
+    problem.line_model = None
+    problem.prepare()
+    full = pm.full(x)
+    r, J = problem.raw(x, with_jacobian=True)
+    point = [None] * len(problem._obs)
+    rows, loads, sig = [], [], []
+    for j, o in enumerate(problem._obs):
+        if o.kind != "crossings" or len(o) == 0:
+            continue
+        o.attach_lines(pm.geometry(full[None], j), 0.0)
+        rows.append(np.arange(problem._rows[j], problem._rows[j + 1]))
+        loads.append(o.loading)
+        sig.append(None if o.sigma_px is None else np.repeat(o.sigma_px, 2))
+    if not rows:
+        value = 0.0 if line_sigma_px is None else float(line_sigma_px)
+        problem.line_model = (x, value, point)
+        return LineSigma(value, "none" if line_sigma_px is None else "given")
+    idx = np.concatenate(rows)
+    r_c, J_c = r[idx], J[idx]
+    J_c = J_c[:, np.any(J_c != 0, axis=0)]
+    M = block_diag(*loads)
+    estimated_point = None
+    if any(s is None for s in sig):
+        estimated_point = _within_line_point_sigma(r_c, J_c, M)
+        if estimated_point is None or estimated_point <= 0:
+            # no scatter left within lines: the scale of all residuals
+            dof = max(len(r_c) - J_c.shape[1], 1)
+            estimated_point = max(float(np.sqrt(r_c @ r_c / dof)), 1e-6)
+        for j, o in enumerate(problem._obs):
+            if o.kind == "crossings" and o.sigma_px is None:
+                point[j] = estimated_point
+        sig = [np.full(len(l), estimated_point) if s is None else s for s, l in zip(sig, loads)]
+    point_sigma = np.concatenate(sig)
+    if line_sigma_px is not None:
+        result = LineSigma(float(line_sigma_px), "given", estimated_point)
+    else:
+        est = estimate_line_sigma(r_c, M, point_sigma, J_c)
+        if est.determined:
+            result = LineSigma(est.line_sigma, "estimated", estimated_point)
+        else:
+            result = LineSigma(DEFAULT_LINE_SIGMA_PX, "default", estimated_point)
+    problem.line_model = (x, result.value, point)
+    return result
 
 
 # ---------------------------------------------------------------------------
@@ -531,7 +653,8 @@ def _has_dilatation(pm):
 def refine_patterns(crystal, patterns, *, kv=200.0, model="strain", free=(), hold=(),
                     unique_axis=None, robust=False, inner_potential=False, hold_strain=None,
                     biaxial=False, zero_normal_stress=False, foil_normal=None, stiffness=None,
-                    sample_axes=None, exclude_lines=(), tilt_tolerance_deg=1.0):
+                    sample_axes=None, exclude_lines=(), tilt_tolerance_deg=1.0,
+                    line_sigma_px=None, systematic_covariance=None):
     """Fit one crystal (one strain) to one or several patterns of the same region.
 
     Parameters
@@ -572,11 +695,21 @@ def refine_patterns(crystal, patterns, *, kv=200.0, model="strain", free=(), hol
         Reflections left out of the fit.
     tilt_tolerance_deg : float
         Largest misfit between a tilted zone axis and the beam.
+    line_sigma_px : float, optional
+        Standard deviation (px) of an offset shared by all observations of
+        one line (detection, dynamical shift).  By default estimated from
+        the residuals grouped by line (REML) when the data determine it,
+        else :data:`DEFAULT_LINE_SIGMA_PX` with a warning.
+    systematic_covariance : ndarray (6, 6), optional
+        Systematic covariance of the strain (Voigt, crystal Cartesian frame),
+        for example a kinematic-bias estimate; added to the statistical
+        part (:func:`laueline.uncertainty.add_systematic`).
 
     Returns
     -------
     FitResult
-        ``success`` False when the fit did not converge (see ``message``).
+        ``success`` False when the fit did not converge or failed a
+        plausibility check (see ``message`` and ``checks``).
 
     Raises
     ------
@@ -592,11 +725,25 @@ def refine_patterns(crystal, patterns, *, kv=200.0, model="strain", free=(), hol
         hold_strain=hold_strain, biaxial=biaxial, zero_normal_stress=zero_normal_stress,
         foil_normal=foil_normal, stiffness=stiffness, sample_axes=sample_axes,
         exclude_lines=exclude_lines, tilt_tolerance_deg=tilt_tolerance_deg)
+    if line_sigma_px is not None and not (np.isfinite(line_sigma_px) and line_sigma_px >= 0):
+        raise InputError(f"line_sigma_px: must be a non-negative number of pixels, got "
+                         f"{line_sigma_px}")
     x, converged, message, loop_warnings = _fit_loop(problem, robust)
     warnings += loop_warnings
+    line = _line_error_model(problem, x, line_sigma_px)
+    if line.source == "default":
+        warnings.append(f"the per-line error is not determined by these data (too few "
+                        f"crossings per line); {DEFAULT_LINE_SIGMA_PX:g} px is assumed: give "
+                        "line_sigma_px")
+    if converged:
+        # the generalised least-squares fit under the per-line model
+        x, converged, message = _solve(problem, x, robust=False)
+    else:
+        problem.prepare()
     if message:
         warnings.append(message)
     return assemble_result(problem, crystal, x, converged, message, warnings,
+                           line_sigma=line, systematic_covariance=systematic_covariance,
                            stiffness=stiffness,
                            sample_axes=sample_axes, exclude=exclude, hexagonal=hexagonal,
                            unique_axis=unique_axis if model in ("tetragonal", "monoclinic")

@@ -64,6 +64,8 @@ class Crossings:
     hkl_a: np.ndarray        # (n, 3)
     hkl_b: np.ndarray        # (n, 3)
     sigma_px: np.ndarray | None = None  # (n,)
+    line_sigma_px: float = 0.0
+    loading: np.ndarray | None = None   # (2n, m) line offsets -> residuals, px per px
 
     kind = "crossings"
     group_size = 2
@@ -72,6 +74,23 @@ class Crossings:
     @property
     def sigma_stated(self):
         return self.sigma_px is not None
+
+    def attach_lines(self, geometry, line_sigma_px):
+        """Add the per-line error term: one offset per line, shared by its crossings.
+
+        The loading comes from the unit normals of both loci at each crossing
+        in pixels (:func:`laueline.uncertainty.crossing_loading`), so a
+        crossing of lines meeting at a small angle is loose along their
+        bisector, whatever the detector's rotation, mirror or distortion.
+        """
+        from ..uncertainty import crossing_loading
+
+        _, index = np.unique(self.line_labels().reshape(-1, 3), axis=0, return_inverse=True)
+        index = index.reshape(-1, 2)
+        normals = self.line_normals_px(geometry)
+        self.loading = crossing_loading(normals[:, 0], normals[:, 1], index[:, 0],
+                                        index[:, 1], int(index.max()) + 1 if len(index) else 0)
+        self.line_sigma_px = float(line_sigma_px)
 
     def __len__(self):
         return len(self.xy_px)
@@ -85,8 +104,13 @@ class Crossings:
         return self.predicted_px(geometry) - self.xy_px
 
     def residual_covariance(self):
+        """Point variances (2n,), or D + s^2 M M^T (2n, 2n) with the per-line term."""
         s = np.ones(len(self)) if self.sigma_px is None else np.asarray(self.sigma_px, float)
-        return np.repeat(s * s, 2)
+        if self.loading is None or self.line_sigma_px == 0:
+            return np.repeat(s * s, 2)
+        from ..uncertainty import residual_covariance
+
+        return residual_covariance(self.loading, np.repeat(s, 2), self.line_sigma_px).dense()
 
     def line_labels(self):
         return np.stack([self.hkl_a, self.hkl_b], axis=1)
@@ -119,10 +143,25 @@ class LinePoints:
     hkl: np.ndarray          # (L, 3)
     points_px: np.ndarray    # (L, k, 2)
     covariance: np.ndarray   # (L, k, k) px^2, across-line position at the points
+    line_sigma_px: float = 0.0
 
     kind = "line points"
     sigma_stated = True
     inflate = True
+
+    def attach_lines(self, geometry, line_sigma_px):
+        """Add the per-line offset term to the detection's own covariance of each line.
+
+        An offset moves every point of its line across it by itself
+        (:func:`laueline.uncertainty.line_point_loading`): s^2 in every
+        element of the line's block.
+        """
+        self.line_sigma_px = float(line_sigma_px)
+
+    def loading_of_lines(self):
+        from ..uncertainty import line_point_loading
+
+        return line_point_loading(np.repeat(np.arange(len(self)), self.group_size), len(self))
 
     @property
     def group_size(self):
@@ -142,7 +181,7 @@ class LinePoints:
     def residual_covariance(self):
         from scipy.linalg import block_diag
 
-        return block_diag(*self.covariance)
+        return block_diag(*(self.covariance + self.line_sigma_px ** 2))
 
     def line_labels(self):
         return self.hkl[:, None, :]
@@ -277,6 +316,26 @@ def _match(xy_px, cand_px, gate_px, distinct=False, minimum=0):
 # crossings measured in one pattern
 # ---------------------------------------------------------------------------
 
+def _row_keys(hkl):
+    """One integer per index triple (for comparing pairs of labels)."""
+    h = np.asarray(hkl, np.int64) + 512
+    return (h[:, 0] * 1024 + h[:, 1]) * 1024 + h[:, 2]
+
+
+def _refuse_repeats(rows, label, what):
+    """A point (or label pair) given twice would count twice and shrink every sigma."""
+    rows = np.asarray(rows)
+    if len(rows) < 2:
+        return
+    _, first, counts = np.unique(rows, axis=0, return_index=True, return_counts=True)
+    if np.any(counts > 1):
+        again = [int(i) for i in np.setdiff1d(np.arange(len(rows)), first)]
+        twice = [i + 1 for i in again[:5]]
+        raise InputError(f"{label}points: {len(again)} {what}(s) repeat an earlier one (rows "
+                         f"{', '.join(map(str, twice))}{', ...' if len(again) > 5 else ''}): a "
+                         "crossing measured twice must be given once (average the positions)")
+
+
 class CrossingData:
     """Measured crossing positions of one pattern, labelled or not."""
 
@@ -314,8 +373,11 @@ class CrossingData:
             if sv[0] == 0 or sv[-1] < 1e-3 * sv[0]:
                 raise InputError(f"{spec.label}the points are collinear (or coincide): a "
                                  "crossing pattern needs points spread in two dimensions")
+        _refuse_repeats(self.xy, spec.label, "point")
         if not self.labelled:
             return
+        pairs = np.sort(np.stack([_row_keys(self.hkl_a), _row_keys(self.hkl_b)], 1), axis=1)
+        _refuse_repeats(pairs, spec.label, "label pair")
         crystal = problem.parameters.crystal
         both = np.concatenate([self.hkl_a, self.hkl_b])
         if np.any(~np.any(both, axis=1)):

@@ -17,8 +17,9 @@ CAUTIONS = (
     "The model is kinematic: dynamical shifts of HOLZ lines are ignored; an effective "
     "voltage calibrated on a reference region absorbs them only in part.",
 )
-SYSTEMATIC_NOTE = ("the systematic part (dynamical line shifts, per-line errors) is not yet "
-                   "modelled and is zero here; the total equals the statistical part")
+SYSTEMATIC_NOTE = ("the statistical part includes per-line errors (line_sigma_px); the "
+                   "systematic part is the one given to the fit (for example a kinematic-bias "
+                   "estimate of dynamical line shifts) and is zero when none was given")
 
 
 class _Record:
@@ -88,6 +89,7 @@ class Check(_Record):
     passed: bool
     value: float | None
     limit: float | None
+    detail: str = ""   # why it failed: the worst points and the remedy
 
 
 @dataclass
@@ -138,6 +140,7 @@ class PatternResult:
     calibration: Calibration | None = None
     excluded: tuple = ()
     hexagonal: bool = False
+    image_shape: tuple | None = None   # (rows, columns) of an image fit
 
     @property
     def observations(self):
@@ -215,6 +218,7 @@ class FitResult:
     inner_potential: bool = False
     crystal: object = field(default=None, repr=False)
     poorly_separated: list = field(default_factory=list)
+    line_sigma: object = None   # laueline.fit.engine.LineSigma: per-line error used
 
     # -- the first (often only) pattern -----------------------------------------
     converged = property(lambda self: self.success)
@@ -248,17 +252,22 @@ class FitResult:
         return sum(p.n_points for p in self.patterns)
 
     @property
+    def converged_fit(self):
+        """The least-squares fit converged and the assignment settled (checks aside)."""
+        return all(c.passed for c in self.checks if c.name == "converged")
+
+    @property
     def plausible(self):
         """All plausibility checks passed (chi-square, residuals, orientation, calibration)."""
         return all(c.passed for c in self.checks)
 
     @property
     def implausibility(self):
-        """One sentence naming the failed checks, or ''."""
+        """One sentence naming the failed checks, the worst points and the remedy, or ''."""
         failed = [c for c in self.checks if not c.passed]
-        return "; ".join(c.name.replace("_", " ") + (f" {c.value:.3g} (limit {c.limit:.3g})"
-                                                     if c.value is not None else " failed")
-                         for c in failed)
+        return "; ".join(c.detail or (c.name.replace("_", " ") + (
+            f" {c.value:.3g} (limit {c.limit:.3g})" if c.value is not None else " failed"))
+            for c in failed)
 
     def parameter(self, name):
         """(value, sigma) of a refined parameter."""
@@ -272,7 +281,9 @@ class FitResult:
                            self.structure.get("formula", ""), p.zone, p.x_axis,
                            {"model": self.model, "parameters": list(self.parameters),
                             "inner_potential": self.inner_potential,
-                            "disk_mrad": p.disk_mrad}, self.success, p.source)
+                            "disk_mrad": p.disk_mrad,
+                            "image_shape": None if p.image_shape is None
+                            else list(p.image_shape)}, self.success, p.source)
 
     def fitted_pattern(self, pattern=0, crystal=None, min_strength=0.05):
         """The pattern predicted with the fitted basis and wave number (for figures)."""
