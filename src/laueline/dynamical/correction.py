@@ -221,6 +221,11 @@ def _corrected_points(points, measured, state, model):
     ha = np.array([r["hkl_a"] for r in measured.points])[used]
     hb = np.array([r["hkl_b"] for r in measured.points])[used]
     sigma = None if points.sigma_px is None else np.asarray(points.sigma_px)[used]
+    estimated = getattr(getattr(measured, "line_sigma", None), "point_sigma_px", None)
+    if sigma is None and estimated:
+        # the point noise estimated on the measured crossings is held, like the
+        # line sigma, so the weights do not move between rounds
+        sigma = np.full(len(xy), float(estimated))
     d = _crossing_corrections_px(state, model, ha, hb)
     # lines meeting at a grazing angle leave their crossing undefined to within the
     # shifts: such crossings are left out of the corrected fit
@@ -335,6 +340,12 @@ def refine_dynamical(crystal, zone, observations, *, thickness_nm, thickness_sig
                    mirror=kinematic.detector.mirror)
     for key in ("match_mrad",):
         options.pop(key, None)
+    # the error model is held through the rounds: a per-line sigma estimated
+    # afresh from slightly moved points would change the weights, and with
+    # them the strain, by more than the correction settles to
+    line_sigma = getattr(kinematic, "line_sigma", None)
+    if line_sigma is not None and line_sigma.source in ("estimated", "default"):
+        options.setdefault("line_sigma_px", line_sigma.value)
 
     def fit(data):
         return refine_image(crystal, zone, data, **options) if image else \
