@@ -402,6 +402,15 @@ def _cmd_refine(args):
             result = dynamical.result
         else:
             result = refine_patterns(crystal, specs, **options)
+            bias = _kinematic_bias(result, crystal)
+            if bias is not None:
+                # the fit again, with the kinematic model's bias as its systematic part
+                result = refine_patterns(crystal, specs, **options,
+                                         systematic_covariance=bias.covariance_voigt)
+                result.warnings.append(f"kinematic-bias estimate ({bias.method}): "
+                                       f"{bias.note}; it is the systematic part of the "
+                                       "strain's total uncertainty (--dynamical corrects "
+                                       "the shifts instead)")
     except InputError as exc:
         raise InputError(_refine_message(str(exc))) from None
     if image is not None:
@@ -483,6 +492,26 @@ def _cmd_thickness(args):
     _finish(args, report.thickness_document(
         result, crystal.summary() if crystal is not None else None), figure)
     return 0
+
+
+def _kinematic_bias(result, crystal):
+    """The kinematic-bias estimate of a strain fit (laueline.dynamical), or None.
+
+    The engine's shifts when they take under two seconds, else the documented
+    floor; None for fits without a strain (a calibration) or that failed.
+    """
+    import numpy as np
+
+    from .dynamical import KINEMATIC_BIAS_FLOOR, KinematicBias, kinematic_bias
+
+    if result.model == "fixed" or result.strain_covariance is None or not result.converged_fit or \
+            not np.all(np.isfinite(result.strain_covariance)):
+        return None
+    if len(result.patterns) == 1:
+        return kinematic_bias(result, crystal, max_seconds=2.0)
+    level = KINEMATIC_BIAS_FLOOR["calibrated"]
+    return KinematicBias(np.eye(6) * level ** 2, np.full(6, level), "floor", 200.0,
+                         f"conservative floor {level:.0e} per component for a joint fit")
 
 
 def _cmd_relaxation(args):
