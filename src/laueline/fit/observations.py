@@ -281,6 +281,20 @@ def _search_orientation(xy, t_cand, scale, center, rotation, mirror, gate_mrad):
     return sc, m, rot, c, rivals
 
 
+def _note_orientation(spec, rotation, mirror, rivals, what, warnings, remedy):
+    """Warn of an orientation found by search and of rivals that fit as well.
+
+    Returns the rivals (or None when there are none).
+    """
+    if spec.rotation_deg is None:
+        warnings.append(f"{spec.label}orientation found by search: rotation {rotation:.1f} "
+                        f"deg, mirror {'yes' if mirror else 'no'}")
+    if not rivals:
+        return None
+    warnings.append(spec.label + _rival_warning(what, rivals, remedy))
+    return rivals
+
+
 def _rival_warning(what, rivals, hint):
     other_m, other_rot = rivals[0]
     return (f"the {what} fit the pattern equally well at rotation {other_rot:.1f} deg, mirror "
@@ -456,14 +470,9 @@ class CrossingData:
             raise InputError(f"{spec.label}only {score[0]} of {len(self.xy)} points lie within "
                              f"{spec.match_mrad:g} mrad of a predicted crossing in any "
                              "orientation: check the zone axis, the scale or the match gate")
-        if spec.rotation_deg is None:
-            warnings.append(f"{spec.label}orientation found by search: rotation {rot:.1f} deg, "
-                            f"mirror {'yes' if m else 'no'}")
-        if rivals:
-            self.rivals = rivals
-            warnings.append(spec.label + _rival_warning(
-                "points", rivals, "fix the orientation (rotation and mirror, or a calibration) "
-                "from a labelled reference"))
+        self.rivals = _note_orientation(spec, rot, m, rivals, "points", warnings,
+                                        "fix the orientation (rotation and mirror, or a "
+                                        "calibration) from a labelled reference") or self.rivals
         pm.mirror[j] = bool(m)
         pm.set_start("center_x", j, c[0])
         pm.set_start("center_y", j, c[1])
@@ -650,13 +659,9 @@ class LineData:
             raise InputError(f"{spec.label}only {hits} of {len(self.good)} detected lines "
                              "match predicted ones in any orientation: check the zone axis, "
                              "the voltage and the scale")
-        if spec.rotation_deg is None:
-            warnings.append(f"{spec.label}orientation found by search: rotation {rot:.1f} deg, "
-                            f"mirror {'yes' if m else 'no'}")
-        if rivals:
-            self.rivals = rivals
-            warnings.append(spec.label + _rival_warning(
-                "lines", rivals, "fix the orientation from a labelled reference"))
+        self.rivals = _note_orientation(spec, rot, m, rivals, "lines", warnings,
+                                        "fix the orientation from a labelled reference") \
+            or self.rivals
         pm.mirror[j] = bool(m)
         pm.set_start("rotation", j, rot)
         return warnings
