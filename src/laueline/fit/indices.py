@@ -69,32 +69,27 @@ def direction_to_four(uvw):
     return tuple(x // div for x in four)
 
 
-def parse_plane(values, hexagonal, name="hkl"):
-    """Three indices, or four for a hexagonal crystal, to (h k l)."""
+def _parse(values, hexagonal, name, what, from_four):
     values = list(values)
     if len(values) == 4:
         if not hexagonal:
             raise InputError(f"{name}: four-index (Miller-Bravais) indices need a hexagonal "
                              "crystal")
-        return plane_from_four(values, name)
+        return from_four(values, name)
     if len(values) != 3:
-        raise InputError(f"{name}: a reflection has three indices (four for hexagonal "
+        raise InputError(f"{name}: a {what} has three indices (four for hexagonal "
                          f"crystals), got {len(values)}")
-    return tuple(_integers(values, "reflection", name))
+    return tuple(_integers(values, what, name))
+
+
+def parse_plane(values, hexagonal, name="hkl"):
+    """Three indices, or four for a hexagonal crystal, to (h k l)."""
+    return _parse(values, hexagonal, name, "reflection", plane_from_four)
 
 
 def parse_direction(values, hexagonal, name="zone"):
     """Three indices, or four for a hexagonal crystal, to [u v w]."""
-    values = list(values)
-    if len(values) == 4:
-        if not hexagonal:
-            raise InputError(f"{name}: four-index (Miller-Bravais) indices need a hexagonal "
-                             "crystal")
-        return direction_from_four(values, name)
-    if len(values) != 3:
-        raise InputError(f"{name}: a zone axis has three indices (four for hexagonal "
-                         f"crystals), got {len(values)}")
-    return tuple(_integers(values, "zone axis", name))
+    return _parse(values, hexagonal, name, "zone axis", direction_from_four)
 
 
 def format_plane(hkl, hexagonal=False):
