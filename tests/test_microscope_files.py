@@ -135,18 +135,171 @@ def test_blockfile_detector_length_and_camera_length(tmp_path, small_pattern):
     np.testing.assert_array_equal(read.image, data[1])
 
 
-def test_zspy_round_trip(tmp_path, small_pattern):
-    from rsciio.zspy import file_writer
+def write_zspy(path, signal):
+    """rosettasciio's own zspy writer class on a zarr group opened here.
 
-    axes = [axis("ky", 128, 0.01, "1/nm", False), axis("kx", 128, 0.01, "1/nm", False)]
-    md = {"Acquisition_instrument": {"TEM": {"beam_energy": 200.0}}}
-    try:
-        file_writer(str(tmp_path / "p.zspy"), signal_dict(small_pattern, axes, md))
-    except AttributeError as exc:  # this rosettasciio's zspy writer predates zarr 3
-        pytest.skip(f"rosettasciio cannot write zspy with the installed zarr: {exc}")
-    expected = 1.0 / (0.001 * wavelength_codata_A(200.0) * 1e3)
-    assert read_pattern(tmp_path / "p.zspy").metadata.scale_px_per_mrad == \
-        pytest.approx(expected, rel=1e-9)
+    Its ``file_writer`` builds a zarr-2 ``NestedDirectoryStore``, which zarr 3
+    removed; the group is opened in the zarr-2 format instead and the writer's
+    class fills it exactly as ``file_writer`` does.
+    """
+    import numcodecs
+    import zarr
+    from rsciio.zspy._api import ZspyWriter
+
+    group = zarr.open_group(store=str(path), mode="w", zarr_format=2)
+    group.attrs["file_format"] = "ZSpy"
+    group.attrs["file_format_version"] = "3.3"
+    experiment = group.require_group("Experiments").require_group("pattern")
+    ZspyWriter(group, signal, experiment, chunks=None,
+               compressor=numcodecs.Blosc(cname="zstd", clevel=1), write_dataset=True,
+               show_progressbar=False).write()
+
+
+def test_zspy_scan_read_only(tmp_path, small_pattern):
+    data = np.stack([small_pattern, small_pattern + 7.0])
+    axes = [axis("scan", 2, 4.0, "nm", True), axis("ky", 128, 0.01, "1/nm", False),
+            axis("kx", 128, 0.01, "1/nm", False)]
+    md = {"Acquisition_instrument": {"TEM": {"beam_energy": 200.0, "camera_length": 120.0}}}
+    path = tmp_path / "p.zspy"
+    write_zspy(path, signal_dict(data, axes, md))
+    # a store on a read-only disk still opens: laueline asks the reader for mode 'r'
+    for item in [path, *path.rglob("*")]:
+        item.chmod(0o555 if item.is_dir() else 0o444)
+    opened = open_microscope_file(path)
+    meta = opened.metadata
+    expected = 1.0 / (0.001 * wavelength_codata_A(200.0) * 1e3)  # t = lambda q, q in 1/A
+    assert meta.scale_px_per_mrad == pytest.approx(expected, rel=1e-9)
+    assert meta.kv == 200.0 and meta.camera_length_mm == 120.0
+    assert [(a.name, a.size, a.scale, a.units) for a in meta.navigation] == \
+        [("scan", 2, 4.0, "nm")]
+    np.testing.assert_array_equal(read_pattern(path, index=1).image, data[1])
+
+
+def test_velox_emd_built_from_its_published_layout(tmp_path, small_pattern):
+    """A Velox EMD file (HDF5) with the groups the format defines: /Version (JSON),
+    /Data/Image/<id>/Data as (rows, cols, frames) and /Data/Image/<id>/Metadata as
+    JSON bytes, one column per frame; SI units (V, m, 1/m) as Velox writes them."""
+    import h5py
+
+    frames = np.stack([small_pattern, small_pattern[::-1]], axis=-1).astype(np.uint16)
+    meta = {"BinaryResult": {"PixelSize": {"width": "2e7", "height": "2e7"},
+                             "PixelUnitX": "1/m", "PixelUnitY": "1/m",
+                             "Offset": {"x": "0", "y": "0"}, "DetectorIndex": "0"},
+            "Detectors": {"Detector-0": {"DetectorName": "BM-Ceta", "ExposureTime": "0.5"}},
+            "Optics": {"AccelerationVoltage": "300000", "CameraLength": "0.245"},
+            "Acquisition": {}, "CustomProperties": {}, "Scan": {}}
+    raw = np.frombuffer(json.dumps(meta).encode(), np.uint8)
+    path = tmp_path / "velox.emd"
+    with h5py.File(path, "w") as f:
+        f["Version"] = np.array([json.dumps({"format": "Velox", "version": "11"}).encode()])
+        image = f.create_group("Data/Image/6a2e3e4f")
+        image.create_dataset("Data", data=frames, chunks=frames.shape[:2] + (1,))  # per frame
+        image["Metadata"] = np.repeat(raw[:, None], 2, axis=1)
+    opened = open_microscope_file(path)
+    meta = opened.metadata
+    assert meta.reader == "emd" and meta.kv == pytest.approx(300.0)
+    assert meta.camera_length_mm == pytest.approx(245.0)  # the reader's m -> mm
+    # 2e7 1/m = 0.002 1/A per pixel; t = lambda q
+    expected = 1.0 / (0.002 * wavelength_codata_A(300.0) * 1e3)
+    # 1e-9 relative: the reader converts 1/m to a compact unit in floating point
+    assert meta.scale_px_per_mrad == pytest.approx(expected, rel=1e-9)
+    assert opened.navigation_shape == (2,)
+    np.testing.assert_array_equal(read_pattern(path, index=1).image, frames[..., 1])
+
+
+def write_mib(path, frames, times_ms):
+    """Quantum Detectors Merlin frames: each a 384-byte comma-separated ASCII header
+    (as the Merlin manual defines it: id, sequence number, header size, chips, width,
+    height, pixel type, geometry, ..., timestamp, exposure in ns, bit depth) then the
+    frame as big-endian integers."""
+    out = bytearray()
+    for k, (frame, ms) in enumerate(zip(frames, times_ms)):
+        rows, cols = frame.shape
+        stamp = f"2024-05-06T10:00:{ms / 1000:012.9f}Z"
+        fields = ["MQ1", f"{k + 1:06d}", "00384", "01", f"{cols:04d}", f"{rows:04d}", "U16",
+                  "   1x1", "01", "2024-05-06 10:00:00.000000", "0.001000", "0", "0", "0",
+                  "1.000000E+1", stamp, "1000000ns", "12", ""]
+        header = ",".join(fields).encode().ljust(384, b"\0")
+        out += header + frame.astype(">u2").tobytes()
+    path.write_bytes(bytes(out))
+
+
+def test_mib_scan_built_from_its_published_layout(tmp_path, small_pattern):
+    # a 2 x 3 scan: rows start 10 ms apart, frames 1 ms apart, which is how the
+    # reader finds the line length when no .hdr file is beside the data
+    frames = np.stack([small_pattern + k for k in range(6)]).astype(np.uint16)
+    write_mib(tmp_path / "scan.mib", frames, [0, 1, 2, 10, 11, 12])
+    opened = open_microscope_file(tmp_path / "scan.mib")
+    assert opened.navigation_shape == (2, 3)
+    meta = opened.metadata
+    # a Merlin file carries no voltage and no camera calibration
+    assert meta.kv is None and meta.scale_px_per_mrad is None
+    assert "no calibration" in meta.text()
+    # rosettasciio returns Merlin frames upside down with respect to the stored rows
+    np.testing.assert_array_equal(read_pattern(tmp_path / "scan.mib", index=(1, 2)).image,
+                                  frames[5][::-1])
+    read = read_pattern(tmp_path / "scan.mib", index=4, kv=200, scale_px_per_mrad=12.5)
+    assert read.metadata.scale_px_per_mrad == 12.5 and read.metadata.overrides
+
+
+def write_mrc(path, stack, cell_A=(0.0, 0.0, 0.0)):
+    """An MRC2014 file: the 1024-byte header of the published standard (NX NY NZ,
+    MODE, start, MX MY MZ, cell lengths in A, ..., 'MAP ' and the machine stamp)
+    followed by the data, mode 1 (16-bit signed)."""
+    nz, ny, nx = stack.shape
+    header = np.zeros(256, "<i4")
+    header[0:4] = nx, ny, nz, 1
+    header[7:10] = nx, ny, nz
+    header[10:13] = np.array(cell_A, "<f4").view("<i4")
+    header[16:19] = 1, 2, 3  # column, row, section axes
+    raw = bytearray(header.tobytes())
+    raw[208:212] = b"MAP "
+    raw[212:214] = b"\x44\x44"  # little-endian stamp
+    path.write_bytes(bytes(raw) + stack.astype("<i2").tobytes())
+
+
+def test_mrc_stack_without_camera_calibration(tmp_path, small_pattern):
+    stack = np.stack([small_pattern, small_pattern * 0.5]).astype(np.int16)
+    write_mrc(tmp_path / "p.mrc", stack)
+    opened = open_microscope_file(tmp_path / "p.mrc")
+    assert opened.navigation_shape == (2,)
+    meta = opened.metadata
+    # the MRC cell is a real-space size: no px/mrad taken from it, a warning instead
+    assert meta.scale_px_per_mrad is None and "real-space" in meta.warnings[0]
+    np.testing.assert_array_equal(read_pattern(tmp_path / "p.mrc", index=1).image, stack[1])
+    with pytest.raises(InputError, match="2 patterns"):
+        read_pattern(tmp_path / "p.mrc")
+
+
+def test_digitalmicrograph_tags_through_the_readers_mapping(small_pattern):
+    """No writer exists for .dm3/.dm4: the tags of a diffraction image (the tag
+    groups DigitalMicrograph stores: ImageData.Calibrations, Microscope Info) go
+    through rosettasciio's own DM axis and metadata mapping, then laueline's."""
+    from rsciio.digitalmicrograph._api import ImageObject
+
+    from laueline.io.microscope import signal_metadata
+
+    tags = {"ImageData": {
+        "Calibrations": {"Dimension": {
+            "TagGroup0": {"Origin": 0.0, "Scale": 0.015, "Units": "1/nm"},
+            "TagGroup1": {"Origin": 0.0, "Scale": 0.015, "Units": "1/nm"}},
+            "Brightness": {"Origin": 0.0, "Scale": 1.0, "Units": ""}},
+        "Dimensions": {"Data0": 128, "Data1": 128}, "DataType": 10, "PixelDepth": 2},
+        # in TEM diffraction DigitalMicrograph keeps the camera length (mm) where an
+        # image keeps its magnification
+        "ImageTags": {"Microscope Info": {"Voltage": 200000.0, "Indicated Magnification": 310.0,
+                                          "Illumination Mode": "TEM",
+                                          "Imaging Mode": "DIFFRACTION"}},
+        "Name": "pattern"}
+    image = ImageObject(tags, None)
+    signal = {"data": small_pattern, "axes": image.get_axes_dict(), "metadata": {},
+              "original_metadata": {"ImageList": {"TagGroup0": tags}},
+              "mapping": image.get_mapping()}
+    meta = signal_metadata(signal, source="p.dm4", reader="digitalmicrograph")
+    assert meta.kv == pytest.approx(200.0)  # the reader's V -> kV
+    assert meta.camera_length_mm == pytest.approx(310.0)
+    expected = 1.0 / (0.0015 * wavelength_codata_A(200.0) * 1e3)
+    assert meta.scale_px_per_mrad == pytest.approx(expected, rel=1e-9)
 
 
 def test_unit_conversions():
@@ -210,3 +363,22 @@ def test_cli_detect_reads_a_scan(tmp_path, capsys):
     assert doc["file"]["index"] == [1]
     expected = 1.0 / (0.001 * wavelength_codata_A(300.0) * 1e3)
     assert doc["file"]["scale_px_per_mrad"] == pytest.approx(expected, rel=1e-9)
+
+
+def test_tiff_with_calibration_tags(tmp_path, small_pattern):
+    from rsciio.tiff import file_writer
+
+    # rosettasciio's TIFF writer keeps the axis scale and units (not the voltage)
+    axes = [axis("ky", 128, 0.025, "1/nm", False), axis("kx", 128, 0.025, "1/nm", False)]
+    file_writer(str(tmp_path / "p.tif"), signal_dict(small_pattern.astype(np.uint16), axes))
+    meta = read_pattern(tmp_path / "p.tif", kv=120).metadata
+    expected = 1.0 / (0.0025 * wavelength_codata_A(120.0) * 1e3)  # t = lambda q
+    # 1e-6: the TIFF resolution tags hold the scale as a rational of 32-bit integers
+    assert meta.reader == "tiff" and meta.scale_px_per_mrad == pytest.approx(expected, rel=1e-6)
+    # a plain TIFF (tifffile, default resolution tags) still reads, uncalibrated
+    import tifffile
+
+    tifffile.imwrite(tmp_path / "plain.tif", small_pattern.astype(np.uint16))
+    read = read_pattern(tmp_path / "plain.tif")
+    assert read.metadata.scale_px_per_mrad is None
+    np.testing.assert_array_equal(read.image, small_pattern.astype(np.uint16))
