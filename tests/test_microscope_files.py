@@ -382,3 +382,48 @@ def test_tiff_with_calibration_tags(tmp_path, small_pattern):
     read = read_pattern(tmp_path / "plain.tif")
     assert read.metadata.scale_px_per_mrad is None
     np.testing.assert_array_equal(read.image, small_pattern.astype(np.uint16))
+
+
+@pytest.fixture(scope="module")
+def bad_files(tmp_path_factory, small_pattern):
+    """Files a user may hand over that cannot give one calibrated pattern."""
+    from rsciio.hspy import file_writer
+
+    folder = tmp_path_factory.mktemp("bad")
+    (folder / "junk.dm4").write_bytes(b"not a DigitalMicrograph file")
+    (folder / "junk.emd").write_bytes(b"\x89HDF\r\n\x1a\n but cut short")
+    file_writer(str(folder / "spectrum.hspy"),
+                signal_dict(np.arange(100.0), [axis("e", 100, 1.0, "eV", False)]))
+    axes = [axis("ky", 128, 0.01, "furlong", False), axis("kx", 128, 0.01, "furlong", False)]
+    file_writer(str(folder / "odd.hspy"), signal_dict(small_pattern, axes))
+    axes4 = [axis("y", 2, 1.0, "nm", True), axis("x", 2, 1.0, "nm", True),
+             axis("ky", 128, 0.01, "1/nm", False), axis("kx", 128, 0.01, "1/nm", False)]
+    md = {"Acquisition_instrument": {"TEM": {"beam_energy": 200.0}}}
+    file_writer(str(folder / "scan4d.hspy"),
+                signal_dict(np.stack([small_pattern] * 4).reshape(2, 2, 128, 128), axes4, md))
+    calibration = {"schema": "laueline.fit/2", "kv": 200.0, "disk_mrad": 6.0,
+                   "structure": {"name": "Si"}, "zone": [2, 3, 0],
+                   "detector": {"center_px": [64.0, 64.0], "scale_px_per_mrad": 8.0,
+                                "rotation_deg": 0.0, "mirror": False}}
+    (folder / "cal.json").write_text(json.dumps(calibration))
+    return folder
+
+
+@pytest.mark.parametrize("name, message", [
+    ("junk.dm4", "rosettasciio cannot read it"), ("junk.emd", "rosettasciio cannot read it"),
+    ("spectrum.hspy", "no image"), ("odd.hspy", "cannot be converted"),
+    ("scan4d.hspy", "--index")])
+def test_cli_bad_files_one_line_exit_2(bad_files, tmp_path, capsys, name, message):
+    path = bad_files / name
+    out_json = tmp_path / "out.json"
+    commands = [["detect", path, "--json", out_json],
+                ["refine", "Si", "--zone", 2, 3, 0, "--image", path, "--json", out_json]]
+    if name != "scan4d.hspy":  # a 4-D file is what map wants
+        commands.append(["map", "Si", "--zone", 2, 3, 0, "--scan", path, "--calibration",
+                         bad_files / "cal.json", "--out", tmp_path / "m.zarr", "--quiet"])
+    for argv in commands:
+        code, out, err = run_cli(capsys, *argv)
+        assert code == 2, (argv[0], err)
+        assert len(err.strip().splitlines()) == 1 and message in err, (argv[0], err)
+        assert "Traceback" not in err
+        assert not out_json.exists() and not (tmp_path / "m.zarr").exists()

@@ -534,7 +534,15 @@ def read_pattern(path, *, index=None, kv=None, scale_px_per_mrad=None, allow_lar
 def _tiff_metadata(path, shape, kv, scale_px_per_mrad):
     """The calibration rosettasciio's TIFF reader finds (its own tags, ImageJ or
     vendor tags), or None when it finds no pattern of ``shape`` in the file."""
+    import tifffile
+
     try:
+        with tifffile.TiffFile(path) as tif:
+            # ImageJ descriptions and private tags (vendor and rosettasciio's own,
+            # codes from 32768) are where a calibration can be; a plain TIFF has
+            # none, and the reader's unit handling costs seconds on first use
+            if not (tif.is_imagej or any(tag.code >= 32768 for tag in tif.pages[0].tags)):
+                return None
         from rsciio.tiff import file_reader
 
         signals = file_reader(str(path), lazy=True)
