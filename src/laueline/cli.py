@@ -308,6 +308,8 @@ def _line_shape_note(image, detection, result, most=16):
 
 
 def _cmd_refine(args):
+    import dataclasses
+
     from . import report
     from .fit import Calibration, PatternSpec, PixelFrame, is_hexagonal, refine_patterns
     from .fit.patterns import read_patterns
@@ -355,6 +357,7 @@ def _cmd_refine(args):
                     min_strength=args.min_strength, min_angle_deg=args.min_angle_deg,
                     match_mrad=args.match_mrad, disk_mrad=args.disk_mrad)
     image = None
+    distortion_mode = None
     try:
         if args.patterns:
             pattern_defaults = {k: v for k, v in defaults.items()
@@ -376,6 +379,11 @@ def _cmd_refine(args):
             print(read.metadata.text() + "\n")
             detection = detect_lines(image, disk=args.disk_px, saturation=saturation,
                                      min_angle_deg=args.min_angle_deg, source=args.image)
+            distortion_mode = _distortion_mode(args, detection, calibration, options)
+            if distortion_mode == "disk":
+                defaults["distortion"] = detection.disk.detector_distortion
+            elif distortion_mode == "zero":
+                defaults["distortion"] = (0.0, 0.0)
             specs = [PatternSpec(tuple(args.zone), detection=detection, source=args.image,
                                  **defaults)]
         else:
@@ -402,6 +410,13 @@ def _cmd_refine(args):
             result = dynamical.result
         else:
             result = refine_patterns(crystal, specs, **options)
+            if distortion_mode == "test":
+                estimate = _distortion_estimate(result, specs[0].detection, None, "test")
+                if not estimate.significant:
+                    # the data show no distortion: the plain similarity, fitted again
+                    options["free"] = [f for f in options["free"] if f != "distortion"]
+                    specs = [dataclasses.replace(specs[0], distortion=(0.0, 0.0))]
+                    result = refine_patterns(crystal, specs, **options)
             bias = _kinematic_bias(result, crystal)
             if bias is not None:
                 # the fit again, with the kinematic model's bias as its systematic part
@@ -413,11 +428,21 @@ def _cmd_refine(args):
                                        "the shifts instead)")
     except InputError as exc:
         raise InputError(_refine_message(str(exc))) from None
+    distortion = None
     if image is not None:
         note = _line_shape_note(image, specs[0].detection, result)
         if note is not None:
             result.warnings.append(note)
+        distortion = _distortion_estimate(result, specs[0].detection, calibration,
+                                          distortion_mode)
+        if not distortion.consistent:
+            result.warnings.append("the projector distortion of the disk outline disagrees "
+                                   "with the " + ("calibration's" if calibration is not None
+                                                  else "line fit's")
+                                   + ": check the disk edge and the calibration")
     print(report.fit_text(result))
+    if distortion is not None:
+        print("\n" + distortion.text())
     if dynamical is not None:
         from .dynamical import dynamical_fit_text
 
@@ -429,6 +454,8 @@ def _cmd_refine(args):
         return fit_figure(result, crystal, image=image)
 
     document = report.fit_document(result)
+    if distortion is not None:
+        document["distortion"] = report._clean(distortion.to_dict())
     if dynamical is not None:
         from .dynamical import dynamical_fit_document
 
@@ -446,6 +473,61 @@ def _cmd_refine(args):
                          "kept changing by more than a tenth of its sigma\n")
         return EXIT_NOT_CONVERGED
     return 0
+
+
+def _distortion_mode(args, detection, calibration, options):
+    """How a fit to an image treats the projector distortion.
+
+    ``"calibration"``: held at the calibration's value; ``"free"``: freed by
+    ``--free distortion``, starting from the disk outline's; ``"zero"``: held
+    at zero by ``--hold distortion`` or because the disk outline shows none;
+    ``"test"``: the disk outline shows one, so the line fit frees it and a
+    significance test on both measurements decides whether it is kept.
+    """
+    free, hold = set(options["free"]), set(options["hold"])
+    if "distortion" in hold:
+        return "zero" if calibration is None else "calibration"
+    if calibration is not None and "distortion" not in free:
+        return "calibration"
+    if "distortion" in free:
+        return "free" if calibration is None else "calibration-free"
+    if detection.disk.distortion_significant:
+        options["free"] = list(options["free"]) + ["distortion"]
+        return "test"
+    return "zero"
+
+
+def _distortion_estimate(result, detection, calibration, mode):
+    """The distortion measurements of an image fit, combined, with what is held."""
+    import numpy as np
+
+    from .fit.calibration import DistortionMeasurement, combine_distortion
+
+    disk = DistortionMeasurement.from_disk(detection.disk)
+    line_fit = DistortionMeasurement.from_fit(result)
+    held = tuple(result.detector.distortion)
+    if mode in ("calibration", "calibration-free") and calibration is not None:
+        cov = calibration.distortion_covariance
+        reference = None if cov is None else DistortionMeasurement(
+            "calibration", tuple(calibration.detector.distortion), np.asarray(cov))
+        return combine_distortion([reference, disk, line_fit], used=held,
+                                  note="freed in this fit (--free distortion)"
+                                  if line_fit is not None else "held from the calibration")
+    if line_fit is None:
+        return combine_distortion([disk], used=held,
+                                  note="held at zero (--hold distortion)" if mode == "zero"
+                                  and "distortion" in (result.parameters or ()) else
+                                  "the disk outline shows none at the 99 % level: plain "
+                                  "similarity" if not any(held) else "held")
+    if mode == "free":
+        return combine_distortion([disk, line_fit], used=held,
+                                  note="freed in the line fit (--free distortion)")
+    estimate = combine_distortion([disk, line_fit])
+    if estimate.significant:
+        return combine_distortion([disk, line_fit], used=held,
+                                  note="significant at the 99 % level: the line fit's value "
+                                       "is held (fitted with the voltage and scale)")
+    return estimate
 
 
 def _cmd_thickness(args):
