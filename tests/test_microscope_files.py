@@ -6,6 +6,7 @@ import math
 import numpy as np
 import pytest
 from conftest import run_cli
+from physical_render import PhysicalSettings, render_physical
 from scipy import constants
 
 from laueline import read_crystal
@@ -427,3 +428,29 @@ def test_cli_bad_files_one_line_exit_2(bad_files, tmp_path, capsys, name, messag
         assert len(err.strip().splitlines()) == 1 and message in err, (argv[0], err)
         assert "Traceback" not in err
         assert not out_json.exists() and not (tmp_path / "m.zarr").exists()
+
+
+def test_cli_refine_takes_the_files_calibration(tmp_path, capsys):
+    from rsciio.hspy import file_writer
+
+    # a pattern drawn by the test renderer at a known camera scale, stored with the
+    # reciprocal pixel size that scale means at 200 kV: q = 1 / (scale lambda)
+    image, truth = render_physical(SI, (2, 3, 0), 200, 6, PhysicalSettings(seed=5),
+                                   x_axis=(0, 0, 4))
+    q_inv_nm = 10.0 / (truth["scale_px_per_mrad"] * 1e3 * wavelength_codata_A(200.0))
+    axes = [axis("ky", 320, q_inv_nm, "1/nm", False), axis("kx", 320, q_inv_nm, "1/nm", False)]
+    md = {"Acquisition_instrument": {"TEM": {"beam_energy": 200.0, "camera_length": 250.0}}}
+    file_writer(str(tmp_path / "ref.hspy"), signal_dict(image.astype(np.uint16), axes, md))
+    code, out, err = run_cli(capsys, "refine", "Si", "--zone", 2, 3, 0, "--x-axis", 0, 0, 4,
+                             "--image", tmp_path / "ref.hspy", "--model", "fixed",
+                             "--rotation-deg", 23, "--json", tmp_path / "cal.json")
+    assert code == 0, err
+    assert "from the file: voltage 200 kV" in out and "px/mrad" in out
+    doc = json.loads((tmp_path / "cal.json").read_text())
+    # the scale converted from the file is the renderer's (1e-9: rounding only)
+    assert doc["file"]["scale_px_per_mrad"] == pytest.approx(truth["scale_px_per_mrad"],
+                                                             rel=1e-9)
+    assert doc["kv"] == 200.0 and doc["file"]["camera_length_mm"] == 250.0
+    # and the fit, started there, keeps it within its uncertainty (3 sigma)
+    sigma = doc["detector"]["sigma"]["scale_px_per_mrad"]
+    assert abs(doc["detector"]["scale_px_per_mrad"] - truth["scale_px_per_mrad"]) < 3 * sigma

@@ -356,7 +356,7 @@ def _cmd_refine(args):
                     rotation_deg=args.rotation_deg, mirror=args.mirror,
                     min_strength=args.min_strength, min_angle_deg=args.min_angle_deg,
                     match_mrad=args.match_mrad, disk_mrad=args.disk_mrad)
-    image = None
+    image = read_meta = None
     distortion_mode = None
     try:
         if args.patterns:
@@ -370,7 +370,7 @@ def _cmd_refine(args):
             if args.y_up:
                 raise InputError("--y-up applies to point files; images are read row by row")
             read = _read_pattern_args(args, args.image)
-            image, saturation = read.image, read.saturation
+            image, saturation, read_meta = read.image, read.saturation, read.metadata
             # the file's voltage and camera scale unless the command line gives them
             if args.kv is None and read.metadata.kv is not None:
                 options["kv"] = read.metadata.kv
@@ -454,6 +454,8 @@ def _cmd_refine(args):
         return fit_figure(result, crystal, image=image)
 
     document = report.fit_document(result)
+    if read_meta is not None:
+        document["file"] = report._clean(read_meta.as_dict())
     if distortion is not None:
         document["distortion"] = report._clean(distortion.to_dict())
     if dynamical is not None:
@@ -851,7 +853,10 @@ def _cmd_map(args):
     print(f"scan {scan.source}: {scan.n_patterns} patterns of {scan.pattern_shape[1]} x "
           f"{scan.pattern_shape[0]} px, {' x '.join(map(str, scan.nav_shape))} "
           f"({', '.join(scan.nav_dims)}); {plan.n_lines} lines, {plan.n_points} profiles per "
-          f"pattern; calibration {kv:.2f} kV, {detector.scale_px_per_mrad:.3f} px/mrad")
+          f"pattern; calibration {kv:.2f} kV, {detector.scale_px_per_mrad:.3f} px/mrad"
+          + (", projector distortion e1 {:+.5f}, e2 {:+.5f} held".format(*detector.distortion)
+             if any(detector.distortion) else ", no projector distortion"))
+    _note_file_calibration(scan, kv, detector)
     ds = map_strain(scan, plan, out=args.out, force=args.force, scheduler=args.scheduler,
                     n_workers=args.workers, progress=not args.quiet)
     print(map_summary_text(ds, frame_text))
@@ -865,6 +870,21 @@ def _cmd_map(args):
     return 0
 
 
+def _note_file_calibration(scan, kv, detector):
+    """Say what the scan file's metadata give, and where they differ from the calibration."""
+    meta = scan.metadata if isinstance(getattr(scan, "metadata", None), dict) else {}
+    for item in meta.get("taken", []):
+        print(f"from the file: {item} (the calibration's values are used)")
+    file_kv, file_scale = meta.get("kv_file"), meta.get("scale_file_px_per_mrad")
+    if file_scale and abs(file_scale / detector.scale_px_per_mrad - 1) > 0.02:
+        # a 2 % camera-length mismatch is beyond what projector settings repeat to
+        print(f"caution: the file's camera scale {file_scale:.4g} px/mrad differs from the "
+              f"calibration's {detector.scale_px_per_mrad:.4g} px/mrad by more than 2 %: "
+              "was the reference recorded at the same camera length?")
+    if file_kv and abs(file_kv - kv) > 0.05 * kv:
+        print(f"caution: the file says {file_kv:g} kV, the calibration {kv:.2f} kV")
+
+
 def _map_reference(args, scan):
     """The reference pattern asked for, as an array, or None."""
     import numpy as np
@@ -872,9 +892,14 @@ def _map_reference(args, scan):
     if args.reference is not None and args.reference_index is not None:
         raise InputError("give either --reference or --reference-index, not both")
     if args.reference is not None:
-        from .images.io import read_image
+        from .io.microscope import read_pattern
 
-        return read_image(args.reference)[0]
+        try:
+            return read_pattern(args.reference).image
+        except InputError as exc:
+            raise InputError(f"--reference: {exc}".replace(
+                "choose one with index (--index)", "give a single-pattern file, or "
+                "--reference-index for a pattern of the scan")) from None
     if args.reference_index is not None:
         index = tuple(args.reference_index)
         if len(index) != len(scan.nav_shape) or any(
