@@ -136,33 +136,35 @@ def test_blockfile_detector_length_and_camera_length(tmp_path, small_pattern):
     np.testing.assert_array_equal(read.image, data[1])
 
 
-def write_zspy(path, signal):
+def write_zspy(path, signal, zarr_format):
     """rosettasciio's own zspy writer class on a zarr group opened here.
 
     Its ``file_writer`` builds a zarr-2 ``NestedDirectoryStore``, which zarr 3
-    removed; the group is opened in the zarr-2 format instead and the writer's
-    class fills it exactly as ``file_writer`` does.
+    removed; the group is opened here (in the zarr-2 or zarr-3 format) and the
+    writer's class fills it exactly as ``file_writer`` does.
     """
     import numcodecs
     import zarr
     from rsciio.zspy._api import ZspyWriter
 
-    group = zarr.open_group(store=str(path), mode="w", zarr_format=2)
+    group = zarr.open_group(store=str(path), mode="w", zarr_format=zarr_format)
     group.attrs["file_format"] = "ZSpy"
     group.attrs["file_format_version"] = "3.3"
     experiment = group.require_group("Experiments").require_group("pattern")
-    ZspyWriter(group, signal, experiment, chunks=None,
-               compressor=numcodecs.Blosc(cname="zstd", clevel=1), write_dataset=True,
-               show_progressbar=False).write()
+    # the writer's default Blosc codec is a zarr-2 compressor
+    compressor = numcodecs.Blosc(cname="zstd", clevel=1) if zarr_format == 2 else None
+    ZspyWriter(group, signal, experiment, chunks=None, compressor=compressor,
+               write_dataset=True, show_progressbar=False).write()
 
 
-def test_zspy_scan_read_only(tmp_path, small_pattern):
+@pytest.mark.parametrize("zarr_format", [2, 3])
+def test_zspy_scan_read_only(tmp_path, small_pattern, zarr_format):
     data = np.stack([small_pattern, small_pattern + 7.0])
     axes = [axis("scan", 2, 4.0, "nm", True), axis("ky", 128, 0.01, "1/nm", False),
             axis("kx", 128, 0.01, "1/nm", False)]
     md = {"Acquisition_instrument": {"TEM": {"beam_energy": 200.0, "camera_length": 120.0}}}
     path = tmp_path / "p.zspy"
-    write_zspy(path, signal_dict(data, axes, md))
+    write_zspy(path, signal_dict(data, axes, md), zarr_format)
     # a store on a read-only disk still opens: laueline asks the reader for mode 'r'
     for item in [path, *path.rglob("*")]:
         item.chmod(0o555 if item.is_dir() else 0o444)
