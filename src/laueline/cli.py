@@ -356,7 +356,7 @@ def _cmd_refine(args):
                     rotation_deg=args.rotation_deg, mirror=args.mirror,
                     min_strength=args.min_strength, min_angle_deg=args.min_angle_deg,
                     match_mrad=args.match_mrad, disk_mrad=args.disk_mrad)
-    image = read_meta = None
+    image = read_meta = distortion = None
     distortion_mode = None
     try:
         if args.patterns:
@@ -380,9 +380,9 @@ def _cmd_refine(args):
             detection = detect_lines(image, disk=args.disk_px, saturation=saturation,
                                      min_angle_deg=args.min_angle_deg, source=args.image)
             distortion_mode = _distortion_mode(args, detection, calibration, options)
-            if distortion_mode == "disk":
+            if distortion_mode in ("free", "test"):
                 defaults["distortion"] = detection.disk.detector_distortion
-            elif distortion_mode == "zero":
+            elif distortion_mode in ("zero", "held at zero"):
                 defaults["distortion"] = (0.0, 0.0)
             specs = [PatternSpec(tuple(args.zone), detection=detection, source=args.image,
                                  **defaults)]
@@ -413,6 +413,7 @@ def _cmd_refine(args):
             if distortion_mode == "test":
                 estimate = _distortion_estimate(result, specs[0].detection, None, "test")
                 if not estimate.significant:
+                    distortion = estimate  # reported as measured, held at zero
                     # the data show no distortion: the plain similarity, fitted again
                     options["free"] = [f for f in options["free"] if f != "distortion"]
                     specs = [dataclasses.replace(specs[0], distortion=(0.0, 0.0))]
@@ -428,18 +429,24 @@ def _cmd_refine(args):
                                        "the shifts instead)")
     except InputError as exc:
         raise InputError(_refine_message(str(exc))) from None
-    distortion = None
     if image is not None:
         note = _line_shape_note(image, specs[0].detection, result)
         if note is not None:
             result.warnings.append(note)
-        distortion = _distortion_estimate(result, specs[0].detection, calibration,
-                                          distortion_mode)
+        if distortion is None:
+            distortion = _distortion_estimate(result, specs[0].detection, calibration,
+                                              distortion_mode)
         if not distortion.consistent:
             result.warnings.append("the projector distortion of the disk outline disagrees "
                                    "with the " + ("calibration's" if calibration is not None
                                                   else "line fit's")
                                    + ": check the disk edge and the calibration")
+        elif calibration is not None and calibration.distortion_covariance is None \
+                and specs[0].detection.disk.distortion_significant \
+                and not any(calibration.detector.distortion):
+            result.warnings.append("the disk outline shows a projector distortion that the "
+                                   "calibration does not hold: make the calibration on an "
+                                   "image (refine --image) so that it is measured")
     print(report.fit_text(result))
     if distortion is not None:
         print("\n" + distortion.text())
@@ -488,7 +495,7 @@ def _distortion_mode(args, detection, calibration, options):
     """
     free, hold = set(options["free"]), set(options["hold"])
     if "distortion" in hold:
-        return "zero" if calibration is None else "calibration"
+        return "held at zero" if calibration is None else "calibration"
     if calibration is not None and "distortion" not in free:
         return "calibration"
     if "distortion" in free:
@@ -516,11 +523,9 @@ def _distortion_estimate(result, detection, calibration, mode):
                                   note="freed in this fit (--free distortion)"
                                   if line_fit is not None else "held from the calibration")
     if line_fit is None:
-        return combine_distortion([disk], used=held,
-                                  note="held at zero (--hold distortion)" if mode == "zero"
-                                  and "distortion" in (result.parameters or ()) else
-                                  "the disk outline shows none at the 99 % level: plain "
-                                  "similarity" if not any(held) else "held")
+        return combine_distortion([disk], used=held, note=(
+            "held at zero (--hold distortion)" if mode == "held at zero" else
+            "the disk outline shows none at the 99 % level: plain similarity"))
     if mode == "free":
         return combine_distortion([disk, line_fit], used=held,
                                   note="freed in the line fit (--free distortion)")
