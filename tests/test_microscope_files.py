@@ -313,6 +313,9 @@ def test_unit_conversions():
     assert mrad_per_pixel(2e-5, "rad") == pytest.approx(0.02)
     assert mrad_per_pixel(20, "µrad") == pytest.approx(0.02)
     assert mrad_per_pixel(0.015, "mm", camera_length_mm=150) == pytest.approx(0.1)
+    # Velox writes 1/m, MRC-style axes nm^-1: the same reciprocal length
+    assert mrad_per_pixel(1e8, "1/m", kv=200) == pytest.approx(0.01 * lam * 1e3, rel=1e-9)
+    assert mrad_per_pixel(0.1, "nm^-1", kv=200) == pytest.approx(0.01 * lam * 1e3, rel=1e-9)
     with pytest.raises(InputError, match="nm"):
         mrad_per_pixel(0.1, "nm")  # a real-space image, not a pattern
     with pytest.raises(InputError, match="voltage"):
