@@ -312,6 +312,7 @@ def test_unit_conversions():
     assert mrad_per_pixel(0.01, "Å^-1", kv=200) == pytest.approx(0.01 * lam * 1e3, rel=1e-9)
     assert mrad_per_pixel(2e-5, "rad") == pytest.approx(0.02)
     assert mrad_per_pixel(20, "µrad") == pytest.approx(0.02)
+    assert mrad_per_pixel(0.001, "deg") == pytest.approx(math.radians(0.001) * 1e3, rel=1e-12)
     assert mrad_per_pixel(0.015, "mm", camera_length_mm=150) == pytest.approx(0.1)
     # Velox writes 1/m, MRC-style axes nm^-1: the same reciprocal length
     assert mrad_per_pixel(1e8, "1/m", kv=200) == pytest.approx(0.01 * lam * 1e3, rel=1e-9)

@@ -58,7 +58,8 @@ MAX_SIDE_PX = 4096
 _READER_OPTIONS = {"zspy": {"mode": "r"}}
 
 _RECIPROCAL = {"1/m": 1e-10, "1/um": 1e-4, "1/nm": 0.1, "1/a": 1.0, "1/pm": 100.0}  # -> 1/A
-_ANGLE = {"mrad": 1.0, "rad": 1e3, "urad": 1e-3}           # -> mrad
+_ANGLE = {"mrad": 1.0, "rad": 1e3, "urad": 1e-3,           # -> mrad
+          "deg": math.pi / 0.18, "degree": math.pi / 0.18, "°": math.pi / 0.18}
 _LENGTH = {"m": 1e3, "cm": 10.0, "mm": 1.0, "um": 1e-3}    # -> mm on the detector
 _REAL_SPACE = {"nm", "a", "pm"}  # specimen lengths: an image, not a pattern
 
@@ -170,7 +171,7 @@ def mrad_per_pixel(pixel_size, units, *, kv=None, camera_length_mm=None):
         Size of one pixel.
     units : str
         '1/nm', '1/A' (reciprocal lengths without 2 pi), 'mrad', 'rad',
-        'urad', or a length on the detector ('m', 'cm', 'mm', 'um').
+        'urad', 'deg', or a length on the detector ('m', 'cm', 'mm', 'um').
     kv : float, optional
         Voltage (kV); needed for reciprocal lengths.
     camera_length_mm : float, optional
