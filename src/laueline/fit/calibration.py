@@ -89,8 +89,8 @@ class DistortionMeasurement:
         except ValueError:
             return None
         cov = np.asarray(result.covariance, float)[np.ix_([i, j], [i, j])]
-        return cls("line fit", tuple(float(v) for v in result.patterns[pattern].detector.distortion),
-                   cov)
+        value = tuple(float(v) for v in result.patterns[pattern].detector.distortion)
+        return cls("line fit", value, cov)
 
     def to_dict(self):
         return {"source": self.source, "value": list(self.value), "sigma": list(self.sigma),
