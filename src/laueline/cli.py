@@ -409,8 +409,17 @@ def _cmd_refine(args):
                                          **single, **options)
             result = dynamical.result
         else:
-            result = refine_patterns(crystal, specs, **options)
             if distortion_mode == "test":
+                try:
+                    result = refine_patterns(crystal, specs, **options)
+                except InputError:
+                    # too few lines to separate the distortion from the rest: the
+                    # disk outline's value is held instead
+                    distortion_mode = "disk"
+                    options["free"] = [f for f in options["free"] if f != "distortion"]
+            if distortion_mode != "test":
+                result = refine_patterns(crystal, specs, **options)
+            else:
                 estimate = _distortion_estimate(result, specs[0].detection, None, "test")
                 if not estimate.significant:
                     distortion = estimate  # reported as measured, held at zero
@@ -525,6 +534,8 @@ def _distortion_estimate(result, detection, calibration, mode):
     if line_fit is None:
         return combine_distortion([disk], used=held, note=(
             "held at zero (--hold distortion)" if mode == "held at zero" else
+            "the line fit cannot separate it from the other parameters: the disk "
+            "outline's value is held" if mode == "disk" else
             "the disk outline shows none at the 99 % level: plain similarity"))
     if mode == "free":
         return combine_distortion([disk, line_fit], used=held,
