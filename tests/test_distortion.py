@@ -208,3 +208,43 @@ def test_map_holds_the_calibrated_distortion():
     # a plain similarity leaves the distortion in the profile residuals: the
     # uncertainties, scaled by that scatter, are several times larger
     assert np.all(np.median(results["none"][1], axis=0) > 2 * np.median(sigma, axis=0))
+
+
+def test_cli_line_fit_overrules_a_marginal_disk_outline(tmp_path, capsys, monkeypatch):
+    """A disk outline just significant, lines that show nothing: the combined test
+    decides, and the reference is fitted again as a plain similarity."""
+    import dataclasses
+
+    import laueline.images.detect as detect
+
+    st = PhysicalSettings(shape=SHAPE, seed=33)
+    image, _ = render_physical(SI, ZONE, 200, 6, st, x_axis=X_AXIS)
+    np.save(tmp_path / "ref.npy", image)
+    original = detect.detect_lines
+
+    def marginal_outline(*args, **kwargs):
+        det = original(*args, **kwargs)
+        # q = (0.0008 / 0.00025)^2 = 10.2, just above the 9.21 of the 99 % test
+        disk = dataclasses.replace(det.disk, distortion=(0.0008, 0.0),
+                                   distortion_sigma=(0.00025, 0.00025),
+                                   distortion_significant=True)
+        return dataclasses.replace(det, disk=disk)
+
+    monkeypatch.setattr(detect, "detect_lines", marginal_outline)
+    code, out, err = run_cli(capsys, "refine", "Si", "--zone", *ZONE, "--x-axis", *X_AXIS,
+                             "--image", tmp_path / "ref.npy", "--model", "fixed", "--free",
+                             "kv", "--disk-mrad", 6, "--rotation-deg", ROTATION_DEG,
+                             "--json", tmp_path / "cal.json")
+    assert code == 0, err
+    block = json.loads((tmp_path / "cal.json").read_text())["distortion"]
+    sources = [m["source"] for m in block["measurements"]]
+    assert sources == ["disk outline", "line fit"]
+    line_fit = block["measurements"][1]
+    # the line fit of an undistorted pattern finds nothing beyond its noise (99 % test)
+    assert not line_fit["significant"]
+    # combined: the two weighed by their inverse covariances, below the 99 % quantile
+    assert block["chi2"] < stats.chi2.ppf(0.99, 2) and not block["significant"]
+    assert block["used"] == [0.0, 0.0] and "plain similarity" in block["note"]
+    doc = json.loads((tmp_path / "cal.json").read_text())
+    assert doc["detector"]["distortion"] == [0, 0]
+    assert doc["detector"]["sigma"]["distortion"] is None  # fitted again, held
