@@ -274,34 +274,90 @@ def test_mrc_stack_without_camera_calibration(tmp_path, small_pattern):
         read_pattern(tmp_path / "p.mrc")
 
 
-def test_digitalmicrograph_tags_through_the_readers_mapping(small_pattern):
-    """No writer exists for .dm3/.dm4: the tags of a diffraction image (the tag
-    groups DigitalMicrograph stores: ImageData.Calibrations, Microscope Info) go
-    through rosettasciio's own DM axis and metadata mapping, then laueline's."""
-    from rsciio.digitalmicrograph._api import ImageObject
+def _dm_value(value):
+    """(info words, little-endian payload) of a DigitalMicrograph data tag."""
+    import struct
 
-    from laueline.io.microscope import signal_metadata
+    if isinstance(value, str):  # text is stored as an array of 16-bit characters
+        chars = np.frombuffer(value.encode("utf-16-le"), "<u2")
+        return [20, 4, len(chars)], chars.tobytes()
+    if isinstance(value, bool):
+        return [8], struct.pack("<?", value)
+    if isinstance(value, int):
+        return [3], struct.pack("<i", value)
+    if isinstance(value, float):
+        return [7], struct.pack("<d", value)
+    code = {np.dtype("<u2"): 4, np.dtype("<f4"): 6}[value.dtype]
+    return [20, code, value.size], value.tobytes()  # an array of a simple type
 
-    tags = {"ImageData": {
-        "Calibrations": {"Dimension": {
-            "TagGroup0": {"Origin": 0.0, "Scale": 0.015, "Units": "1/nm"},
-            "TagGroup1": {"Origin": 0.0, "Scale": 0.015, "Units": "1/nm"}},
-            "Brightness": {"Origin": 0.0, "Scale": 1.0, "Units": ""}},
-        "Dimensions": {"Data0": 128, "Data1": 128}, "DataType": 10, "PixelDepth": 2},
+
+def _dm_group(tags, version):
+    import struct
+
+    n = "q" if version == 4 else "i"
+    entries = bytearray()
+    for name, value in tags.items():
+        label = b"" if name.startswith("_") else name.encode()  # "_k": unnamed
+        if isinstance(value, dict):
+            body = _dm_group(value, version)
+            kind = 20
+        else:
+            info, payload = _dm_value(value)
+            body = b"%%%%" + struct.pack(f">{n}", len(info)) + \
+                struct.pack(">" + n * len(info), *info) + payload
+            kind = 21
+        entries += struct.pack(">bh", kind, len(label)) + label
+        entries += (struct.pack(">q", len(body)) if version == 4 else b"") + body
+    return struct.pack(f">bb{n}", 0, 0, len(tags)) + bytes(entries)
+
+
+def write_dm(path, tags, version):
+    """A DigitalMicrograph tag file as its structure is published (from memory: C.
+    Boothroyd's description of DM3; DM4 widens counts and sizes to 8 bytes): a
+    big-endian header (version, size, byte-order flag), then nested tag groups
+    (sorted and open flags, tag count) of named tags, each data tag a '%%%%'
+    delimiter, a big-endian type description and the value in the file's byte
+    order (little-endian here)."""
+    import struct
+
+    body = _dm_group(tags, version)
+    size = struct.pack(">q" if version == 4 else ">i", len(body))
+    path.write_bytes(struct.pack(">i", version) + size + struct.pack(">i", 1) + body
+                     + b"\0" * 8)
+
+
+@pytest.mark.parametrize("version", [3, 4])
+def test_digitalmicrograph_file_built_from_its_published_structure(tmp_path, small_pattern,
+                                                                   version):
+    pattern = small_pattern[:, :96].astype("<u2")  # not square: rows and columns kept apart
+
+    def calibration(scale, units):
+        return {"Origin": 0.0, "Scale": scale, "Units": units}
+
+    tags = {"ImageList": {"_0": {
+        "ImageData": {
+            "Calibrations": {"Brightness": calibration(1.0, "Counts"),
+                             "Dimension": {"_0": calibration(0.015, "1/nm"),
+                                           "_1": calibration(0.015, "1/nm")},
+                             "DisplayCalibratedUnits": True},
+            # DataType 10: unsigned 16-bit; dimensions listed columns first
+            "Data": pattern.ravel(), "DataType": 10, "Dimensions": {"_0": 96, "_1": 128},
+            "PixelDepth": 2},
         # in TEM diffraction DigitalMicrograph keeps the camera length (mm) where an
         # image keeps its magnification
         "ImageTags": {"Microscope Info": {"Voltage": 200000.0, "Indicated Magnification": 310.0,
                                           "Illumination Mode": "TEM",
                                           "Imaging Mode": "DIFFRACTION"}},
-        "Name": "pattern"}
-    image = ImageObject(tags, None)
-    signal = {"data": small_pattern, "axes": image.get_axes_dict(), "metadata": {},
-              "original_metadata": {"ImageList": {"TagGroup0": tags}},
-              "mapping": image.get_mapping()}
-    meta = signal_metadata(signal, source="p.dm4", reader="digitalmicrograph")
+        "Name": "pattern"}}}
+    path = tmp_path / f"p.dm{version}"
+    write_dm(path, tags, version)
+    read = read_pattern(path)
+    np.testing.assert_array_equal(read.image, pattern)
+    meta = read.metadata
+    assert meta.reader == "digitalmicrograph" and meta.detector_shape == (128, 96)
     assert meta.kv == pytest.approx(200.0)  # the reader's V -> kV
     assert meta.camera_length_mm == pytest.approx(310.0)
-    expected = 1.0 / (0.0015 * wavelength_codata_A(200.0) * 1e3)
+    expected = 1.0 / (0.0015 * wavelength_codata_A(200.0) * 1e3)  # t = lambda q
     assert meta.scale_px_per_mrad == pytest.approx(expected, rel=1e-9)
 
 
