@@ -308,6 +308,8 @@ def _line_shape_note(image, detection, result, most=16):
 
 
 def _cmd_refine(args):
+    import dataclasses
+
     from . import report
     from .fit import Calibration, PatternSpec, PixelFrame, is_hexagonal, refine_patterns
     from .fit.patterns import read_patterns
@@ -354,7 +356,8 @@ def _cmd_refine(args):
                     rotation_deg=args.rotation_deg, mirror=args.mirror,
                     min_strength=args.min_strength, min_angle_deg=args.min_angle_deg,
                     match_mrad=args.match_mrad, disk_mrad=args.disk_mrad)
-    image = None
+    image = read_meta = distortion = None
+    distortion_mode = None
     try:
         if args.patterns:
             pattern_defaults = {k: v for k, v in defaults.items()
@@ -367,7 +370,7 @@ def _cmd_refine(args):
             if args.y_up:
                 raise InputError("--y-up applies to point files; images are read row by row")
             read = _read_pattern_args(args, args.image)
-            image, saturation = read.image, read.saturation
+            image, saturation, read_meta = read.image, read.saturation, read.metadata
             # the file's voltage and camera scale unless the command line gives them
             if args.kv is None and read.metadata.kv is not None:
                 options["kv"] = read.metadata.kv
@@ -376,6 +379,11 @@ def _cmd_refine(args):
             print(read.metadata.text() + "\n")
             detection = detect_lines(image, disk=args.disk_px, saturation=saturation,
                                      min_angle_deg=args.min_angle_deg, source=args.image)
+            distortion_mode = _distortion_mode(args, detection, calibration, options)
+            if distortion_mode in ("free", "test"):
+                defaults["distortion"] = detection.disk.detector_distortion
+            elif distortion_mode in ("zero", "held at zero"):
+                defaults["distortion"] = (0.0, 0.0)
             specs = [PatternSpec(tuple(args.zone), detection=detection, source=args.image,
                                  **defaults)]
         else:
@@ -401,7 +409,24 @@ def _cmd_refine(args):
                                          **single, **options)
             result = dynamical.result
         else:
-            result = refine_patterns(crystal, specs, **options)
+            if distortion_mode == "test":
+                try:
+                    result = refine_patterns(crystal, specs, **options)
+                except InputError:
+                    # too few lines to separate the distortion from the rest: the
+                    # disk outline's value is held instead
+                    distortion_mode = "disk"
+                    options["free"] = [f for f in options["free"] if f != "distortion"]
+            if distortion_mode != "test":
+                result = refine_patterns(crystal, specs, **options)
+            else:
+                estimate = _distortion_estimate(result, specs[0].detection, None, "test")
+                if not estimate.significant:
+                    distortion = estimate  # reported as measured, held at zero
+                    # the data show no distortion: the plain similarity, fitted again
+                    options["free"] = [f for f in options["free"] if f != "distortion"]
+                    specs = [dataclasses.replace(specs[0], distortion=(0.0, 0.0))]
+                    result = refine_patterns(crystal, specs, **options)
             bias = _kinematic_bias(result, crystal)
             if bias is not None:
                 # the fit again, with the kinematic model's bias as its systematic part
@@ -417,7 +442,23 @@ def _cmd_refine(args):
         note = _line_shape_note(image, specs[0].detection, result)
         if note is not None:
             result.warnings.append(note)
+        if distortion is None:
+            distortion = _distortion_estimate(result, specs[0].detection, calibration,
+                                              distortion_mode)
+        if not distortion.consistent:
+            result.warnings.append("the projector distortion of the disk outline disagrees "
+                                   "with the " + ("calibration's" if calibration is not None
+                                                  else "line fit's")
+                                   + ": check the disk edge and the calibration")
+        elif calibration is not None and calibration.distortion_covariance is None \
+                and specs[0].detection.disk.distortion_significant \
+                and not any(calibration.detector.distortion):
+            result.warnings.append("the disk outline shows a projector distortion that the "
+                                   "calibration does not hold: make the calibration on an "
+                                   "image (refine --image) so that it is measured")
     print(report.fit_text(result))
+    if distortion is not None:
+        print("\n" + distortion.text())
     if dynamical is not None:
         from .dynamical import dynamical_fit_text
 
@@ -429,6 +470,10 @@ def _cmd_refine(args):
         return fit_figure(result, crystal, image=image)
 
     document = report.fit_document(result)
+    if read_meta is not None:
+        document["file"] = report._clean(read_meta.as_dict())
+    if distortion is not None:
+        document["distortion"] = report._clean(distortion.to_dict())
     if dynamical is not None:
         from .dynamical import dynamical_fit_document
 
@@ -446,6 +491,61 @@ def _cmd_refine(args):
                          "kept changing by more than a tenth of its sigma\n")
         return EXIT_NOT_CONVERGED
     return 0
+
+
+def _distortion_mode(args, detection, calibration, options):
+    """How a fit to an image treats the projector distortion.
+
+    ``"calibration"``: held at the calibration's value; ``"free"``: freed by
+    ``--free distortion``, starting from the disk outline's; ``"zero"``: held
+    at zero by ``--hold distortion`` or because the disk outline shows none;
+    ``"test"``: the disk outline shows one, so the line fit frees it and a
+    significance test on both measurements decides whether it is kept.
+    """
+    free, hold = set(options["free"]), set(options["hold"])
+    if "distortion" in hold:
+        return "held at zero" if calibration is None else "calibration"
+    if calibration is not None and "distortion" not in free:
+        return "calibration"
+    if "distortion" in free:
+        return "free" if calibration is None else "calibration-free"
+    if detection.disk.distortion_significant:
+        options["free"] = list(options["free"]) + ["distortion"]
+        return "test"
+    return "zero"
+
+
+def _distortion_estimate(result, detection, calibration, mode):
+    """The distortion measurements of an image fit, combined, with what is held."""
+    import numpy as np
+
+    from .fit.calibration import DistortionMeasurement, combine_distortion
+
+    disk = DistortionMeasurement.from_disk(detection.disk)
+    line_fit = DistortionMeasurement.from_fit(result)
+    held = tuple(result.detector.distortion)
+    if mode in ("calibration", "calibration-free") and calibration is not None:
+        cov = calibration.distortion_covariance
+        reference = None if cov is None else DistortionMeasurement(
+            "calibration", tuple(calibration.detector.distortion), np.asarray(cov))
+        return combine_distortion([reference, disk, line_fit], used=held,
+                                  note="freed in this fit (--free distortion)"
+                                  if line_fit is not None else "held from the calibration")
+    if line_fit is None:
+        return combine_distortion([disk], used=held, note=(
+            "held at zero (--hold distortion)" if mode == "held at zero" else
+            "the line fit cannot separate it from the other parameters: the disk "
+            "outline's value is held" if mode == "disk" else
+            "the disk outline shows none at the 99 % level: plain similarity"))
+    if mode == "free":
+        return combine_distortion([disk, line_fit], used=held,
+                                  note="freed in the line fit (--free distortion)")
+    estimate = combine_distortion([disk, line_fit])
+    if estimate.significant:
+        return combine_distortion([disk, line_fit], used=held,
+                                  note="significant at the 99 % level: the line fit's value "
+                                       "is held (fitted with the voltage and scale)")
+    return estimate
 
 
 def _cmd_thickness(args):
@@ -769,7 +869,10 @@ def _cmd_map(args):
     print(f"scan {scan.source}: {scan.n_patterns} patterns of {scan.pattern_shape[1]} x "
           f"{scan.pattern_shape[0]} px, {' x '.join(map(str, scan.nav_shape))} "
           f"({', '.join(scan.nav_dims)}); {plan.n_lines} lines, {plan.n_points} profiles per "
-          f"pattern; calibration {kv:.2f} kV, {detector.scale_px_per_mrad:.3f} px/mrad")
+          f"pattern; calibration {kv:.2f} kV, {detector.scale_px_per_mrad:.3f} px/mrad"
+          + (", projector distortion e1 {:+.5f}, e2 {:+.5f} held".format(*detector.distortion)
+             if any(detector.distortion) else ", no projector distortion"))
+    _note_file_calibration(scan, kv, detector)
     ds = map_strain(scan, plan, out=args.out, force=args.force, scheduler=args.scheduler,
                     n_workers=args.workers, progress=not args.quiet)
     print(map_summary_text(ds, frame_text))
@@ -783,6 +886,21 @@ def _cmd_map(args):
     return 0
 
 
+def _note_file_calibration(scan, kv, detector):
+    """Say what the scan file's metadata give, and where they differ from the calibration."""
+    meta = scan.metadata if isinstance(getattr(scan, "metadata", None), dict) else {}
+    for item in meta.get("taken", []):
+        print(f"from the file: {item} (the calibration's values are used)")
+    file_kv, file_scale = meta.get("kv_file"), meta.get("scale_file_px_per_mrad")
+    if file_scale and abs(file_scale / detector.scale_px_per_mrad - 1) > 0.02:
+        # a 2 % camera-length mismatch is beyond what projector settings repeat to
+        print(f"caution: the file's camera scale {file_scale:.4g} px/mrad differs from the "
+              f"calibration's {detector.scale_px_per_mrad:.4g} px/mrad by more than 2 %: "
+              "was the reference recorded at the same camera length?")
+    if file_kv and abs(file_kv - kv) > 0.05 * kv:
+        print(f"caution: the file says {file_kv:g} kV, the calibration {kv:.2f} kV")
+
+
 def _map_reference(args, scan):
     """The reference pattern asked for, as an array, or None."""
     import numpy as np
@@ -790,9 +908,14 @@ def _map_reference(args, scan):
     if args.reference is not None and args.reference_index is not None:
         raise InputError("give either --reference or --reference-index, not both")
     if args.reference is not None:
-        from .images.io import read_image
+        from .io.microscope import read_pattern
 
-        return read_image(args.reference)[0]
+        try:
+            return read_pattern(args.reference).image
+        except InputError as exc:
+            raise InputError(f"--reference: {exc}".replace(
+                "choose one with index (--index)", "give a single-pattern file, or "
+                "--reference-index for a pattern of the scan")) from None
     if args.reference_index is not None:
         index = tuple(args.reference_index)
         if len(index) != len(scan.nav_shape) or any(

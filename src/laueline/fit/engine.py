@@ -90,6 +90,10 @@ class PatternSpec:
         Detector start values (``center_px`` in the user's convention).
     disk_mrad : float, optional
         Disk radius (6 for points; from the detected radius for images).
+    distortion : (e1, e2), optional
+        Elliptical projector distortion (:class:`laueline.detector.Detector`),
+        held unless freed (then the start value); default the calibration's,
+        else none.
     min_strength, min_angle_deg, match_mrad, match_px :
         Candidate features and gates for assignment.
     source : str
@@ -110,6 +114,7 @@ class PatternSpec:
     rotation_deg: float | None = None
     mirror: bool | None = None
     disk_mrad: float | None = None
+    distortion: tuple | None = None
     min_strength: float = 0.1
     min_angle_deg: float = 5.0
     match_mrad: float = 0.25
@@ -553,9 +558,11 @@ def _build(crystal, specs, *, kv, model, free, hold, unique_axis, robust, inner_
         kv_j = cal.kv if cal is not None else float(kv)
         make_beam(kv_j)  # validates the voltage
         pm.set_start("kv", j, kv_j)
+        distortion = spec.distortion if spec.distortion is not None else \
+            cal.detector.distortion if cal is not None else (0.0, 0.0)
+        pm.set_start("e1", j, float(distortion[0]))
+        pm.set_start("e2", j, float(distortion[1]))
         if cal is not None:
-            pm.set_start("e1", j, cal.detector.distortion[0])
-            pm.set_start("e2", j, cal.detector.distortion[1])
             if cal.structure and cal.structure != crystal.name:
                 warnings.append(f"{spec.label}the calibration was made on {cal.structure}, "
                                 f"not {crystal.name}")
@@ -752,8 +759,8 @@ def refine_patterns(crystal, patterns, *, kv=200.0, model="strain", free=(), hol
 
 def _single_kwargs(kwargs):
     keys = ("x_axis", "center_px", "scale_px_per_mrad", "rotation_deg", "mirror",
-            "calibration", "disk_mrad", "min_strength", "min_angle_deg", "match_mrad",
-            "match_px", "pixel_frame", "source")
+            "calibration", "disk_mrad", "distortion", "min_strength", "min_angle_deg",
+            "match_mrad", "match_px", "pixel_frame", "source")
     spec = {k: kwargs.pop(k) for k in keys if k in kwargs}
     from ..limits import check_inputs
 

@@ -44,7 +44,7 @@ from ..errors import InputError
 
 __all__ = ["MICROSCOPE_SUFFIXES", "MAX_SIDE_PX", "NavigationAxis", "FileMetadata",
            "MicroscopeFile", "PatternRead", "open_microscope_file", "read_pattern",
-           "iter_pattern_chunks", "mrad_per_pixel"]
+           "iter_pattern_chunks", "mrad_per_pixel", "signal_metadata"]
 
 # file suffix -> rosettasciio plugin module
 MICROSCOPE_SUFFIXES = {
@@ -53,10 +53,15 @@ MICROSCOPE_SUFFIXES = {
     ".zspy": "zspy",
 }
 MAX_SIDE_PX = 4096
+# the zspy reader opens lazy stores for writing ("r+") unless told otherwise; a
+# pattern file is only read, and may be on a read-only disk
+_READER_OPTIONS = {"zspy": {"mode": "r"}}
 
-_RECIPROCAL = {"1/nm": 0.1, "1/a": 1.0, "1/pm": 100.0}    # -> 1/A
-_ANGLE = {"mrad": 1.0, "rad": 1e3, "urad": 1e-3}           # -> mrad
+_RECIPROCAL = {"1/m": 1e-10, "1/um": 1e-4, "1/nm": 0.1, "1/a": 1.0, "1/pm": 100.0}  # -> 1/A
+_ANGLE = {"mrad": 1.0, "rad": 1e3, "urad": 1e-3,           # -> mrad
+          "deg": math.pi / 0.18, "degree": math.pi / 0.18, "°": math.pi / 0.18}
 _LENGTH = {"m": 1e3, "cm": 10.0, "mm": 1.0, "um": 1e-3}    # -> mm on the detector
+_REAL_SPACE = {"nm", "a", "pm"}  # specimen lengths: an image, not a pattern
 
 
 @dataclass(frozen=True)
@@ -166,7 +171,7 @@ def mrad_per_pixel(pixel_size, units, *, kv=None, camera_length_mm=None):
         Size of one pixel.
     units : str
         '1/nm', '1/A' (reciprocal lengths without 2 pi), 'mrad', 'rad',
-        'urad', or a length on the detector ('m', 'cm', 'mm', 'um').
+        'urad', 'deg', or a length on the detector ('m', 'cm', 'mm', 'um').
     kv : float, optional
         Voltage (kV); needed for reciprocal lengths.
     camera_length_mm : float, optional
@@ -207,9 +212,16 @@ def _first_line(exc):
 
 
 def _get(tree, path):
+    """The value at a dotted path; a space and an underscore match each other, as
+    readers write some paths in hyperspy's attribute form ("Microscope_Info")."""
     for key in path.split("."):
-        if not isinstance(tree, dict) or key not in tree:
+        if not isinstance(tree, dict):
             return None
+        if key not in tree:
+            wanted = key.replace(" ", "_")
+            key = next((k for k in tree if str(k).replace(" ", "_") == wanted), None)
+            if key is None:
+                return None
         tree = tree[key]
     return tree
 
@@ -331,7 +343,7 @@ def open_microscope_file(path, *, kv=None, scale_px_per_mrad=None, allow_large=F
                          f"({', '.join(sorted(MICROSCOPE_SUFFIXES))})")
     try:
         reader = importlib.import_module(f"rsciio.{plugin}").file_reader
-        signals = reader(str(path), lazy=True)
+        signals = reader(str(path), lazy=True, **_READER_OPTIONS.get(plugin, {}))
     except Exception as exc:  # noqa: BLE001  any reader failure is the file's problem
         raise InputError(f"{path}: rosettasciio cannot read it ({_first_line(exc)})") from None
     candidates = [s for s in signals or []
@@ -346,7 +358,6 @@ def open_microscope_file(path, *, kv=None, scale_px_per_mrad=None, allow_large=F
     if dtype.names is not None or not (np.issubdtype(dtype, np.integer)
                                        or np.issubdtype(dtype, np.floating)):
         raise InputError(f"{path}: unsupported pixel type {dtype}")
-    nav_axes, sig_axes = _signal_axes(signal)
     rows, cols = (int(v) for v in data.shape[-2:])
     if (rows > MAX_SIDE_PX or cols > MAX_SIDE_PX) and not allow_large:
         raise InputError(f"{path}: the pattern is {cols} x {rows} px, above the "
@@ -354,15 +365,45 @@ def open_microscope_file(path, *, kv=None, scale_px_per_mrad=None, allow_large=F
                          "(--allow-large-image) reads it")
     if hasattr(data, "rechunk") and data.ndim > 2:
         data = data.rechunk({data.ndim - 2: -1, data.ndim - 1: -1})
-    metadata = _metadata(path, plugin, signal, nav_axes, sig_axes, (rows, cols), kv,
-                         scale_px_per_mrad)
+    metadata = signal_metadata(signal, source=str(path), reader=plugin, kv=kv,
+                               scale_px_per_mrad=scale_px_per_mrad)
     saturation = float(np.iinfo(dtype).max) if np.issubdtype(dtype, np.integer) else None
     return MicroscopeFile(data, metadata, saturation)
 
 
-def _metadata(path, plugin, signal, nav_axes, sig_axes, shape, kv, scale_px_per_mrad):
+def signal_metadata(signal, *, source="", reader="", kv=None, scale_px_per_mrad=None,
+                    strict=True):
+    """The calibration of a signal in rosettasciio's dictionary form.
+
+    Parameters
+    ----------
+    signal : dict
+        One item of what a rosettasciio ``file_reader`` returns: ``data``,
+        ``axes``, ``metadata``, ``original_metadata`` and the reader's
+        ``mapping`` from original to standard metadata.
+    source, reader : str
+        The file and the plugin, for the report.
+    kv, scale_px_per_mrad : float, optional
+        Override the signal's voltage and camera scale.
+    strict : bool
+        Refuse pixel-size units that cannot be converted; when False they
+        are reported as a warning and left unused (TIFF files, whose
+        resolution tags often hold a print resolution).
+
+    Returns
+    -------
+    FileMetadata
+
+    Raises
+    ------
+    InputError
+        Pixel-size units that cannot be converted to mrad (unless
+        ``scale_px_per_mrad`` is given).
+    """
+    nav_axes, sig_axes = _signal_axes(signal)
+    shape = tuple(int(v) for v in signal["data"].shape[-2:])
     md = _apply_mapping(signal)
-    meta = FileMetadata(str(path), plugin, detector_shape=shape)
+    meta = FileMetadata(str(source), str(reader), detector_shape=shape)
     tem = _get(md, "Acquisition_instrument.TEM") or {}
     energy = tem.get("beam_energy")
     if energy is not None and np.isfinite(float(energy)) and float(energy) > 0:
@@ -390,6 +431,12 @@ def _metadata(path, plugin, signal, nav_axes, sig_axes, shape, kv, scale_px_per_
     units = str(col.get("units") or "")
     size = float(col.get("scale", 1.0) or 1.0)
     calibrated = _normalise_units(units) not in ("", "px", "pixel", "pixels", "<undefined>")
+    if calibrated and reader == "mrc" and _normalise_units(units) in _REAL_SPACE:
+        # the MRC header holds a real-space cell (rosettasciio reports it in nm,
+        # 1 nm per pixel when the cell is empty): no camera calibration
+        meta.warnings.append(f"the MRC header gives a real-space pixel size ({abs(size):g} "
+                             f"{units}), not a camera calibration; it is not used")
+        calibrated = False
     if calibrated:
         meta.pixel_size, meta.pixel_units = abs(size), units
         row_size = abs(float(row.get("scale", size) or size))
@@ -408,9 +455,11 @@ def _metadata(path, plugin, signal, nav_axes, sig_axes, shape, kv, scale_px_per_
             try:
                 mrad = mrad_per_pixel(abs(size), units, kv=meta.kv,
                                       camera_length_mm=meta.camera_length_mm)
-            except InputError:
-                if scale_px_per_mrad is None:
+            except InputError as exc:
+                if scale_px_per_mrad is None and strict:
                     raise
+                if scale_px_per_mrad is None:
+                    meta.warnings.append(f"{exc}; not used")
         if mrad is not None:
             meta.scale_file_px_per_mrad = 1.0 / mrad
             meta.taken.append(f"pixel size {abs(size):g} {units} = "
@@ -466,6 +515,11 @@ def read_pattern(path, *, index=None, kv=None, scale_px_per_mrad=None, allow_lar
     from ..images.io import read_image
 
     image, saturation = read_image(path, index=index, allow_large=allow_large)
+    if path.suffix.lower() in (".tif", ".tiff"):
+        meta = _tiff_metadata(path, image.shape, kv, scale_px_per_mrad)
+        if meta is not None:
+            meta.index = None if index is None else tuple(np.atleast_1d(index).tolist())
+            return PatternRead(image, saturation, meta)
     meta = FileMetadata(str(path), "image", detector_shape=image.shape,
                         index=None if index is None else tuple(np.atleast_1d(index).tolist()))
     meta.kv = None if kv is None else float(kv)
@@ -476,6 +530,31 @@ def read_pattern(path, *, index=None, kv=None, scale_px_per_mrad=None, allow_lar
         meta.overrides.append(f"camera scale {float(scale_px_per_mrad):g} px/mrad from the "
                               "command line")
     return PatternRead(image, saturation, meta)
+
+
+def _tiff_metadata(path, shape, kv, scale_px_per_mrad):
+    """The calibration rosettasciio's TIFF reader finds (its own tags, ImageJ or
+    vendor tags), or None when it finds no pattern of ``shape`` in the file."""
+    import tifffile
+
+    try:
+        with tifffile.TiffFile(path) as tif:
+            # ImageJ descriptions and private tags (vendor and rosettasciio's own,
+            # codes from 32768) are where a calibration can be; a plain TIFF has
+            # none, and the reader's unit handling costs seconds on first use
+            if not (tif.is_imagej or any(tag.code >= 32768 for tag in tif.pages[0].tags)):
+                return None
+        from rsciio.tiff import file_reader
+
+        signals = file_reader(str(path), lazy=True)
+    except Exception:  # noqa: BLE001  a plain TIFF that tifffile read is still a pattern
+        return None
+    signal = next((s for s in signals or [] if hasattr(s.get("data"), "shape")
+                   and tuple(s["data"].shape[-2:]) == tuple(shape)), None)
+    if signal is None:
+        return None
+    return signal_metadata(signal, source=str(path), reader="tiff", kv=kv,
+                           scale_px_per_mrad=scale_px_per_mrad, strict=False)
 
 
 def iter_pattern_chunks(opened):
