@@ -155,13 +155,23 @@ def find_disk(image, valid=None):
     image : ndarray (rows, cols)
     valid : ndarray of bool, optional
         Pixels that may be used (False for saturated ones).
+
+    Notes
+    -----
+    The bright region and a first circle come from a block-averaged copy
+    (about 256 px across), so that the cost does not grow with the square
+    of the image size; the edge itself is then located at full resolution
+    on rays cast from that centre, the image sampled along each ray and
+    smoothed by a Gaussian of 2 px in the polar frame of the rays.
     """
     from scipy import ndimage
     from skimage.filters import threshold_otsu
-    from skimage.measure import CircleModel, ransac
 
+    image = np.asarray(image, dtype=float)
     rows, cols = image.shape
-    smooth = ndimage.gaussian_filter(image, 2.0)
+    factor = max(1, min(rows, cols) // 256)
+    small = _block_mean(image, factor)
+    smooth = ndimage.gaussian_filter(small, max(2.0 / factor, 1.0))
     try:
         level = threshold_otsu(smooth)
     except ValueError:
@@ -172,51 +182,101 @@ def find_disk(image, valid=None):
         raise InputError("no bright disk found in the image")
     sizes = ndimage.sum(mask, labels, index=np.arange(1, count + 1))
     region = ndimage.binary_fill_holes(labels == (1 + int(np.argmax(sizes))))
-    if region.sum() < 300:
-        raise InputError("no disk found: the brightest region is only "
-                         f"{int(region.sum())} pixels")
+    area = float(region.sum()) * factor ** 2
+    if area < 300:
+        raise InputError(f"no disk found: the brightest region is only {int(area)} pixels")
     yy, xx = np.nonzero(region)
-    centre = np.array([xx.mean(), yy.mean()])
-    radius = math.sqrt(region.sum() / math.pi)
+    centre = (np.array([xx.mean(), yy.mean()]) + 0.5) * factor - 0.5
+    radius = math.sqrt(area / math.pi)
     inside_level = np.median(smooth[region])
     outside_level = np.median(smooth[~region]) if np.any(~region) else 0.0
     half = 0.5 * (inside_level + outside_level)
-    angles = np.linspace(0, 2 * np.pi, 720, endpoint=False)
-    for attempt in range(2):  # the first circle fit moves the centre; cast the rays again
-        if attempt == 0:
-            radii = np.linspace(0.6 * radius, 1.4 * radius, int(1.6 * radius))
-        else:  # close to the edge now: a narrow, finely sampled window
-            reach = max(10.0, 0.012 * radius)
-            radii = np.linspace(radius - reach, radius + reach, int(4 * reach) + 1)
-        px = centre[0] + np.outer(np.cos(angles), radii)
-        py = centre[1] + np.outer(np.sin(angles), radii)
-        inside_frame = (px >= 1) & (px <= cols - 2) & (py >= 1) & (py <= rows - 2)
-        values = ndimage.map_coordinates(smooth, [py, px], order=1, mode="nearest")
-        ok_valid = np.ones_like(values, dtype=bool) if valid is None else \
-            ndimage.map_coordinates(valid.astype(float), [py, px], order=0) > 0.5
-        # the outermost downward crossing of the half level on each ray
-        down = (values[:, :-1] >= half) & (values[:, 1:] < half)
-        last = down.shape[1] - 1 - np.argmax(down[:, ::-1], axis=1)
-        k = np.arange(len(angles))
-        usable = (down.any(axis=1) & inside_frame[k, last] & inside_frame[k, last + 1]
-                  & ok_valid[k, last] & ok_valid[k, last + 1])
-        k, j = k[usable], last[usable]
-        if len(k) < 20:
-            raise InputError("no disk found: too little of a disk edge is visible")
-        f = (values[k, j] - half) / (values[k, j] - values[k, j + 1])
-        rr = radii[j] + f * (radii[j + 1] - radii[j])
-        edges = centre + rr[:, None] * np.stack([np.cos(angles[k]), np.sin(angles[k])], 1)
-        # the threshold admits an elliptical projector distortion of ~0.5 %
-        model, inliers = ransac(edges, CircleModel, min_samples=3,
-                                residual_threshold=max(1.5, 0.006 * radius),
-                                max_trials=200, rng=0)
-        if model is None or inliers is None or inliers.sum() < 10:
-            raise InputError("no disk found: the bright region is not circular")
-        xc, yc, radius = _circle(model)
-        centre = np.array([xc, yc])
+    all_valid = valid is None or bool(np.all(valid))
+    small_valid = None if all_valid else _block_mean(valid.astype(float), factor) > 0.999
+    # first circle: on the block-averaged copy, rays from the region's centroid
+    angles = np.linspace(0, 2 * np.pi, 360, endpoint=False)
+    radii = np.linspace(0.6 * radius, 1.4 * radius, int(1.6 * radius / factor) + 2)
+    px = centre[0] + np.outer(np.cos(angles), radii)
+    py = centre[1] + np.outer(np.sin(angles), radii)
+    values = ndimage.map_coordinates(smooth, _to_block(py, px, factor), order=1, mode="nearest")
+    edges = _ray_edges(values, centre, angles, radii, half, (rows, cols), small_valid, factor)
+    centre, radius, _ = _robust_circle(edges, radius)
+    # the edge at full resolution: rays close to it, Gaussian-smoothed in the polar frame
+    reach = max(10.0, 0.012 * radius)
+    sigma, step = 2.0, 0.5
+    pad = 3 * sigma
+    radii = np.arange(radius - reach - pad, radius + reach + pad + step / 2, step)
+    n_fine = 720 * max(1, int(math.ceil(2 * np.pi * radius / sigma / 720)))  # rays <= 2 px apart
+    fine = np.linspace(0, 2 * np.pi, n_fine, endpoint=False)
+    px = centre[0] + np.outer(np.cos(fine), radii)
+    py = centre[1] + np.outer(np.sin(fine), radii)
+    values = ndimage.map_coordinates(image, [py, px], order=1, mode="nearest")
+    values = ndimage.gaussian_filter1d(values, sigma / step, axis=1, mode="nearest")
+    values = ndimage.gaussian_filter1d(values, sigma * n_fine / (2 * np.pi * radius), axis=0,
+                                       mode="wrap")
+    keep = slice(None, None, n_fine // 720)
+    inner = np.abs(radii - radius) <= reach + 1e-9
+    edges = _ray_edges(values[keep][:, inner], centre, fine[keep], radii[inner], half,
+                       (rows, cols), None if all_valid else valid)
+    centre, radius, inliers = _robust_circle(edges, radius)
     if radius < 10:
         raise InputError(f"no usable disk found (radius {radius:.1f} px)")
     return _ellipse_disk(edges[inliers], centre)
+
+
+def _block_mean(a, factor):
+    """Means of factor x factor blocks (trailing rows and columns that fill no block dropped)."""
+    if factor == 1:
+        return a
+    r, c = a.shape[0] // factor * factor, a.shape[1] // factor * factor
+    return a[:r, :c].reshape(r // factor, factor, c // factor, factor).mean(axis=(1, 3))
+
+
+def _ray_edges(values, centre, angles, radii, half, shape, valid=None, factor=1):
+    """Outermost downward crossing of the level ``half`` on rays from ``centre``.
+
+    ``values`` (rays, radii) are the image sampled on the rays.  Edge points
+    outside the frame (``shape``, full px) or on pixels not ``valid`` (an
+    array block-averaged by ``factor``) are left out.
+    """
+    from scipy import ndimage
+
+    rows, cols = shape
+    px = centre[0] + np.outer(np.cos(angles), radii)
+    py = centre[1] + np.outer(np.sin(angles), radii)
+    inside_frame = (px >= 1) & (px <= cols - 2) & (py >= 1) & (py <= rows - 2)
+    if valid is not None:
+        inside_frame &= ndimage.map_coordinates(
+            valid.astype(float), _to_block(py, px, factor), order=0, mode="nearest") > 0.5
+    down = (values[:, :-1] >= half) & (values[:, 1:] < half)
+    last = down.shape[1] - 1 - np.argmax(down[:, ::-1], axis=1)
+    k = np.arange(len(angles))
+    usable = down.any(axis=1) & inside_frame[k, last] & inside_frame[k, last + 1]
+    k, j = k[usable], last[usable]
+    if len(k) < 20:
+        raise InputError("no disk found: too little of a disk edge is visible")
+    f = (values[k, j] - half) / (values[k, j] - values[k, j + 1])
+    rr = radii[j] + f * (radii[j + 1] - radii[j])
+    return centre + rr[:, None] * np.stack([np.cos(angles[k]), np.sin(angles[k])], 1)
+
+
+def _to_block(py, px, factor):
+    """Full-resolution pixel coordinates -> those of a copy block-averaged by ``factor``."""
+    return [(py + 0.5) / factor - 0.5, (px + 0.5) / factor - 0.5]
+
+
+def _robust_circle(edges, radius):
+    """RANSAC circle (:class:`skimage.measure.CircleModel`) through edge points."""
+    from skimage.measure import CircleModel, ransac
+
+    # the threshold admits an elliptical projector distortion of ~0.5 %
+    model, inliers = ransac(edges, CircleModel, min_samples=3,
+                            residual_threshold=max(1.5, 0.006 * radius),
+                            max_trials=200, stop_probability=0.9999, rng=0)
+    if model is None or inliers is None or inliers.sum() < 10:
+        raise InputError("no disk found: the bright region is not circular")
+    xc, yc, r = _circle(model)
+    return np.array([xc, yc]), r, inliers
 
 
 def _ellipse_disk(edges, centre, passes=3):
