@@ -180,23 +180,37 @@ def _sample(flat, valid, points, normals, hw_m, hw, segment, others, step):
     return dmean, profile, count, crowded
 
 
-def _model(p, d):
-    """Profile model and Jacobian; p (M, 7), d (n,) -> f (M, n), J (M, n, 7)."""
+def _model(p, d, cols=None):
+    """Profile model and Jacobian; p (M, 7), d (M, n) -> f (M, n), J (M, n, len(cols)).
+
+    ``cols`` lists the parameters whose derivatives are wanted (all by default).
+    """
     x0, depth, width, base, slope, a, c = (p[:, k:k + 1] for k in range(_N_PARAMS))
     u = (d - x0) / width
     u2 = u * u
     e = np.exp(-0.5 * u2)
-    g = e * (1.0 + c * u2 + a * u2 * u)
-    dg = e * (-u * (1.0 + c * u2 + a * u2 * u) + 2.0 * c * u + 3.0 * a * u2)
+    shape = 1.0 + c * u2 + a * u2 * u
+    g = e * shape
     f = base + slope * d - depth * g
-    jac = np.empty(f.shape + (_N_PARAMS,))
-    jac[..., 0] = depth * dg / width
-    jac[..., 1] = -g
-    jac[..., 2] = depth * dg * u / width
-    jac[..., 3] = 1.0
-    jac[..., 4] = d
-    jac[..., 5] = -depth * e * u2 * u
-    jac[..., 6] = -depth * e * u2
+    cols = range(_N_PARAMS) if cols is None else cols
+    jac = np.empty(f.shape + (len(cols),))
+    if 0 in cols or 2 in cols:
+        dg_w = depth * e * (-u * shape + 2.0 * c * u + 3.0 * a * u2) / width
+    for k, col in enumerate(cols):
+        if col == 0:
+            jac[..., k] = dg_w
+        elif col == 1:
+            jac[..., k] = -g
+        elif col == 2:
+            jac[..., k] = dg_w * u
+        elif col == 3:
+            jac[..., k] = 1.0
+        elif col == 4:
+            jac[..., k] = d
+        elif col == 5:
+            jac[..., k] = -depth * e * u2 * u
+        else:
+            jac[..., k] = -depth * e * u2
     return f, jac
 
 
@@ -221,6 +235,9 @@ def fit_profiles(d, profile, count, start_x0, start_width, noise, *, max_width=N
     shape_terms : bool
         Free the asymmetry and fringe terms after a plain Gaussian fit;
         False stops at the Gaussian (as a start for :func:`template_minima`).
+    iterations : int
+        Most Levenberg-Marquardt steps; each profile leaves the iteration
+        as soon as it has converged.
 
     Returns
     -------
@@ -243,19 +260,22 @@ def fit_profiles(d, profile, count, start_x0, start_width, noise, *, max_width=N
     p = np.stack([d[np.arange(m_count), at], np.maximum(dip0, noise), start_width, base0,
                   np.zeros(m_count), np.zeros(m_count), np.zeros(m_count)], 1)
     # first a plain Gaussian dip (shape terms held at zero), then everything
-    held = _PRIOR_SD.copy()
-    held[5:] = 1e-6
+    gaussian = (0, 1, 2, 3, 4)
+    p = _levenberg_marquardt(p, d, profile, w, gaussian, max_width, iterations)
+    free = tuple(range(_N_PARAMS)) if shape_terms else gaussian
     if shape_terms:
-        p = _levenberg_marquardt(p, d, profile, used, w, noise, held, max_width, iterations)
-    p, r, jac, a_mat = _levenberg_marquardt(p, d, profile, used, w, noise,
-                                            _PRIOR_SD if shape_terms else held, max_width,
-                                            iterations, final=True)
+        p = _levenberg_marquardt(p, d, profile, w, free, max_width, iterations)
+    f, jac = _model(p, d, free)
+    r = (f - profile) * w
+    jw = jac * w[..., None]
+    prior_diag = _prior_diag(free)
+    a_mat = np.matmul(jw.transpose(0, 2, 1), jw) + np.diag(prior_diag)[None]
     n_used = used.sum(axis=1)
-    dof = np.maximum(n_used - _N_PARAMS, 1)
+    dof = np.maximum(n_used - _N_PARAMS, 1)  # as for the full series, free or held
     s2 = np.sum(r * r, axis=1) / dof
     s2 = s2 * _correlation_factor(r, used)
     ok = n_used >= _N_PARAMS + 2
-    cov = np.full((m_count, _N_PARAMS, _N_PARAMS), np.nan)
+    cov = np.full((m_count, len(free), len(free)), np.nan)
     good_mat = ok & np.all(np.isfinite(a_mat), axis=(1, 2))
     if good_mat.any():
         sign, _ = np.linalg.slogdet(a_mat[good_mat])
@@ -270,57 +290,77 @@ def fit_profiles(d, profile, count, start_x0, start_width, noise, *, max_width=N
     return ProfileFit(minimum, var, depth, depth_sigma, width, a, c, ok, p)
 
 
-def _levenberg_marquardt(p, d, profile, used, w, noise, prior_sd, max_width, iterations,
-                         final=False):
-    m_count = len(p)
-    prior_w = 1.0 / prior_sd
-    finite_prior = np.isfinite(prior_sd)
+def _prior_diag(free):
+    """Inverse prior variances of the free parameters (0 where there is no prior)."""
+    sd = _PRIOR_SD[list(free)]
+    return np.where(np.isfinite(sd), 1.0 / sd ** 2, 0.0)
 
-    def cost_and_parts(p):
-        f, jac = _model(p, d)
+
+def _levenberg_marquardt(p, d, profile, w, free, max_width, iterations):
+    """Damped Gauss-Newton over the parameters ``free`` of every profile at once.
+
+    Each profile is iterated until its cost stops falling (relative change
+    below 1e-7 on an accepted step, or a damping beyond 1e4 after rejected
+    steps); converged profiles leave the batch, so the work follows the
+    profiles still moving.
+    """
+    free = list(free)
+    prior_diag = _prior_diag(free)
+    prior_w = np.sqrt(prior_diag)
+    eye = np.eye(len(free))
+
+    def cost_and_parts(p, d, profile, w):
+        f, jac = _model(p, d, free)
         r = (f - profile) * w
-        prior = np.where(finite_prior, p * np.where(finite_prior, prior_w, 0.0), 0.0)
+        prior = p[:, free] * prior_w
         return np.sum(r * r, axis=1) + np.sum(prior * prior, axis=1), r, jac
 
-    lam = np.full(m_count, 1e-2)
-    cost, r, jac = cost_and_parts(p)
-    prior_diag = np.where(finite_prior, prior_w ** 2, 0.0)
+    p = p.copy()
+    lam = np.full(len(p), 1e-2)
+    cost, r, jac = cost_and_parts(p, d, profile, w)
+    active = np.arange(len(p))
     for _ in range(iterations):
-        jw = jac * w[..., None]
+        if not len(active):
+            break
+        pa, da, wa = p[active], d[active], w[active]
+        jw = jac * wa[..., None]
         a_mat = np.matmul(jw.transpose(0, 2, 1), jw) + np.diag(prior_diag)[None]
-        grad = np.matmul(jw.transpose(0, 2, 1), r[..., None])[..., 0] + prior_diag[None] * p
+        grad = np.matmul(jw.transpose(0, 2, 1), r[..., None])[..., 0] + \
+            prior_diag[None] * pa[:, free]
         diag = np.einsum("mii->mi", a_mat)
-        damped = a_mat + (lam[:, None] * np.maximum(diag, 1e-12))[:, :, None] * np.eye(_N_PARAMS)
+        damped = a_mat + (lam[active][:, None] * np.maximum(diag, 1e-12))[:, :, None] * eye
         try:
             step = -np.linalg.solve(damped, grad[..., None])[..., 0]
         except np.linalg.LinAlgError:
             break
-        trial = p + step
+        trial = pa.copy()
+        trial[:, free] += step
         trial[:, 2] = np.clip(trial[:, 2], 0.3, max_width)
         trial[:, 5] = np.clip(trial[:, 5], -0.4, 0.4)
         trial[:, 6] = np.clip(trial[:, 6], -0.8, 0.45)
-        trial[:, 0] = np.clip(trial[:, 0], d[:, 0], d[:, -1])
-        new_cost, new_r, new_jac = cost_and_parts(trial)
-        better = new_cost < cost
-        p = np.where(better[:, None], trial, p)
-        cost = np.where(better, new_cost, cost)
-        r = np.where(better[:, None], new_r, r)
-        jac = np.where(better[:, None, None], new_jac, jac)
-        lam = np.where(better, lam / 3.0, lam * 4.0)
-        if np.all(lam > 1e6):
-            break
-    if not final:
-        return p
-    jw = jac * w[..., None]
-    a_mat = np.matmul(jw.transpose(0, 2, 1), jw) + np.diag(prior_diag)[None]
-    return p, r, jac, a_mat
+        trial[:, 0] = np.clip(trial[:, 0], da[:, 0], da[:, -1])
+        new_cost, new_r, new_jac = cost_and_parts(trial, da, profile[active], wa)
+        old = cost[active]
+        better = new_cost < old
+        p[active[better]] = trial[better]
+        cost[active[better]] = new_cost[better]
+        lam[active] = np.where(better, lam[active] / 3.0, lam[active] * 4.0)
+        done = (better & (old - new_cost <= 1e-7 * old)) | (lam[active] > 1e4)
+        r = np.where(better[:, None], new_r, r)[~done]
+        jac = np.where(better[:, None, None], new_jac, jac)[~done]
+        active = active[~done]
+    return p
 
 
 def _masked_median(profile, used):
-    masked = np.where(used, profile, np.nan)
-    with np.errstate(all="ignore"):
-        out = np.nanmedian(masked, axis=1)
-    return np.nan_to_num(out)
+    """Median of each row over its used entries (0 for a row with none)."""
+    n_used = used.sum(axis=1)
+    ordered = np.sort(np.where(used, profile, np.inf), axis=1)
+    lo = np.clip((n_used - 1) // 2, 0, profile.shape[1] - 1)
+    hi = np.clip(n_used // 2, 0, profile.shape[1] - 1)
+    rows = np.arange(len(profile))
+    out = 0.5 * (ordered[rows, lo] + ordered[rows, hi])
+    return np.where(n_used > 0, out, 0.0)
 
 
 def _correlation_factor(r, used):
