@@ -139,42 +139,55 @@ def _sample(flat, valid, points, normals, hw_m, hw, segment, others, step):
     centres = -hw + step * (np.arange(n_bins) + 0.5)
     reach_px = int(math.ceil(math.hypot(hw, segment / 2.0))) + 1
     off = np.arange(-reach_px, reach_px + 1)
-    base = np.round(points).astype(int)
-    ix = base[:, 0, None, None] + off[None, None, :]
-    iy = base[:, 1, None, None] + off[None, :, None]
-    dx = ix - points[:, 0, None, None]
-    dy = iy - points[:, 1, None, None]
+    base = np.round(points).astype(np.intp)
+    frac = points - base                                   # (M, 2) in [-0.5, 0.5]
     nx, ny = normals[:, 0, None, None], normals[:, 1, None, None]
-    d = dx * nx + dy * ny
-    v = -dx * ny + dy * nx
-    inframe = (ix >= 0) & (ix < cols) & (iy >= 0) & (iy < rows)
-    ixc, iyc = np.clip(ix, 0, cols - 1), np.clip(iy, 0, rows - 1)
-    ixc, iyc = np.broadcast_to(ixc, d.shape), np.broadcast_to(iyc, d.shape)
-    use = inframe & (np.abs(v) <= segment / 2.0) & (np.abs(d) < hw_m[:, None, None]) \
-        & valid[iyc, ixc]
+    # pixel offsets from the segment centre: d across the line, v along it
+    ox, oy = off[None, None, :].astype(float), off[None, :, None].astype(float)
+    d0 = (frac[:, 0] * normals[:, 0] + frac[:, 1] * normals[:, 1])[:, None, None]
+    v0 = (-frac[:, 0] * normals[:, 1] + frac[:, 1] * normals[:, 0])[:, None, None]
+    d = ox * nx + oy * ny - d0
+    v = oy * nx - ox * ny - v0
+    use = (np.abs(v) <= segment / 2.0) & (np.abs(d) < hw_m[:, None, None])
+    lin = (base[:, 1] * cols + base[:, 0])[:, None, None] + \
+        (off[:, None] * cols + off[None, :])[None]
+    lo, hi = base.min(axis=0) - reach_px, base.max(axis=0) + reach_px
+    if lo[0] < 0 or lo[1] < 0 or hi[0] >= cols or hi[1] >= rows:  # patches at the frame's edge
+        ix = base[:, 0, None, None] + off[None, None, :]
+        iy = base[:, 1, None, None] + off[None, :, None]
+        use &= (ix >= 0) & (ix < cols) & (iy >= 0) & (iy < rows)
+        lin = np.where(use, lin, 0)
+    use &= valid.ravel()[lin]
     crowded = np.zeros(m_count, dtype=bool)
     if others is not None:
         dist, along_n, along_t, keep = others
-        # the other line's distance at (d, v) is dist + d along_n + v along_t;
         # only (segment, line) pairs whose line comes near the sampled patch
         reach = np.abs(dist) - hw * np.abs(along_n) - 0.5 * segment * np.abs(along_t)
         m_idx, j_idx = np.nonzero((reach < keep) & (keep > 0))
         crowded[m_idx] = True
-        if len(m_idx):
-            near = np.abs(dist[m_idx, j_idx][:, None, None]
-                          + d[m_idx] * along_n[m_idx, j_idx][:, None, None]
-                          + v[m_idx] * along_t[m_idx, j_idx][:, None, None]) \
-                < keep[m_idx, j_idx][:, None, None]
-            hits = np.zeros(d.shape, dtype=np.int32)
-            np.add.at(hits, m_idx, near.astype(np.int32))
-            use &= hits == 0
-    seg_id = np.broadcast_to(np.arange(m_count)[:, None, None], d.shape)[use]
-    bins = np.clip(((d[use] + hw) / step).astype(int), 0, n_bins - 1)
+        # the other line's distance at pixel offset (ox, oy) is dist + d along_n
+        # + v along_t, linear in the offsets: a + b ox + c oy
+        an, at = along_n[m_idx, j_idx], along_t[m_idx, j_idx]
+        nxp, nyp = normals[m_idx, 0], normals[m_idx, 1]
+        a = dist[m_idx, j_idx] - d0[m_idx, 0, 0] * an - v0[m_idx, 0, 0] * at
+        b, c = nxp * an - nyp * at, nyp * an + nxp * at
+        kp = keep[m_idx, j_idx]
+        # one pass per rank of a pair within its segment: no segment twice in a pass
+        first = np.searchsorted(m_idx, m_idx)
+        rank = np.arange(len(m_idx)) - first
+        for k in range(int(rank.max()) + 1 if len(rank) else 0):
+            sel = rank == k
+            near = np.abs(a[sel, None, None] + b[sel, None, None] * ox
+                          + c[sel, None, None] * oy) < kp[sel, None, None]
+            use[m_idx[sel]] &= ~near
+    seg_id = np.nonzero(use)[0]
+    d_use = d[use]
+    bins = np.clip(((d_use + hw) / step).astype(np.intp), 0, n_bins - 1)
     key = seg_id * n_bins + bins
     size = m_count * n_bins
     count = np.bincount(key, minlength=size).astype(float).reshape(m_count, n_bins)
-    total = np.bincount(key, flat[iyc[use], ixc[use]], minlength=size).reshape(m_count, n_bins)
-    dsum = np.bincount(key, d[use], minlength=size).reshape(m_count, n_bins)
+    total = np.bincount(key, flat.ravel()[lin[use]], minlength=size).reshape(m_count, n_bins)
+    dsum = np.bincount(key, d_use, minlength=size).reshape(m_count, n_bins)
     profile = np.divide(total, count, out=np.zeros_like(total), where=count > 0)
     dmean = np.where(count > 0, dsum / np.maximum(count, 1), centres[None, :])
     return dmean, profile, count, crowded
@@ -300,9 +313,9 @@ def _levenberg_marquardt(p, d, profile, w, free, max_width, iterations):
     """Damped Gauss-Newton over the parameters ``free`` of every profile at once.
 
     Each profile is iterated until its cost stops falling (relative change
-    below 1e-7 on an accepted step, or a damping beyond 1e4 after rejected
-    steps); converged profiles leave the batch, so the work follows the
-    profiles still moving.
+    below 1e-7) or its position and width stop moving on an accepted step,
+    or until rejected steps have driven the damping beyond 1e3; converged
+    profiles leave the batch, so the work follows the profiles still moving.
     """
     free = list(free)
     prior_diag = _prior_diag(free)
@@ -345,7 +358,10 @@ def _levenberg_marquardt(p, d, profile, w, free, max_width, iterations):
         p[active[better]] = trial[better]
         cost[active[better]] = new_cost[better]
         lam[active] = np.where(better, lam[active] / 3.0, lam[active] * 4.0)
-        done = (better & (old - new_cost <= 1e-7 * old)) | (lam[active] > 1e4)
+        # converged: the cost no longer falls, or the position and width no longer
+        # move (well below a thousandth of a pixel), or the damping has run away
+        settled = (np.abs(step[:, 0]) < 2e-4) & (np.abs(step[:, 2]) < 1e-3 * pa[:, 2])
+        done = (better & ((old - new_cost <= 1e-7 * old) | settled)) | (lam[active] > 1e3)
         r = np.where(better[:, None], new_r, r)[~done]
         jac = np.where(better[:, None, None], new_jac, jac)[~done]
         active = active[~done]
