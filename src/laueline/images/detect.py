@@ -406,14 +406,8 @@ def _flatten(image, valid, disk, line_sigma_px=1.0):
     flat_box = np.where(inner, ratio / level - 1.0, 0.0)
     flat[r0:r1, c0:c1] = flat_box
     interior[r0:r1, c0:c1] = inner
-    # pixel noise from differences of pixels two columns apart (beyond the
-    # reach of a detector blur; lines are rare): MAD / 0.6745, over sqrt(2);
-    # every other row (every few for a large disk) suffices
-    every = max(2, int(inner.sum() // 200_000) + 1)
-    fs, ins = flat_box[::every], inner[::every]
-    diff = (fs[:, 2:] - fs[:, :-2])[ins[:, 2:] & ins[:, :-2]]
-    noise = float(1.4826 * np.median(np.abs(diff - np.median(diff))) / math.sqrt(2))
-    noise = max(noise, 1e-3)  # noiseless (rendered) images: 0.1 % keeps thresholds sane
+    every = max(2, int(inner.sum() // 200_000) + 1)  # every other row (or fewer) suffices
+    noise = _pixel_noise(flat_box[::every], inner[::every])
     return flat, interior, noise
 
 
@@ -513,7 +507,7 @@ class _Measured:
 
 def _measure_lines(flat, interior, disk, noise, polylines, width_px, search_px, *,
                    masks=None, seg_len=None, template=True, min_z=6.0, min_fraction=0.5,
-                   screening=False):
+                   screening=False, rim_margin_px=5.0):
     """Measure deficit minima along starting loci and fit each line through them.
 
     Parameters
@@ -536,6 +530,8 @@ def _measure_lines(flat, interior, disk, noise, polylines, width_px, search_px, 
     screening : bool
         A quick look (samples 2 px apart along segments, fewer iterations)
         for sorting candidates; positions come from a later full pass.
+    rim_margin_px : float
+        Segments whose centre lies closer than this to the rim are left out.
     """
     from .lineprofile import fit_line_offsets, fit_profiles, sample_profiles, template_minima
 
@@ -547,7 +543,7 @@ def _measure_lines(flat, interior, disk, noise, polylines, width_px, search_px, 
     sigma_max = float(np.max(width_px))
     seg_len = seg_len or float(np.clip(4.0 * sigma_max, 12.0, 32.0))
     half = search_px + 4.0 * width_px + 2.0
-    points, normals, owner = _segments(polylines, disk, seg_len, 5.0)
+    points, normals, owner = _segments(polylines, disk, seg_len, rim_margin_px)
     if not len(owner):
         return empty
     others = None
@@ -686,7 +682,94 @@ def _line_polylines(lines, disk):
 # blind search
 # ---------------------------------------------------------------------------
 
-def _hough_candidates(flat, interior, disk, noise):
+def _blind_candidates(flat, interior, disk, noise):
+    """Lines of the flattened image found without a prediction, in full-resolution px.
+
+    The search runs on a block-averaged copy whose disk is about 128 to 256
+    px in radius (the full image for disks up to 256 px), where it costs the
+    same whatever the image size: Hough candidates at several scales
+    (:func:`_hough_candidates`), each screened by quick Gaussian fits on long
+    segments.  The factor follows the line width: when the lines found are
+    narrow for the blocks (Gaussian sigma under 0.8 block), the search is
+    repeated on a finer copy so that narrow weak lines are not averaged
+    away.  Positions are good to a fraction of a block; they are measured
+    again at full resolution.
+
+    Returns
+    -------
+    lines : list of DetectedLine
+    factor : int
+        The block size of the copy searched.
+    """
+    factor = 1
+    while disk.radius_px / (2 * factor) >= 128:
+        factor *= 2
+    while True:
+        lines = _screened_candidates(flat, interior, disk, noise, factor)
+        sigma = np.median([ln.width_px / _FWHM for ln in lines]) if lines else 0.0
+        if factor == 1 or (lines and sigma >= 0.8 * factor):
+            return lines, factor
+        factor = max(1, factor // 2 if not lines else
+                     min(factor // 2, 2 ** int(math.floor(math.log2(max(sigma / 0.8, 1.0))))))
+
+
+def _screened_candidates(flat, interior, disk, noise, factor):
+    """Hough candidates screened on the copy block-averaged by ``factor`` (full px out)."""
+    cx, cy = disk.center_px
+    if factor > 1:
+        small, inside = _block_mean(flat, factor), _block_all(interior, factor)
+        level_disk = Disk(((cx + 0.5) / factor - 0.5, (cy + 0.5) / factor - 0.5),
+                          disk.radius_px / factor)
+        level_noise = _pixel_noise(small, inside)
+    else:
+        small, inside, level_disk, level_noise = flat, interior, disk, noise
+    cand = _hough_candidates(small, inside, level_disk, level_noise, min_chord_px=20.0 / factor)
+    if not len(cand):
+        return []
+    # coarse screening: candidates alone, Gaussian positions, long segments
+    cand = cand[np.argsort(-cand[:, 3])]
+    first = _measure_lines(small, inside, level_disk, level_noise,
+                           _chords(cand[:, 0], cand[:, 1], level_disk), cand[:, 2],
+                           1.0 + cand[:, 2].max(), template=False, seg_len=16.0, min_z=8.0,
+                           screening=True, rim_margin_px=max(1.0, 5.0 / factor))
+    lines = _merge([ln for ln in first.lines if ln is not None], level_disk)
+    if factor == 1:
+        return lines
+    out = []
+    scale = np.diag([float(factor), 1.0, 1.0 / factor])
+    for ln in lines:
+        # a box of `factor` px adds factor^2 / 12 to a line's variance across it
+        sig_c = ln.width_px / _FWHM
+        sig = factor * math.sqrt(max(sig_c ** 2 - (1 - 1 / factor ** 2) / 12,
+                                     0.25 * sig_c ** 2))
+        out.append(_new_line(ln.offset_px * factor, math.radians(ln.normal_angle_deg),
+                             ln.curvature_per_px / factor, scale @ ln.covariance @ scale,
+                             ln.depth, sig * _FWHM, ln.snr, ln.n_pixels * factor ** 2, disk))
+    return out
+
+
+def _block_all(mask, factor):
+    """True for blocks of factor x factor pixels that are all True."""
+    if factor == 1:
+        return mask
+    r, c = mask.shape[0] // factor * factor, mask.shape[1] // factor * factor
+    return mask[:r, :c].reshape(r // factor, factor, c // factor, factor).all(axis=(1, 3))
+
+
+def _pixel_noise(flat, interior):
+    """Pixel noise from differences of pixels two columns apart: MAD / 0.6745 / sqrt(2).
+
+    Two columns apart is beyond the reach of a detector blur; lines are rare,
+    so the median ignores them.
+    """
+    diff = (flat[:, 2:] - flat[:, :-2])[interior[:, 2:] & interior[:, :-2]]
+    if not len(diff):
+        return 1e-3
+    noise = float(1.4826 * np.median(np.abs(diff - np.median(diff))) / math.sqrt(2))
+    return max(noise, 1e-3)  # noiseless (rendered) images: 0.1 % keeps thresholds sane
+
+
+def _hough_candidates(flat, interior, disk, noise, min_chord_px=20.0):
     """Line candidates (rho, angle, sigma_px) from a Hough transform at several scales.
 
     Lines from under 2 to 15 px wide: the flattened image is block-averaged
@@ -696,7 +779,8 @@ def _hough_candidates(flat, interior, disk, noise):
     (:func:`skimage.transform.hough_line`), normalised by the count expected
     from noise along each chord so that short chords near the rim compete
     fairly, and every local maximum above six sigmas is kept (no fixed cap:
-    the count grows with the pattern, not with the image size).
+    the count grows with the pattern, not with the image size).  Chords
+    shorter than ``min_chord_px`` (of ``flat``'s pixels) are not sought.
     """
     from scipy import ndimage
     from skimage.feature import peak_local_max
@@ -726,7 +810,7 @@ def _hough_candidates(flat, interior, disk, noise):
         chord = 2 * np.sqrt(np.clip((disk.radius_px / factor) ** 2 - rho_c ** 2, 0, None))
         expected = p * chord
         z = (acc - expected) / np.sqrt(expected + 1.0)
-        z[chord < 20 / factor] = 0
+        z[chord < min_chord_px / factor] = 0
         peaks = peak_local_max(z, min_distance=3, threshold_abs=6.0, exclude_border=False)
         if len(peaks):
             i, j = peaks[:, 0], peaks[:, 1]
@@ -811,8 +895,8 @@ def detect_lines(image, *, disk=None, saturation=None, min_angle_deg=5.0, source
 
     Notes
     -----
-    Candidates come from a Hough transform at several scales
-    (:func:`_hough_candidates`); each is measured by profiles across it on
+    Candidates come from Hough transforms of a pyramid, each screened at its
+    own scale (:func:`_blind_candidates`); each is measured by profiles across it on
     short segments (:mod:`laueline.images.lineprofile`): a Gaussian dip for
     a first position, then the line's own template for the position of the
     deficit minimum; a curved line is fitted through the segment minima.
@@ -823,16 +907,7 @@ def detect_lines(image, *, disk=None, saturation=None, min_angle_deg=5.0, source
     image, valid, disk, n_saturated = _prepare(image, disk, saturation, warnings)
     rows, cols = image.shape
     flat, interior, noise = _flatten(image, valid, disk, 1.0)
-    cand = _hough_candidates(flat, interior, disk, noise)
-    lines = []
-    if len(cand):
-        # coarse screening: candidates alone, Gaussian positions, long segments
-        order = np.argsort(-cand[:, 3])
-        cand = cand[order]
-        first = _measure_lines(flat, interior, disk, noise, _chords(cand[:, 0], cand[:, 1], disk),
-                               cand[:, 2], 1.0 + cand[:, 2].max(), template=False,
-                               seg_len=16.0, min_z=8.0, screening=True)
-        lines = _merge([ln for ln in first.lines if ln is not None], disk)
+    lines, factor = _blind_candidates(flat, interior, disk, noise)
     if lines:  # the background window from the widest line seen
         flat, interior, noise = _flatten(image, valid, disk,
                                          float(np.max([ln.width_px for ln in lines])) / _FWHM)
@@ -846,8 +921,10 @@ def detect_lines(image, *, disk=None, saturation=None, min_angle_deg=5.0, source
         masks = (np.array([ln.offset_px for ln in lines]),
                  np.radians([ln.normal_angle_deg for ln in lines]), 2.5 * sig + 1.5,
                  np.arange(len(lines)) if rounds == 0 else None)
+        # the first round starts from positions good to a fraction of a block
+        search = 1.5 + 0.5 * (factor - 1) if rounds == 0 else 1.5
         again = _measure_lines(flat, interior, disk, noise, _line_polylines(lines, disk), sig,
-                               1.5, masks=masks, min_z=8.0, min_fraction=0.25)
+                               search, masks=masks, min_z=8.0, min_fraction=0.25)
         lines = _merge([ln for ln in again.lines if ln is not None], disk)
     _flag_lines(lines, image, valid, disk, warnings)
     lines.sort(key=lambda ln: -ln.snr)
