@@ -507,7 +507,7 @@ class _Measured:
 
 def _measure_lines(flat, interior, disk, noise, polylines, width_px, search_px, *,
                    masks=None, seg_len=None, template=True, min_z=6.0, min_fraction=0.5,
-                   screening=False, rim_margin_px=5.0):
+                   screening=False, rim_margin_px=5.0, directions=None):
     """Measure deficit minima along starting loci and fit each line through them.
 
     Parameters
@@ -532,6 +532,11 @@ def _measure_lines(flat, interior, disk, noise, polylines, width_px, search_px, 
         for sorting candidates; positions come from a later full pass.
     rim_margin_px : float
         Segments whose centre lies closer than this to the rim are left out.
+    directions : ndarray (L, 2), optional
+        A physical direction across each line shared by all of them (the
+        predicted g direction in px): the template offsets of the lines are
+        then pooled, each taken along its own direction
+        (:func:`laueline.images.lineprofile.template_minima`).
     """
     from .lineprofile import fit_line_offsets, fit_profiles, sample_profiles, template_minima
 
@@ -558,9 +563,13 @@ def _measure_lines(flat, interior, disk, noise, polylines, width_px, search_px, 
                        iterations=8 if screening else 20)
     z_seg = np.where(fit.ok, fit.depth / np.maximum(fit.depth_sigma, 1e-12), 0.0)
     if template:
+        orientation = None
+        if directions is not None:
+            orientation = np.bincount(owner, np.sum(normals * directions[owner], axis=1),
+                                      minlength=n_lines)
         minimum, var, ok_t, _, template_var = template_minima(
             d, profile, count, owner, _with_ok(fit, z_seg > 2.0), noise, clean=~crowded,
-            refit=False)
+            refit=False, orientation=orientation)
     else:
         minimum, var, ok_t = fit.minimum, fit.minimum_var, fit.ok
         template_var = np.zeros(n_lines)
@@ -584,20 +593,32 @@ def _measure_lines(flat, interior, disk, noise, polylines, width_px, search_px, 
     s_g[owner, slot], off_g[owner, slot] = s, off
     var_g[owner, slot] = np.where(ok, var_n, 1.0)
     ok_g[owner, slot] = ok
+    # no segment may outweigh four typical ones of its line: a profile locked
+    # onto a crossing or a speck can claim a tiny variance and would otherwise
+    # pull the whole line (and widen the outlier gate) before it is rejected
+    typical = _row_median(var_g, ok_g)
+    var_g = np.maximum(var_g, 0.25 * typical[:, None])
     span = np.sqrt(np.maximum(disk.radius_px ** 2 - rho0 ** 2, 1.0))
-    for _ in range(2):  # once more without segments beyond four sigmas (crossings, dust)
-        # exact loci bend by hundredths of a pixel over a chord of a few hundred
-        # pixels; a prior sagitta of 2.5e-4 of the disk radius keeps a line
-        # measured on part of its chord from being bent at its ends
-        coef, cov, chi2, dof = fit_line_offsets(s_g, off_g, var_g, ok_g, span,
+    for k in range(3):
+        # first with no segment weighing more than a typical one of its line, so
+        # that none can drag the line (and with it the outlier gate) before the
+        # gate has seen it; then with
+        # each segment's own variance, twice without segments beyond four
+        # sigmas (crossings, dust).  Exact loci bend by hundredths of a pixel
+        # over a chord of a few hundred pixels; a prior sagitta of 2.5e-4 of
+        # the disk radius keeps a line measured on part of its chord from
+        # being bent at its ends
+        weights = var_g if k else np.maximum(var_g, typical[:, None])
+        coef, cov, chi2, dof = fit_line_offsets(s_g, off_g, weights, ok_g, span,
                                                 curvature_sagitta_px=2.5e-4 * disk.radius_px)
+        if k == 2:
+            break
         design = np.stack([np.ones_like(s_g), s_g, s_g * s_g], 2)
         resid = off_g - np.einsum("lki,li->lk", design, coef)
         # a robust scale (median absolute normalised residual) so that the
         # outliers themselves cannot widen the gate
-        norm = np.where(ok_g, np.abs(resid) / np.sqrt(var_g), np.nan)
-        with np.errstate(all="ignore"):
-            scale = np.nan_to_num(1.4826 * np.nanmedian(norm, axis=1), nan=1.0)
+        norm = np.abs(resid) / np.sqrt(var_g)
+        scale = np.where(ok_g.any(axis=1), 1.4826 * _row_median(norm, ok_g), 1.0)
         ok_g &= np.abs(resid) < 4.0 * np.sqrt(var_g) * np.maximum(scale, 1.0)[:, None]
     # the template's minimum is common to every segment of a line: its
     # variance adds to the line's offset, not to the segments' scatter
@@ -628,6 +649,13 @@ def _measure_lines(flat, interior, disk, noise, polylines, width_px, search_px, 
                              minima_px=q[sel_idx], minima_sigma_px=np.sqrt(var[sel_idx]),
                              minima_normal=normals[sel_idx])
     return _Measured(found, lines, z_line)
+
+
+def _row_median(values, use):
+    """Median of each row over its entries where ``use`` (0 for rows without any)."""
+    from .lineprofile import _masked_median
+
+    return _masked_median(values, use)
 
 
 def _with_ok(fit, ok):
@@ -993,8 +1021,12 @@ def detect_seeded(image, pattern, detector, *, disk=None, saturation=None, searc
     # not there (dynamically extinguished) must not hide a stronger one
     rank = np.argsort(np.argsort(-np.asarray(pattern.strength, float)))
     masks = (rho, ang, np.full(len(rho), 2.5 * sigma + 1.5), rank)
+    # the direction of g in px: a shared physical orientation across every line
+    directions = np.asarray(pattern.normal, float) @ np.asarray(detector.matrix).T
+    directions /= np.linalg.norm(directions, axis=1, keepdims=True)
     measured = _measure_lines(flat, interior, disk, noise, polylines, sigma, search_px,
-                              masks=masks, min_z=min_z, min_fraction=0.4)
+                              masks=masks, min_z=min_z, min_fraction=0.4,
+                              directions=directions)
     # once more from where the lines were found, with each line's own width and
     # only the lines actually seen left out of the others' profiles
     found = np.flatnonzero(measured.found)
@@ -1005,7 +1037,8 @@ def detect_seeded(image, pattern, detector, *, disk=None, saturation=None, searc
         masks = (np.array([ln.offset_px for ln in seen]),
                  np.radians([ln.normal_angle_deg for ln in seen]), 2.5 * sig + 1.5, rank)
         again = _measure_lines(flat, interior, disk, noise, _line_polylines(seen, disk), sig,
-                               1.5, masks=masks, min_z=min_z, min_fraction=0.25)
+                               1.5, masks=masks, min_z=min_z, min_fraction=0.25,
+                               directions=directions[found])
         for k, i in enumerate(found):
             measured.lines[i] = again.lines[k] if again.found[k] else measured.lines[i]
     lines, missing = [], []

@@ -436,8 +436,59 @@ def fit_line_offsets(s, offset, var, weight_ok, span, *, curvature_sagitta_px=0.
     return coef, cov, chi2, dof
 
 
+def pool_offsets(offset, var, width, usable):
+    """Each line's template offset shrunk toward the mean over lines, with its variance.
+
+    A weak line's own template is noisy and its minimum wanders by a good
+    fraction of a pixel; the offsets of all lines (in units of each line's
+    width, as the offset of a given profile shape scales with it) are
+    combined in a random-effects model: the between-line variance tau^2 by
+    the moment estimator of DerSimonian and Laird (Controlled Clinical Trials
+    7, 177, 1986), then each line's offset is the precision-weighted mean of
+    its own and of the pooled one (the best linear unbiased predictor), so a
+    strong line keeps its own and a weak one leans on the others.
+
+    Parameters
+    ----------
+    offset, var : ndarray (L,)
+        Template offsets (px) and their variances (px^2).
+    width : ndarray (L,)
+        Line widths (px) setting the scale of each offset.
+    usable : ndarray of bool (L,)
+        Lines whose templates enter the pool.
+
+    Returns
+    -------
+    offset, var : ndarray (L,)
+    """
+    ok = usable & np.isfinite(offset) & np.isfinite(var) & (var > 0) & (width > 0)
+    if ok.sum() < 3:
+        return offset, var
+    scale = np.where(width > 0, width, 1.0)
+    x, v = offset / scale, np.where(ok, var, 1.0) / scale ** 2
+    w = 1.0 / v[ok]
+    mean = float(np.sum(w * x[ok]) / np.sum(w))
+    q = float(np.sum(w * (x[ok] - mean) ** 2))
+    tau2 = max(0.0, (q - (ok.sum() - 1)) / (np.sum(w) - np.sum(w * w) / np.sum(w)))
+    mean_var = 1.0 / np.sum(w)
+    if tau2 > 0:
+        post_var = 1.0 / (1.0 / v + 1.0 / tau2)
+        post = post_var * (x / v + mean / tau2)
+        # the pooled mean is itself uncertain: its share of each line's estimate
+        post_var = post_var + (post_var / tau2) ** 2 * mean_var
+    else:  # the lines agree within their noise: the common offset for all
+        post, post_var = np.full_like(x, mean), np.full_like(x, mean_var)
+    new_offset = np.where(ok, post, offset / scale) * scale
+    new_var = np.where(ok, post_var * scale ** 2, var)
+    # a line that does not enter the pool (too few profiles) takes the pooled offset
+    lonely = ~ok
+    new_offset[lonely] = mean * scale[lonely]
+    new_var[lonely] = (mean_var + tau2) * scale[lonely] ** 2
+    return new_offset, new_var
+
+
 def template_minima(d, profile, count, line_of, fit, noise, *, clean=None, step=0.2,
-                    passes=2, refit=True):
+                    passes=2, refit=True, orientation=None):
     """Minimum positions from a profile template taken from each line itself.
 
     The Gauss-Hermite series cannot follow every dynamical profile; a biased
@@ -461,6 +512,12 @@ def template_minima(d, profile, count, line_of, fit, noise, *, clean=None, step=
     clean : ndarray of bool (M,), optional
         Profiles free of other lines; only they build the templates of
         lines that have at least three of them.
+    orientation : ndarray (L,), optional
+        Sign of each line's profile axis relative to a physical direction
+        shared by all lines (for predicted lines, the direction in which the
+        excitation error grows).  When given (and without ``refit``), the
+        template offsets are pooled over lines (:func:`pool_offsets`): a weak
+        line's own template is too noisy to place its minimum.
     refit : bool
         Fit every profile with its template.  Without, the positions are
         the Gaussian centres of ``fit`` plus the offset from a Gaussian
@@ -570,6 +627,12 @@ def template_minima(d, profile, count, line_of, fit, noise, *, clean=None, step=
         vertex_var = np.where(curv > 0, vertex_var, lim ** 2)
         if not refit:
             var = fit.minimum_var.copy()
+            if orientation is not None:  # profiles of one physical orientation
+                sign = np.where(np.asarray(orientation) < 0, -1.0, 1.0)
+                pooled, vertex_var = pool_offsets(
+                    sign * offset, vertex_var, line_width,
+                    np.bincount(line_of, ok & builds, minlength=n_lines) >= 3)
+                offset = sign * pooled
             break
         # refit every profile with its line's template: shift, depth, b0, b1
         slope_t = np.gradient(template, step, axis=1)
