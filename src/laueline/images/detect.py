@@ -218,7 +218,13 @@ def find_disk(image, valid=None):
     inner = np.abs(radii - radius) <= reach + 1e-9
     edges = _ray_edges(values[keep][:, inner], centre, fine[keep], radii[inner], half,
                        (rows, cols), None if all_valid else valid)
-    centre, radius, inliers = _robust_circle(edges, radius)
+    # the centre is good to a pixel now: gross outliers (lines crossing the rim,
+    # dust) are far from the median radius; the ellipse fit clips the rest
+    r = np.hypot(*(edges - centre).T)
+    inliers = np.abs(r - np.median(r)) < max(2.0, 0.008 * radius)
+    if inliers.sum() < 10:
+        raise InputError("no disk found: the bright region is not circular")
+    radius = float(np.median(r[inliers]))
     if radius < 10:
         raise InputError(f"no usable disk found (radius {radius:.1f} px)")
     return _ellipse_disk(edges[inliers], centre)
@@ -729,19 +735,22 @@ def _blind_candidates(flat, interior, disk, noise):
     factor : int
         The block size of the copy searched.
     """
-    factor = 1
+    factor, max_level = 1, 8
     while disk.radius_px / (2 * factor) >= 128:
         factor *= 2
     while True:
-        lines = _screened_candidates(flat, interior, disk, noise, factor)
+        lines = _screened_candidates(flat, interior, disk, noise, factor, max_level)
         sigma = np.median([ln.width_px / _FWHM for ln in lines]) if lines else 0.0
         if factor == 1 or (lines and sigma >= 0.8 * factor):
             return lines, factor
         factor = max(1, factor // 2 if not lines else
                      min(factor // 2, 2 ** int(math.floor(math.log2(max(sigma / 0.8, 1.0))))))
+        # the lines are narrow for the blocks: the finer search need not look
+        # for wide ones (Gaussian sigma beyond about two of its pixels)
+        max_level = 2
 
 
-def _screened_candidates(flat, interior, disk, noise, factor):
+def _screened_candidates(flat, interior, disk, noise, factor, max_level=8):
     """Hough candidates screened on the copy block-averaged by ``factor`` (full px out)."""
     cx, cy = disk.center_px
     if factor > 1:
@@ -751,7 +760,8 @@ def _screened_candidates(flat, interior, disk, noise, factor):
         level_noise = _pixel_noise(small, inside)
     else:
         small, inside, level_disk, level_noise = flat, interior, disk, noise
-    cand = _hough_candidates(small, inside, level_disk, level_noise, min_chord_px=20.0 / factor)
+    cand = _hough_candidates(small, inside, level_disk, level_noise, min_chord_px=20.0 / factor,
+                             max_level=max_level)
     if not len(cand):
         return []
     # coarse screening: candidates alone, Gaussian positions, long segments
@@ -797,7 +807,7 @@ def _pixel_noise(flat, interior):
     return max(noise, 1e-3)  # noiseless (rendered) images: 0.1 % keeps thresholds sane
 
 
-def _hough_candidates(flat, interior, disk, noise, min_chord_px=20.0):
+def _hough_candidates(flat, interior, disk, noise, min_chord_px=20.0, max_level=8):
     """Line candidates (rho, angle, sigma_px) from a Hough transform at several scales.
 
     Lines from under 2 to 15 px wide: the flattened image is block-averaged
@@ -808,7 +818,8 @@ def _hough_candidates(flat, interior, disk, noise, min_chord_px=20.0):
     from noise along each chord so that short chords near the rim compete
     fairly, and every local maximum above six sigmas is kept (no fixed cap:
     the count grows with the pattern, not with the image size).  Chords
-    shorter than ``min_chord_px`` (of ``flat``'s pixels) are not sought.
+    shorter than ``min_chord_px`` (of ``flat``'s pixels) are not sought, nor
+    levels beyond ``max_level``.
     """
     from scipy import ndimage
     from skimage.feature import peak_local_max
@@ -817,7 +828,7 @@ def _hough_candidates(flat, interior, disk, noise, min_chord_px=20.0):
     out = []
     factor = 1
     rows, cols = flat.shape
-    while disk.radius_px / factor >= 40 and factor <= 8:
+    while disk.radius_px / factor >= 40 and factor <= max_level:
         if factor == 1:
             f_small, i_small = flat, interior
         else:

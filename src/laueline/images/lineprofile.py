@@ -115,46 +115,63 @@ def sample_profiles(flat, valid, points, normals, half_width, segment, others=No
     rows, cols = flat.shape
     hw_m = np.broadcast_to(np.asarray(half_width, float), (m_count,))
     hw = float(np.max(hw_m)) if m_count else 1.0
-    patch = (2 * (int(math.ceil(math.hypot(hw, segment / 2.0))) + 1) + 1) ** 2
-    chunk = max(1, _MAX_SAMPLES // patch)
-    if m_count > chunk:  # memory bounded by a few million samples at a time
-        parts = []
-        for lo in range(0, m_count, chunk):  # chunks of segments, not single ones
-            sl = slice(lo, lo + chunk)
-            sub = None if others is None else tuple(a[sl] for a in others)
-            parts.append(_sample(flat, valid, points[sl], normals[sl], hw_m[sl], hw, segment,
-                                 sub, step))
-        return tuple(np.concatenate(k) for k in zip(*parts))
-    return _sample(flat, valid, points, normals, hw_m, hw, segment, others, step)
+    # each segment's pixels lie in a rotated rectangle; its bounding box is
+    # tight when segments of like orientation and width share one (four
+    # classes of the angle of the normal to the nearest image axis, widths in
+    # classes of a factor of two)
+    ax, ay = np.abs(normals[:, 0]), np.abs(normals[:, 1])
+    ex = hw_m * ax + 0.5 * segment * ay         # half extents of the rectangles, px
+    ey = hw_m * ay + 0.5 * segment * ax
+    kind = np.minimum((np.arctan2(ay, ax) / (np.pi / 8)).astype(int), 3) + \
+        4 * np.ceil(np.log2(np.maximum(hw_m, 1.0))).astype(int)
+    out = [np.empty((m_count, int(math.ceil(2 * hw / step)))) for _ in range(3)]
+    crowded = np.zeros(m_count, dtype=bool)
+    for k in np.unique(kind):
+        members = np.flatnonzero(kind == k)
+        if not len(members):
+            continue
+        box = (int(math.ceil(ex[members].max())) + 1, int(math.ceil(ey[members].max())) + 1)
+        chunk = max(1, _MAX_SAMPLES // ((2 * box[0] + 1) * (2 * box[1] + 1)))
+        for lo in range(0, len(members), chunk):  # memory bounded by a few million samples
+            sel = members[lo:lo + chunk]
+            sub = None if others is None else tuple(a[sel] for a in others)
+            parts = _sample(flat, valid, points[sel], normals[sel], hw_m[sel], hw, segment,
+                            sub, step, box)
+            for target, part in zip(out, parts[:3]):
+                target[sel] = part
+            crowded[sel] = parts[3]
+    return out[0], out[1], out[2], crowded
 
 
 _MAX_SAMPLES = 4_000_000
 
 
-def _sample(flat, valid, points, normals, hw_m, hw, segment, others, step):
-    """:func:`sample_profiles` for one chunk of segments (all sharing the bins of ``hw``)."""
+def _sample(flat, valid, points, normals, hw_m, hw, segment, others, step, box):
+    """:func:`sample_profiles` for one chunk of segments (all sharing the bins of ``hw``).
+
+    ``box`` (x, y): half size in px of the pixel patch around each segment centre.
+    """
     m_count = len(points)
     rows, cols = flat.shape
     n_bins = int(math.ceil(2 * hw / step))
     centres = -hw + step * (np.arange(n_bins) + 0.5)
-    reach_px = int(math.ceil(math.hypot(hw, segment / 2.0))) + 1
-    off = np.arange(-reach_px, reach_px + 1)
+    off_x, off_y = np.arange(-box[0], box[0] + 1), np.arange(-box[1], box[1] + 1)
     base = np.round(points).astype(np.intp)
     frac = points - base                                   # (M, 2) in [-0.5, 0.5]
     nx, ny = normals[:, 0, None, None], normals[:, 1, None, None]
     # pixel offsets from the segment centre: d across the line, v along it
-    ox, oy = off[None, None, :].astype(float), off[None, :, None].astype(float)
+    ox, oy = off_x[None, None, :].astype(float), off_y[None, :, None].astype(float)
     d0 = (frac[:, 0] * normals[:, 0] + frac[:, 1] * normals[:, 1])[:, None, None]
     v0 = (-frac[:, 0] * normals[:, 1] + frac[:, 1] * normals[:, 0])[:, None, None]
     d = ox * nx + oy * ny - d0
     v = oy * nx - ox * ny - v0
     use = (np.abs(v) <= segment / 2.0) & (np.abs(d) < hw_m[:, None, None])
     lin = (base[:, 1] * cols + base[:, 0])[:, None, None] + \
-        (off[:, None] * cols + off[None, :])[None]
-    lo, hi = base.min(axis=0) - reach_px, base.max(axis=0) + reach_px
+        (off_y[:, None] * cols + off_x[None, :])[None]
+    lo, hi = base.min(axis=0) - np.array(box), base.max(axis=0) + np.array(box)
     if lo[0] < 0 or lo[1] < 0 or hi[0] >= cols or hi[1] >= rows:  # patches at the frame's edge
-        ix = base[:, 0, None, None] + off[None, None, :]
-        iy = base[:, 1, None, None] + off[None, :, None]
+        ix = base[:, 0, None, None] + off_x[None, None, :]
+        iy = base[:, 1, None, None] + off_y[None, :, None]
         use &= (ix >= 0) & (ix < cols) & (iy >= 0) & (iy < rows)
         lin = np.where(use, lin, 0)
     use &= valid.ravel()[lin]
@@ -291,7 +308,8 @@ def fit_profiles(d, profile, count, start_x0, start_width, noise, *, max_width=N
     cov = np.full((m_count, len(free), len(free)), np.nan)
     good_mat = ok & np.all(np.isfinite(a_mat), axis=(1, 2))
     if good_mat.any():
-        sign, _ = np.linalg.slogdet(a_mat[good_mat])
+        with np.errstate(divide="ignore", invalid="ignore"):  # singular: sign 0, left out
+            sign, _ = np.linalg.slogdet(a_mat[good_mat])
         idx = np.flatnonzero(good_mat)[sign > 0]
         cov[idx] = np.linalg.inv(a_mat[idx]) * s2[idx, None, None]
         ok &= np.isin(np.arange(m_count), idx)
