@@ -235,6 +235,12 @@ def _block_mean(a, factor):
     if factor == 1:
         return a
     r, c = a.shape[0] // factor * factor, a.shape[1] // factor * factor
+    if factor <= 4:  # a few strided sums beat a reduction over a reshaped array
+        total = np.zeros((r // factor, c // factor))
+        for i in range(factor):
+            for j in range(factor):
+                total += a[i:r:factor, j:c:factor]
+        return total / factor ** 2
     return a[:r, :c].reshape(r // factor, factor, c // factor, factor).mean(axis=(1, 3))
 
 
@@ -513,7 +519,7 @@ class _Measured:
 
 def _measure_lines(flat, interior, disk, noise, polylines, width_px, search_px, *,
                    masks=None, seg_len=None, template=True, min_z=6.0, min_fraction=0.5,
-                   screening=False, rim_margin_px=5.0, directions=None):
+                   screening=False, rim_margin_px=5.0, directions=None, iterations=None):
     """Measure deficit minima along starting loci and fit each line through them.
 
     Parameters
@@ -538,6 +544,9 @@ def _measure_lines(flat, interior, disk, noise, polylines, width_px, search_px, 
         for sorting candidates; positions come from a later full pass.
     rim_margin_px : float
         Segments whose centre lies closer than this to the rim are left out.
+    iterations : int, optional
+        Most Levenberg-Marquardt steps of the profile fits (by default 8 when
+        screening, else 20).
     directions : ndarray (L, 2), optional
         A physical direction across each line shared by all of them (the
         predicted g direction in px): the template offsets of the lines are
@@ -566,7 +575,7 @@ def _measure_lines(flat, interior, disk, noise, polylines, width_px, search_px, 
                                         seg_len, others, step=1.0 if screening else 0.5)
     fit = fit_profiles(d, profile, count, 0.0, width_px[owner], noise, search=search_px,
                        max_width=max(3.0 * sigma_max, 4.0), shape_terms=False,
-                       iterations=8 if screening else 20)
+                       iterations=iterations or (8 if screening else 20))
     z_seg = np.where(fit.ok, fit.depth / np.maximum(fit.depth_sigma, 1e-12), 0.0)
     if template:
         orientation = None
@@ -1035,9 +1044,11 @@ def detect_seeded(image, pattern, detector, *, disk=None, saturation=None, searc
     # the direction of g in px: a shared physical orientation across every line
     directions = np.asarray(pattern.normal, float) @ np.asarray(detector.matrix).T
     directions /= np.linalg.norm(directions, axis=1, keepdims=True)
+    # this pass finds the lines and starts the next one: its fits need not
+    # settle to the last thousandth of a pixel
     measured = _measure_lines(flat, interior, disk, noise, polylines, sigma, search_px,
                               masks=masks, min_z=min_z, min_fraction=0.4,
-                              directions=directions)
+                              directions=directions, iterations=10)
     # once more from where the lines were found, with each line's own width and
     # only the lines actually seen left out of the others' profiles
     found = np.flatnonzero(measured.found)

@@ -343,6 +343,7 @@ def _levenberg_marquardt(p, d, profile, w, free, max_width, iterations):
     def cost_and_parts(p, d, profile, w):
         f, jac = _model(p, d, free)
         r = (f - profile) * w
+        jac *= w[..., None]                         # weighted Jacobian
         prior = p[:, free] * prior_w
         return np.sum(r * r, axis=1) + np.sum(prior * prior, axis=1), r, jac
 
@@ -354,10 +355,9 @@ def _levenberg_marquardt(p, d, profile, w, free, max_width, iterations):
         if not len(active):
             break
         pa, da, wa = p[active], d[active], w[active]
-        jw = jac * wa[..., None]
-        a_mat = np.matmul(jw.transpose(0, 2, 1), jw) + np.diag(prior_diag)[None]
-        grad = np.matmul(jw.transpose(0, 2, 1), r[..., None])[..., 0] + \
-            prior_diag[None] * pa[:, free]
+        jt = jac.transpose(0, 2, 1)
+        a_mat = np.matmul(jt, jac) + np.diag(prior_diag)[None]
+        grad = np.matmul(jt, r[..., None])[..., 0] + prior_diag[None] * pa[:, free]
         diag = np.einsum("mii->mi", a_mat)
         damped = a_mat + (lam[active][:, None] * np.maximum(diag, 1e-12))[:, :, None] * eye
         try:
@@ -380,8 +380,8 @@ def _levenberg_marquardt(p, d, profile, w, free, max_width, iterations):
         # move (well below a thousandth of a pixel), or the damping has run away
         settled = (np.abs(step[:, 0]) < 2e-4) & (np.abs(step[:, 2]) < 1e-3 * pa[:, 2])
         done = (better & ((old - new_cost <= 1e-7 * old) | settled)) | (lam[active] > 1e3)
-        r = np.where(better[:, None], new_r, r)[~done]
-        jac = np.where(better[:, None, None], new_jac, jac)[~done]
+        r[better], jac[better] = new_r[better], new_jac[better]
+        r, jac = r[~done], jac[~done]
         active = active[~done]
     return p
 
