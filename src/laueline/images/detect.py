@@ -2,13 +2,15 @@
 
 Steps:
 
-1. The disk: the largest bright region (Otsu threshold of the smoothed
-   image), then sub-pixel edge points on rays from its provisional centre,
-   a RANSAC circle fit (:class:`skimage.measure.CircleModel`) to reject
-   stray points, and a linear least-squares ellipse (radius with cos 2phi
-   and sin 2phi terms) that measures the projector's elliptical distortion
-   with its uncertainty.  Edge points at the image border or on saturated
-   pixels are left out, so a disk partly outside the frame is still found.
+1. The disk: the largest bright region (Otsu threshold of a smoothed,
+   block-averaged copy of about 256 px) and a first RANSAC circle
+   (:class:`skimage.measure.CircleModel`) through edge points on rays from
+   its centroid; then sub-pixel edge points at full resolution on rays
+   smoothed in their polar frame, outliers gated by that circle, and a
+   linear least-squares ellipse (radius with cos 2phi and sin 2phi terms)
+   that measures the projector's elliptical distortion with its
+   uncertainty.  Edge points at the image border or on saturated pixels are
+   left out, so a disk partly outside the frame is still found.
 2. The background: a grey closing wide enough to span the widest line with
    its fringes removes the lines, a Gaussian smooths what remains (both on
    a block-averaged copy when the window is large); the disk is divided by
@@ -19,7 +21,10 @@ Steps:
    noise sigmas, at block averages 1, 2, 4 (8) so that lines from under 2
    to 15 px wide are seen at some scale, normalised by the count expected
    from noise along each chord; every maximum above six sigmas is kept.
-   With a prediction (:func:`detect_seeded`) the candidates are the exact
+   On a large disk this search, and the screening of its candidates, run
+   on a copy block-averaged to a disk of 128 to 256 px radius (finer when
+   the lines are narrow for its blocks); the lines are then measured at
+   full resolution in bands around them.  With a prediction (:func:`detect_seeded`) the candidates are the exact
    predicted loci mapped by a :class:`~laueline.detector.Detector`,
    elliptical distortion included.
 4. Measurement: on short segments along each line the pixels are binned by
@@ -27,11 +32,14 @@ Steps:
    Gaussian dip fitted to every profile at once gives a first position,
    and the line's own template (its profiles aligned and averaged) gives
    the offset from that centre to the deficit minimum, so asymmetric and
-   fringed profiles are located at their minimum.  A gently curved line
+   fringed profiles are located at their minimum (with a prediction, these
+   offsets are pooled over the lines, each along its g direction, so that
+   weak lines lean on strong ones).  A gently curved line
    d = n.(p - c) - rho - kappa s^2 (s along the line from the foot of the
    normal from the disk centre c) is fitted through the segment minima,
-   with outlying segments dropped; pixels near other lines are left out of
-   each profile.
+   first with no segment weighing more than a typical one, then with
+   outlying segments dropped; pixels near other lines are left out of each
+   profile.
 5. Checks: candidates seen on too few of their segments or too weak are
    dropped, duplicates merged, lines that continue outside the disk
    (deficit lines cannot) or whose width is far from the others' flagged
