@@ -527,7 +527,8 @@ class _Measured:
 
 def _measure_lines(flat, interior, disk, noise, polylines, width_px, search_px, *,
                    masks=None, seg_len=None, template=True, min_z=6.0, min_fraction=0.5,
-                   screening=False, rim_margin_px=5.0, directions=None, iterations=None):
+                   screening=False, rim_margin_px=5.0, directions=None, iterations=None,
+                   step=None):
     """Measure deficit minima along starting loci and fit each line through them.
 
     Parameters
@@ -555,6 +556,9 @@ def _measure_lines(flat, interior, disk, noise, polylines, width_px, search_px, 
     iterations : int, optional
         Most Levenberg-Marquardt steps of the profile fits (by default 8 when
         screening, else 20).
+    step : float, optional
+        Bin width of the profiles across the line (px; by default 1 when
+        screening, else 0.5).
     directions : ndarray (L, 2), optional
         A physical direction across each line shared by all of them (the
         predicted g direction in px): the template offsets of the lines are
@@ -580,7 +584,7 @@ def _measure_lines(flat, interior, disk, noise, polylines, width_px, search_px, 
         others = _other_line_masks(points, normals, owner, rho_m, ang_m, keep_m, disk,
                                    masks[3] if len(masks) > 3 else None)
     d, profile, count, crowded = sample_profiles(flat, interior, points, normals, half[owner],
-                                        seg_len, others, step=1.0 if screening else 0.5)
+                                        seg_len, others, step=step or (1.0 if screening else 0.5))
     fit = fit_profiles(d, profile, count, 0.0, width_px[owner], noise, search=search_px,
                        max_width=max(3.0 * sigma_max, 4.0), shape_terms=False,
                        iterations=iterations or (8 if screening else 20))
@@ -1052,11 +1056,11 @@ def detect_seeded(image, pattern, detector, *, disk=None, saturation=None, searc
     # the direction of g in px: a shared physical orientation across every line
     directions = np.asarray(pattern.normal, float) @ np.asarray(detector.matrix).T
     directions /= np.linalg.norm(directions, axis=1, keepdims=True)
-    # this pass finds the lines and starts the next one: its fits need not
-    # settle to the last thousandth of a pixel
+    # this pass finds the lines and starts the next one: its profiles need
+    # neither fine bins nor fits settled to the last thousandth of a pixel
     measured = _measure_lines(flat, interior, disk, noise, polylines, sigma, search_px,
                               masks=masks, min_z=min_z, min_fraction=0.4,
-                              directions=directions, iterations=10)
+                              directions=directions, iterations=10, step=1.0)
     # once more from where the lines were found, with each line's own width and
     # only the lines actually seen left out of the others' profiles
     found = np.flatnonzero(measured.found)
