@@ -3,7 +3,7 @@
 Steps:
 
 1. The disk: the largest bright region (Otsu threshold of a smoothed,
-   block-averaged copy of about 128 px) and a first RANSAC circle
+   block-averaged copy of about 256 px) and a first RANSAC circle
    (:class:`skimage.measure.CircleModel`) through edge points on rays from
    its centroid; then sub-pixel edge points at full resolution on rays
    smoothed in their polar frame, outliers gated by that circle, and a
@@ -167,7 +167,7 @@ def find_disk(image, valid=None):
     Notes
     -----
     The bright region and a first circle come from a block-averaged copy
-    (about 128 px across), so that the cost does not grow with the square
+    (about 256 px across), so that the cost does not grow with the square
     of the image size; the edge itself is then located at full resolution
     on rays cast from that centre, the image sampled along each ray and
     smoothed by a Gaussian of 2 px in the polar frame of the rays.
@@ -177,7 +177,7 @@ def find_disk(image, valid=None):
 
     image = np.asarray(image, dtype=float)
     rows, cols = image.shape
-    factor = max(1, min(rows, cols) // 128)
+    factor = max(1, min(rows, cols) // 256)
     small = _block_mean(image, factor)
     smooth = ndimage.gaussian_filter(small, max(2.0 / factor, 1.0))
     try:
@@ -203,7 +203,7 @@ def find_disk(image, valid=None):
     small_valid = None if all_valid else _block_mean(valid.astype(float), factor) > 0.999
     # first circle: on the block-averaged copy, rays from the region's centroid
     angles = np.linspace(0, 2 * np.pi, 360, endpoint=False)
-    radii = np.linspace(0.6 * radius, 1.4 * radius, int(0.8 * radius / factor) + 2)
+    radii = np.linspace(0.6 * radius, 1.4 * radius, int(1.6 * radius / factor) + 2)
     px = centre[0] + np.outer(np.cos(angles), radii)
     py = centre[1] + np.outer(np.sin(angles), radii)
     values = ndimage.map_coordinates(smooth, _to_block(py, px, factor), order=1, mode="nearest")
