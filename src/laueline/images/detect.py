@@ -1056,11 +1056,12 @@ def detect_seeded(image, pattern, detector, *, disk=None, saturation=None, searc
     # the direction of g in px: a shared physical orientation across every line
     directions = np.asarray(pattern.normal, float) @ np.asarray(detector.matrix).T
     directions /= np.linalg.norm(directions, axis=1, keepdims=True)
-    # this pass finds the lines and starts the next one: its profiles need
-    # neither fine bins nor fits settled to the last thousandth of a pixel
+    # this pass finds the lines and starts the next one: its fits need not
+    # settle to the last thousandth of a pixel (its fine bins keep the
+    # faintest lines: 1 px bins lose some of 3 % contrast at 3000 counts)
     measured = _measure_lines(flat, interior, disk, noise, polylines, sigma, search_px,
                               masks=masks, min_z=min_z, min_fraction=0.4,
-                              directions=directions, iterations=10, step=1.0)
+                              directions=directions, iterations=10)
     # once more from where the lines were found, with each line's own width and
     # only the lines actually seen left out of the others' profiles
     found = np.flatnonzero(measured.found)
