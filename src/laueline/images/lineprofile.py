@@ -128,8 +128,6 @@ def sample_profiles(flat, valid, points, normals, half_width, segment, others=No
     crowded = np.zeros(m_count, dtype=bool)
     for k in np.unique(kind):
         members = np.flatnonzero(kind == k)
-        if not len(members):
-            continue
         box = (int(math.ceil(ex[members].max())) + 1, int(math.ceil(ey[members].max())) + 1)
         chunk = max(1, _MAX_SAMPLES // ((2 * box[0] + 1) * (2 * box[1] + 1)))
         for lo in range(0, len(members), chunk):  # memory bounded by a few million samples
