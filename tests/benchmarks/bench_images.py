@@ -13,10 +13,14 @@
    (tests/physical_render.py), median of 11; blind detection of the same
    image for comparison.
 4. Blind detection on a 2048 x 2048 pattern whose lines are about 9 px wide,
-   median of 3, with the number of lines kept against the number drawn.
+   median of 3, with the number of lines kept against the number drawn and
+   the peak memory of one more run (tracemalloc: numpy's allocations are
+   traced) beside the process's peak resident size.
 Items 3 and 4 are measured against reading the image from a TIFF file plus
-one Gaussian filter (sigma 2 px) over it, in the same run.  Run with
-OMP_NUM_THREADS=1 for one core.
+one Gaussian filter (sigma 2 px) over it, in the same run.  Run on one core:
+
+    OMP_NUM_THREADS=1 OPENBLAS_NUM_THREADS=1 MKL_NUM_THREADS=1 \
+        python tests/benchmarks/bench_images.py
 """
 
 
@@ -30,8 +34,10 @@ from laueline.refine import refine, refine_image
 from timing import median_time  # noqa: E402
 
 import os
+import resource
 import sys
 import tempfile
+import tracemalloc
 sys.path.insert(0, os.path.join(os.path.dirname(__file__), ".."))
 from physical_render import PhysicalSettings, render_physical  # noqa: E402
 
@@ -125,13 +131,19 @@ def seeded_and_large(si):
         write_image(path, big)
         t_base = median_time(lambda: _read_and_filter(path), 3)
     t_big = median_time(lambda: detect_lines(big), 3)
+    tracemalloc.start()
     det = detect_lines(big)
+    peak = tracemalloc.get_traced_memory()[1]
+    tracemalloc.stop()
+    rss = resource.getrusage(resource.RUSAGE_SELF).ru_maxrss / 1024  # kB on Linux
     width = float(np.median([ln.width_px for ln in det.lines])) if det.lines else float("nan")
     print("4. blind detection, 2048 x 2048")
     print(f"   read + Gaussian (median of 3):   {t_base * 1e3:7.1f} ms")
     print(f"   detect_lines (median of 3):      {t_big * 1e3:7.1f} ms   ratio "
           f"{t_big / t_base:.1f}x   ({len(det.good_lines)} lines kept of "
           f"{len(big_truth['lines'])} drawn, median width {width:.1f} px)")
+    print(f"   peak memory of one detection:    {peak / 2 ** 20:7.0f} MiB traced "
+          f"(the 32 MiB image itself not counted); process peak resident {rss:.0f} MiB")
 
 
 if __name__ == "__main__":

@@ -2,13 +2,15 @@
 
 Steps:
 
-1. The disk: the largest bright region (Otsu threshold of the smoothed
-   image), then sub-pixel edge points on rays from its provisional centre,
-   a RANSAC circle fit (:class:`skimage.measure.CircleModel`) to reject
-   stray points, and a linear least-squares ellipse (radius with cos 2phi
-   and sin 2phi terms) that measures the projector's elliptical distortion
-   with its uncertainty.  Edge points at the image border or on saturated
-   pixels are left out, so a disk partly outside the frame is still found.
+1. The disk: the largest bright region (Otsu threshold of a smoothed,
+   block-averaged copy of about 256 px) and a first RANSAC circle
+   (:class:`skimage.measure.CircleModel`) through edge points on rays from
+   its centroid; then sub-pixel edge points at full resolution on rays
+   smoothed in their polar frame, outliers gated by that circle, and a
+   linear least-squares ellipse (radius with cos 2phi and sin 2phi terms)
+   that measures the projector's elliptical distortion with its
+   uncertainty.  Edge points at the image border or on saturated pixels are
+   left out, so a disk partly outside the frame is still found.
 2. The background: a grey closing wide enough to span the widest line with
    its fringes removes the lines, a Gaussian smooths what remains (both on
    a block-averaged copy when the window is large); the disk is divided by
@@ -19,7 +21,10 @@ Steps:
    noise sigmas, at block averages 1, 2, 4 (8) so that lines from under 2
    to 15 px wide are seen at some scale, normalised by the count expected
    from noise along each chord; every maximum above six sigmas is kept.
-   With a prediction (:func:`detect_seeded`) the candidates are the exact
+   On a large disk this search, and the screening of its candidates, run
+   on a copy block-averaged to a disk of 128 to 256 px radius (finer when
+   the lines are narrow for its blocks); the lines are then measured at
+   full resolution in bands around them.  With a prediction (:func:`detect_seeded`) the candidates are the exact
    predicted loci mapped by a :class:`~laueline.detector.Detector`,
    elliptical distortion included.
 4. Measurement: on short segments along each line the pixels are binned by
@@ -27,11 +32,14 @@ Steps:
    Gaussian dip fitted to every profile at once gives a first position,
    and the line's own template (its profiles aligned and averaged) gives
    the offset from that centre to the deficit minimum, so asymmetric and
-   fringed profiles are located at their minimum.  A gently curved line
+   fringed profiles are located at their minimum (with a prediction, these
+   offsets are pooled over the lines, each along its g direction, so that
+   weak lines lean on strong ones).  A gently curved line
    d = n.(p - c) - rho - kappa s^2 (s along the line from the foot of the
    normal from the disk centre c) is fitted through the segment minima,
-   with outlying segments dropped; pixels near other lines are left out of
-   each profile.
+   first with no segment weighing more than a typical one, then with
+   outlying segments dropped; pixels near other lines are left out of each
+   profile.
 5. Checks: candidates seen on too few of their segments or too weak are
    dropped, duplicates merged, lines that continue outside the disk
    (deficit lines cannot) or whose width is far from the others' flagged
@@ -155,13 +163,23 @@ def find_disk(image, valid=None):
     image : ndarray (rows, cols)
     valid : ndarray of bool, optional
         Pixels that may be used (False for saturated ones).
+
+    Notes
+    -----
+    The bright region and a first circle come from a block-averaged copy
+    (about 256 px across), so that the cost does not grow with the square
+    of the image size; the edge itself is then located at full resolution
+    on rays cast from that centre, the image sampled along each ray and
+    smoothed by a Gaussian of 2 px in the polar frame of the rays.
     """
     from scipy import ndimage
     from skimage.filters import threshold_otsu
-    from skimage.measure import CircleModel, ransac
 
+    image = np.asarray(image, dtype=float)
     rows, cols = image.shape
-    smooth = ndimage.gaussian_filter(image, 2.0)
+    factor = max(1, min(rows, cols) // 256)
+    small = _block_mean(image, factor)
+    smooth = ndimage.gaussian_filter(small, max(2.0 / factor, 1.0))
     try:
         level = threshold_otsu(smooth)
     except ValueError:
@@ -172,51 +190,113 @@ def find_disk(image, valid=None):
         raise InputError("no bright disk found in the image")
     sizes = ndimage.sum(mask, labels, index=np.arange(1, count + 1))
     region = ndimage.binary_fill_holes(labels == (1 + int(np.argmax(sizes))))
-    if region.sum() < 300:
-        raise InputError("no disk found: the brightest region is only "
-                         f"{int(region.sum())} pixels")
+    area = float(region.sum()) * factor ** 2
+    if area < 300:
+        raise InputError(f"no disk found: the brightest region is only {int(area)} pixels")
     yy, xx = np.nonzero(region)
-    centre = np.array([xx.mean(), yy.mean()])
-    radius = math.sqrt(region.sum() / math.pi)
+    centre = (np.array([xx.mean(), yy.mean()]) + 0.5) * factor - 0.5
+    radius = math.sqrt(area / math.pi)
     inside_level = np.median(smooth[region])
     outside_level = np.median(smooth[~region]) if np.any(~region) else 0.0
     half = 0.5 * (inside_level + outside_level)
-    angles = np.linspace(0, 2 * np.pi, 720, endpoint=False)
-    for attempt in range(2):  # the first circle fit moves the centre; cast the rays again
-        if attempt == 0:
-            radii = np.linspace(0.6 * radius, 1.4 * radius, int(1.6 * radius))
-        else:  # close to the edge now: a narrow, finely sampled window
-            reach = max(10.0, 0.012 * radius)
-            radii = np.linspace(radius - reach, radius + reach, int(4 * reach) + 1)
-        px = centre[0] + np.outer(np.cos(angles), radii)
-        py = centre[1] + np.outer(np.sin(angles), radii)
-        inside_frame = (px >= 1) & (px <= cols - 2) & (py >= 1) & (py <= rows - 2)
-        values = ndimage.map_coordinates(smooth, [py, px], order=1, mode="nearest")
-        ok_valid = np.ones_like(values, dtype=bool) if valid is None else \
-            ndimage.map_coordinates(valid.astype(float), [py, px], order=0) > 0.5
-        # the outermost downward crossing of the half level on each ray
-        down = (values[:, :-1] >= half) & (values[:, 1:] < half)
-        last = down.shape[1] - 1 - np.argmax(down[:, ::-1], axis=1)
-        k = np.arange(len(angles))
-        usable = (down.any(axis=1) & inside_frame[k, last] & inside_frame[k, last + 1]
-                  & ok_valid[k, last] & ok_valid[k, last + 1])
-        k, j = k[usable], last[usable]
-        if len(k) < 20:
-            raise InputError("no disk found: too little of a disk edge is visible")
-        f = (values[k, j] - half) / (values[k, j] - values[k, j + 1])
-        rr = radii[j] + f * (radii[j + 1] - radii[j])
-        edges = centre + rr[:, None] * np.stack([np.cos(angles[k]), np.sin(angles[k])], 1)
-        # the threshold admits an elliptical projector distortion of ~0.5 %
-        model, inliers = ransac(edges, CircleModel, min_samples=3,
-                                residual_threshold=max(1.5, 0.006 * radius),
-                                max_trials=200, rng=0)
-        if model is None or inliers is None or inliers.sum() < 10:
-            raise InputError("no disk found: the bright region is not circular")
-        xc, yc, radius = _circle(model)
-        centre = np.array([xc, yc])
+    all_valid = valid is None or bool(np.all(valid))
+    small_valid = None if all_valid else _block_mean(valid.astype(float), factor) > 0.999
+    # first circle: on the block-averaged copy, rays from the region's centroid
+    angles = np.linspace(0, 2 * np.pi, 360, endpoint=False)
+    radii = np.linspace(0.6 * radius, 1.4 * radius, int(1.6 * radius / factor) + 2)
+    px = centre[0] + np.outer(np.cos(angles), radii)
+    py = centre[1] + np.outer(np.sin(angles), radii)
+    values = ndimage.map_coordinates(smooth, _to_block(py, px, factor), order=1, mode="nearest")
+    edges = _ray_edges(values, centre, angles, radii, half, (rows, cols), small_valid, factor)
+    centre, radius, _ = _robust_circle(edges, radius)
+    # the edge at full resolution: rays close to it, Gaussian-smoothed in the polar frame
+    reach = max(10.0, 0.012 * radius)
+    sigma, step = 2.0, 0.5
+    pad = 3 * sigma
+    radii = np.arange(radius - reach - pad, radius + reach + pad + step / 2, step)
+    n_fine = 720 * max(1, int(math.ceil(2 * np.pi * radius / sigma / 720)))  # rays <= 2 px apart
+    fine = np.linspace(0, 2 * np.pi, n_fine, endpoint=False)
+    px = centre[0] + np.outer(np.cos(fine), radii)
+    py = centre[1] + np.outer(np.sin(fine), radii)
+    values = ndimage.map_coordinates(image, [py, px], order=1, mode="nearest")
+    values = ndimage.gaussian_filter1d(values, sigma / step, axis=1, mode="nearest")
+    values = ndimage.gaussian_filter1d(values, sigma * n_fine / (2 * np.pi * radius), axis=0,
+                                       mode="wrap")
+    keep = slice(None, None, n_fine // 720)
+    inner = np.abs(radii - radius) <= reach + 1e-9
+    edges = _ray_edges(values[keep][:, inner], centre, fine[keep], radii[inner], half,
+                       (rows, cols), None if all_valid else valid)
+    # the centre is good to a pixel now: gross outliers (lines crossing the rim,
+    # dust) are far from the median radius; the ellipse fit clips the rest
+    r = np.hypot(*(edges - centre).T)
+    inliers = np.abs(r - np.median(r)) < max(2.0, 0.008 * radius)
+    if inliers.sum() < 10:
+        raise InputError("no disk found: the bright region is not circular")
+    radius = float(np.median(r[inliers]))
     if radius < 10:
         raise InputError(f"no usable disk found (radius {radius:.1f} px)")
     return _ellipse_disk(edges[inliers], centre)
+
+
+def _block_mean(a, factor):
+    """Means of factor x factor blocks (trailing rows and columns that fill no block dropped)."""
+    if factor == 1:
+        return a
+    r, c = a.shape[0] // factor * factor, a.shape[1] // factor * factor
+    if factor <= 4:  # a few strided sums beat a reduction over a reshaped array
+        total = np.zeros((r // factor, c // factor))
+        for i in range(factor):
+            for j in range(factor):
+                total += a[i:r:factor, j:c:factor]
+        return total / factor ** 2
+    return a[:r, :c].reshape(r // factor, factor, c // factor, factor).mean(axis=(1, 3))
+
+
+def _ray_edges(values, centre, angles, radii, half, shape, valid=None, factor=1):
+    """Outermost downward crossing of the level ``half`` on rays from ``centre``.
+
+    ``values`` (rays, radii) are the image sampled on the rays.  Edge points
+    outside the frame (``shape``, full px) or on pixels not ``valid`` (an
+    array block-averaged by ``factor``) are left out.
+    """
+    from scipy import ndimage
+
+    rows, cols = shape
+    px = centre[0] + np.outer(np.cos(angles), radii)
+    py = centre[1] + np.outer(np.sin(angles), radii)
+    inside_frame = (px >= 1) & (px <= cols - 2) & (py >= 1) & (py <= rows - 2)
+    if valid is not None:
+        inside_frame &= ndimage.map_coordinates(
+            valid.astype(float), _to_block(py, px, factor), order=0, mode="nearest") > 0.5
+    down = (values[:, :-1] >= half) & (values[:, 1:] < half)
+    last = down.shape[1] - 1 - np.argmax(down[:, ::-1], axis=1)
+    k = np.arange(len(angles))
+    usable = down.any(axis=1) & inside_frame[k, last] & inside_frame[k, last + 1]
+    k, j = k[usable], last[usable]
+    if len(k) < 20:
+        raise InputError("no disk found: too little of a disk edge is visible")
+    f = (values[k, j] - half) / (values[k, j] - values[k, j + 1])
+    rr = radii[j] + f * (radii[j + 1] - radii[j])
+    return centre + rr[:, None] * np.stack([np.cos(angles[k]), np.sin(angles[k])], 1)
+
+
+def _to_block(py, px, factor):
+    """Full-resolution pixel coordinates -> those of a copy block-averaged by ``factor``."""
+    return [(py + 0.5) / factor - 0.5, (px + 0.5) / factor - 0.5]
+
+
+def _robust_circle(edges, radius):
+    """RANSAC circle (:class:`skimage.measure.CircleModel`) through edge points."""
+    from skimage.measure import CircleModel, ransac
+
+    # the threshold admits an elliptical projector distortion of ~0.5 %
+    model, inliers = ransac(edges, CircleModel, min_samples=3,
+                            residual_threshold=max(1.5, 0.006 * radius),
+                            max_trials=200, stop_probability=0.9999, rng=0)
+    if model is None or inliers is None or inliers.sum() < 10:
+        raise InputError("no disk found: the bright region is not circular")
+    xc, yc, r = _circle(model)
+    return np.array([xc, yc]), r, inliers
 
 
 def _ellipse_disk(edges, centre, passes=3):
@@ -291,38 +371,45 @@ def _flatten(image, valid, disk, line_sigma_px=1.0):
 
     The background is a grey closing (which removes dark lines narrower than
     its window) followed by a Gaussian, computed on a block-averaged copy of
-    the image when the window is large: it follows the smooth disk
-    intensity and bands broader than the window without following the
-    lines, and a smooth divisor moves no line.  The window grows with the
-    disk and with the widest line expected (``line_sigma_px``).
+    the image when the window is large and brought back to full resolution
+    by separable linear interpolation: it follows the smooth disk intensity
+    and bands broader than the window without following the lines, and a
+    smooth divisor moves no line.  The window grows with the disk and with
+    the widest line expected (``line_sigma_px``).  Only the disk's bounding
+    box is worked on.
     """
     from scipy import ndimage
 
     rows, cols = image.shape
-    cx, cy = disk.center_px
-    yy, xx = np.ogrid[0:rows, 0:cols]
-    r = np.hypot(xx - cx, yy - cy)
-    margin = 4.0  # px inside the fitted rim, clear of the blurred disk edge
-    interior = (r < disk.radius_px - margin) & valid
-    source = interior | ((r < disk.radius_px - 2) & valid)
-    if not np.any(interior):
-        raise InputError("no usable pixels inside the disk")
+    cx, cy, radius = disk.center_px[0], disk.center_px[1], disk.radius_px
     window = _window(disk, line_sigma_px)
     block = max(1, int(window // 6))
+    # the disk's bounding box, in whole blocks on the image's own block grid
+    r0 = max(0, int(cy - radius) - 1) // block * block
+    c0 = max(0, int(cx - radius) - 1) // block * block
+    r1 = min(rows, r0 + block * int(math.ceil((min(rows, int(cy + radius) + 2) - r0) / block)))
+    c1 = min(cols, c0 + block * int(math.ceil((min(cols, int(cx + radius) + 2) - c0) / block)))
+    flat = np.zeros((rows, cols))
+    interior = np.zeros((rows, cols), dtype=bool)
+    if r1 <= r0 or c1 <= c0:
+        raise InputError("no usable pixels inside the disk")
+    box = image[r0:r1, c0:c1]
+    yy, xx = np.ogrid[r0:r1, c0:c1]
+    r2 = (xx - cx) ** 2 + (yy - cy) ** 2
+    margin = 4.0  # px inside the fitted rim, clear of the blurred disk edge
+    box_valid = valid[r0:r1, c0:c1]
+    inner = (r2 < max(radius - margin, 0.0) ** 2) & box_valid
+    source = (r2 < max(radius - 2, 0.0) ** 2) & box_valid
+    if not np.any(inner):
+        raise InputError("no usable pixels inside the disk")
     if block > 1:  # the background is smooth: work on block means
-        r_rows, r_cols = rows // block * block, cols // block * block
-        pad = ((0, rows - r_rows), (0, cols - r_cols))
-
-        def shrink(a):
-            return a[:r_rows, :r_cols].reshape(r_rows // block, block, r_cols // block,
-                                               block).mean(axis=(1, 3))
-        src_small = shrink(source.astype(float))
-        img_small = shrink(np.where(source, image, 0.0))
+        src_small = _block_mean(source.astype(float), block)
+        img_small = _block_mean(np.where(source, box, 0.0), block)
         small_source = src_small > 0.5
         img_small = np.divide(img_small, src_small, out=np.zeros_like(img_small),
                               where=src_small > 0)
     else:
-        small_source, img_small = source, image
+        small_source, img_small = source, box
     if not np.any(small_source):
         raise InputError("no usable pixels inside the disk")
     # outside the disk continue the disk's own level from the nearest inside
@@ -333,21 +420,31 @@ def _flatten(image, valid, disk, line_sigma_px=1.0):
     closed = ndimage.grey_closing(ndimage.gaussian_filter(filled, 1.0), size=(size, size))
     background = ndimage.gaussian_filter(closed, size / 2.0)
     if block > 1:
-        zy = (np.arange(rows) + 0.5) / block - 0.5
-        zx = (np.arange(cols) + 0.5) / block - 0.5
-        background = ndimage.map_coordinates(
-            background, np.meshgrid(zy, zx, indexing="ij"), order=1, mode="nearest")
-    with np.errstate(divide="ignore", invalid="ignore"):
-        ratio = np.where(interior, image / background, 1.0)
-    ratio /= np.median(ratio[interior])  # lines cover little of the disk
-    flat = np.where(interior, ratio - 1.0, 0.0)
-    # pixel noise from differences of pixels two columns apart (beyond the
-    # reach of a detector blur; lines are rare): MAD / 0.6745, over sqrt(2)
-    both = interior[:, 2:] & interior[:, :-2]
-    diff = (flat[:, 2:] - flat[:, :-2])[both]
-    noise = float(1.4826 * np.median(np.abs(diff - np.median(diff))) / math.sqrt(2))
-    noise = max(noise, 1e-3)  # noiseless (rendered) images: 0.1 % keeps thresholds sane
+        background = _upsample(background, block, box.shape)
+    ratio = box / background
+    level = np.median(ratio[inner])  # lines cover little of the disk
+    flat_box = np.where(inner, ratio / level - 1.0, 0.0)
+    flat[r0:r1, c0:c1] = flat_box
+    interior[r0:r1, c0:c1] = inner
+    every = max(2, int(inner.sum() // 200_000) + 1)  # every other row (or fewer) suffices
+    noise = _pixel_noise(flat_box[::every], inner[::every])
     return flat, interior, noise
+
+
+def _upsample(small, block, shape):
+    """Linear interpolation of block means back to full resolution (edge values held)."""
+    out = small
+    for axis, n in enumerate(shape):
+        z = np.clip((np.arange(n) + 0.5) / block - 0.5, 0, small.shape[axis] - 1)
+        lo = np.minimum(z.astype(int), small.shape[axis] - 2) if small.shape[axis] > 1 \
+            else np.zeros(n, int)
+        hi = np.minimum(lo + 1, small.shape[axis] - 1)
+        w = z - lo
+        if axis == 0:
+            out = out[lo] * (1 - w)[:, None] + out[hi] * w[:, None]
+        else:
+            out = out[:, lo] * (1 - w) + out[:, hi] * w
+    return out
 
 
 # ---------------------------------------------------------------------------
@@ -430,7 +527,8 @@ class _Measured:
 
 def _measure_lines(flat, interior, disk, noise, polylines, width_px, search_px, *,
                    masks=None, seg_len=None, template=True, min_z=6.0, min_fraction=0.5,
-                   screening=False):
+                   screening=False, rim_margin_px=5.0, directions=None, iterations=None,
+                   step=None):
     """Measure deficit minima along starting loci and fit each line through them.
 
     Parameters
@@ -453,6 +551,19 @@ def _measure_lines(flat, interior, disk, noise, polylines, width_px, search_px, 
     screening : bool
         A quick look (samples 2 px apart along segments, fewer iterations)
         for sorting candidates; positions come from a later full pass.
+    rim_margin_px : float
+        Segments whose centre lies closer than this to the rim are left out.
+    iterations : int, optional
+        Most Levenberg-Marquardt steps of the profile fits (by default 8 when
+        screening, else 20).
+    step : float, optional
+        Bin width of the profiles across the line (px; by default 1 when
+        screening, else 0.5).
+    directions : ndarray (L, 2), optional
+        A physical direction across each line shared by all of them (the
+        predicted g direction in px): the template offsets of the lines are
+        then pooled, each taken along its own direction
+        (:func:`laueline.images.lineprofile.template_minima`).
     """
     from .lineprofile import fit_line_offsets, fit_profiles, sample_profiles, template_minima
 
@@ -464,7 +575,7 @@ def _measure_lines(flat, interior, disk, noise, polylines, width_px, search_px, 
     sigma_max = float(np.max(width_px))
     seg_len = seg_len or float(np.clip(4.0 * sigma_max, 12.0, 32.0))
     half = search_px + 4.0 * width_px + 2.0
-    points, normals, owner = _segments(polylines, disk, seg_len, 5.0)
+    points, normals, owner = _segments(polylines, disk, seg_len, rim_margin_px)
     if not len(owner):
         return empty
     others = None
@@ -473,15 +584,19 @@ def _measure_lines(flat, interior, disk, noise, polylines, width_px, search_px, 
         others = _other_line_masks(points, normals, owner, rho_m, ang_m, keep_m, disk,
                                    masks[3] if len(masks) > 3 else None)
     d, profile, count, crowded = sample_profiles(flat, interior, points, normals, half[owner],
-                                        seg_len, others, step=1.0 if screening else 0.5)
+                                        seg_len, others, step=step or (1.0 if screening else 0.5))
     fit = fit_profiles(d, profile, count, 0.0, width_px[owner], noise, search=search_px,
                        max_width=max(3.0 * sigma_max, 4.0), shape_terms=False,
-                       iterations=8 if screening else 20)
+                       iterations=iterations or (8 if screening else 20))
     z_seg = np.where(fit.ok, fit.depth / np.maximum(fit.depth_sigma, 1e-12), 0.0)
     if template:
+        orientation = None
+        if directions is not None:
+            orientation = np.bincount(owner, np.sum(normals * directions[owner], axis=1),
+                                      minlength=n_lines)
         minimum, var, ok_t, _, template_var = template_minima(
             d, profile, count, owner, _with_ok(fit, z_seg > 2.0), noise, clean=~crowded,
-            refit=False)
+            refit=False, orientation=orientation)
     else:
         minimum, var, ok_t = fit.minimum, fit.minimum_var, fit.ok
         template_var = np.zeros(n_lines)
@@ -505,20 +620,32 @@ def _measure_lines(flat, interior, disk, noise, polylines, width_px, search_px, 
     s_g[owner, slot], off_g[owner, slot] = s, off
     var_g[owner, slot] = np.where(ok, var_n, 1.0)
     ok_g[owner, slot] = ok
+    # no segment may outweigh four typical ones of its line: a profile locked
+    # onto a crossing or a speck can claim a tiny variance and would otherwise
+    # pull the whole line (and widen the outlier gate) before it is rejected
+    typical = _row_median(var_g, ok_g)
+    var_g = np.maximum(var_g, 0.25 * typical[:, None])
     span = np.sqrt(np.maximum(disk.radius_px ** 2 - rho0 ** 2, 1.0))
-    for _ in range(2):  # once more without segments beyond four sigmas (crossings, dust)
-        # exact loci bend by hundredths of a pixel over a chord of a few hundred
-        # pixels; a prior sagitta of 2.5e-4 of the disk radius keeps a line
-        # measured on part of its chord from being bent at its ends
-        coef, cov, chi2, dof = fit_line_offsets(s_g, off_g, var_g, ok_g, span,
+    for k in range(3):
+        # first with no segment weighing more than a typical one of its line, so
+        # that none can drag the line (and with it the outlier gate) before the
+        # gate has seen it; then with
+        # each segment's own variance, twice without segments beyond four
+        # sigmas (crossings, dust).  Exact loci bend by hundredths of a pixel
+        # over a chord of a few hundred pixels; a prior sagitta of 2.5e-4 of
+        # the disk radius keeps a line measured on part of its chord from
+        # being bent at its ends
+        weights = var_g if k else np.maximum(var_g, typical[:, None])
+        coef, cov, chi2, dof = fit_line_offsets(s_g, off_g, weights, ok_g, span,
                                                 curvature_sagitta_px=2.5e-4 * disk.radius_px)
+        if k == 2:
+            break
         design = np.stack([np.ones_like(s_g), s_g, s_g * s_g], 2)
         resid = off_g - np.einsum("lki,li->lk", design, coef)
         # a robust scale (median absolute normalised residual) so that the
         # outliers themselves cannot widen the gate
-        norm = np.where(ok_g, np.abs(resid) / np.sqrt(var_g), np.nan)
-        with np.errstate(all="ignore"):
-            scale = np.nan_to_num(1.4826 * np.nanmedian(norm, axis=1), nan=1.0)
+        norm = np.abs(resid) / np.sqrt(var_g)
+        scale = np.where(ok_g.any(axis=1), 1.4826 * _row_median(norm, ok_g), 1.0)
         ok_g &= np.abs(resid) < 4.0 * np.sqrt(var_g) * np.maximum(scale, 1.0)[:, None]
     # the template's minimum is common to every segment of a line: its
     # variance adds to the line's offset, not to the segments' scatter
@@ -549,6 +676,13 @@ def _measure_lines(flat, interior, disk, noise, polylines, width_px, search_px, 
                              minima_px=q[sel_idx], minima_sigma_px=np.sqrt(var[sel_idx]),
                              minima_normal=normals[sel_idx])
     return _Measured(found, lines, z_line)
+
+
+def _row_median(values, use):
+    """Median of each row over its entries where ``use`` (0 for rows without any)."""
+    from .lineprofile import _masked_median
+
+    return _masked_median(values, use)
 
 
 def _with_ok(fit, ok):
@@ -603,7 +737,98 @@ def _line_polylines(lines, disk):
 # blind search
 # ---------------------------------------------------------------------------
 
-def _hough_candidates(flat, interior, disk, noise):
+def _blind_candidates(flat, interior, disk, noise):
+    """Lines of the flattened image found without a prediction, in full-resolution px.
+
+    The search runs on a block-averaged copy whose disk is about 128 to 256
+    px in radius (the full image for disks up to 256 px), where it costs the
+    same whatever the image size: Hough candidates at several scales
+    (:func:`_hough_candidates`), each screened by quick Gaussian fits on long
+    segments.  The factor follows the line width: when the lines found are
+    narrow for the blocks (Gaussian sigma under 0.8 block), the search is
+    repeated on a finer copy so that narrow weak lines are not averaged
+    away.  Positions are good to a fraction of a block; they are measured
+    again at full resolution.
+
+    Returns
+    -------
+    lines : list of DetectedLine
+    factor : int
+        The block size of the copy searched.
+    """
+    factor, max_level = 1, 8
+    while disk.radius_px / (2 * factor) >= 128:
+        factor *= 2
+    while True:
+        lines = _screened_candidates(flat, interior, disk, noise, factor, max_level)
+        sigma = np.median([ln.width_px / _FWHM for ln in lines]) if lines else 0.0
+        if factor == 1 or (lines and sigma >= 0.8 * factor):
+            return lines, factor
+        factor = max(1, factor // 2 if not lines else
+                     min(factor // 2, 2 ** int(math.floor(math.log2(max(sigma / 0.8, 1.0))))))
+        # the lines are narrow for the blocks: the finer search need not look
+        # for wide ones (Gaussian sigma beyond about two of its pixels)
+        max_level = 2
+
+
+def _screened_candidates(flat, interior, disk, noise, factor, max_level=8):
+    """Hough candidates screened on the copy block-averaged by ``factor`` (full px out)."""
+    cx, cy = disk.center_px
+    if factor > 1:
+        small, inside = _block_mean(flat, factor), _block_all(interior, factor)
+        level_disk = Disk(((cx + 0.5) / factor - 0.5, (cy + 0.5) / factor - 0.5),
+                          disk.radius_px / factor)
+        level_noise = _pixel_noise(small, inside)
+    else:
+        small, inside, level_disk, level_noise = flat, interior, disk, noise
+    cand = _hough_candidates(small, inside, level_disk, level_noise, min_chord_px=20.0 / factor,
+                             max_level=max_level)
+    if not len(cand):
+        return []
+    # coarse screening: candidates alone, Gaussian positions, long segments
+    cand = cand[np.argsort(-cand[:, 3])]
+    first = _measure_lines(small, inside, level_disk, level_noise,
+                           _chords(cand[:, 0], cand[:, 1], level_disk), cand[:, 2],
+                           1.0 + cand[:, 2].max(), template=False, seg_len=16.0, min_z=8.0,
+                           screening=True, rim_margin_px=max(1.0, 5.0 / factor))
+    lines = _merge([ln for ln in first.lines if ln is not None], level_disk)
+    if factor == 1:
+        return lines
+    out = []
+    scale = np.diag([float(factor), 1.0, 1.0 / factor])
+    for ln in lines:
+        # a box of `factor` px adds factor^2 / 12 to a line's variance across it
+        sig_c = ln.width_px / _FWHM
+        sig = factor * math.sqrt(max(sig_c ** 2 - (1 - 1 / factor ** 2) / 12,
+                                     0.25 * sig_c ** 2))
+        out.append(_new_line(ln.offset_px * factor, math.radians(ln.normal_angle_deg),
+                             ln.curvature_per_px / factor, scale @ ln.covariance @ scale,
+                             ln.depth, sig * _FWHM, ln.snr, ln.n_pixels * factor ** 2, disk))
+    return out
+
+
+def _block_all(mask, factor):
+    """True for blocks of factor x factor pixels that are all True."""
+    if factor == 1:
+        return mask
+    r, c = mask.shape[0] // factor * factor, mask.shape[1] // factor * factor
+    return mask[:r, :c].reshape(r // factor, factor, c // factor, factor).all(axis=(1, 3))
+
+
+def _pixel_noise(flat, interior):
+    """Pixel noise from differences of pixels two columns apart: MAD / 0.6745 / sqrt(2).
+
+    Two columns apart is beyond the reach of a detector blur; lines are rare,
+    so the median ignores them.
+    """
+    diff = (flat[:, 2:] - flat[:, :-2])[interior[:, 2:] & interior[:, :-2]]
+    if not len(diff):
+        return 1e-3
+    noise = float(1.4826 * np.median(np.abs(diff - np.median(diff))) / math.sqrt(2))
+    return max(noise, 1e-3)  # noiseless (rendered) images: 0.1 % keeps thresholds sane
+
+
+def _hough_candidates(flat, interior, disk, noise, min_chord_px=20.0, max_level=8):
     """Line candidates (rho, angle, sigma_px) from a Hough transform at several scales.
 
     Lines from under 2 to 15 px wide: the flattened image is block-averaged
@@ -613,7 +838,9 @@ def _hough_candidates(flat, interior, disk, noise):
     (:func:`skimage.transform.hough_line`), normalised by the count expected
     from noise along each chord so that short chords near the rim compete
     fairly, and every local maximum above six sigmas is kept (no fixed cap:
-    the count grows with the pattern, not with the image size).
+    the count grows with the pattern, not with the image size).  Chords
+    shorter than ``min_chord_px`` (of ``flat``'s pixels) are not sought, nor
+    levels beyond ``max_level``.
     """
     from scipy import ndimage
     from skimage.feature import peak_local_max
@@ -622,7 +849,7 @@ def _hough_candidates(flat, interior, disk, noise):
     out = []
     factor = 1
     rows, cols = flat.shape
-    while disk.radius_px / factor >= 40 and factor <= 8:
+    while disk.radius_px / factor >= 40 and factor <= max_level:
         if factor == 1:
             f_small, i_small = flat, interior
         else:
@@ -643,7 +870,7 @@ def _hough_candidates(flat, interior, disk, noise):
         chord = 2 * np.sqrt(np.clip((disk.radius_px / factor) ** 2 - rho_c ** 2, 0, None))
         expected = p * chord
         z = (acc - expected) / np.sqrt(expected + 1.0)
-        z[chord < 20 / factor] = 0
+        z[chord < min_chord_px / factor] = 0
         peaks = peak_local_max(z, min_distance=3, threshold_abs=6.0, exclude_border=False)
         if len(peaks):
             i, j = peaks[:, 0], peaks[:, 1]
@@ -728,8 +955,8 @@ def detect_lines(image, *, disk=None, saturation=None, min_angle_deg=5.0, source
 
     Notes
     -----
-    Candidates come from a Hough transform at several scales
-    (:func:`_hough_candidates`); each is measured by profiles across it on
+    Candidates come from Hough transforms of a pyramid, each screened at its
+    own scale (:func:`_blind_candidates`); each is measured by profiles across it on
     short segments (:mod:`laueline.images.lineprofile`): a Gaussian dip for
     a first position, then the line's own template for the position of the
     deficit minimum; a curved line is fitted through the segment minima.
@@ -740,16 +967,7 @@ def detect_lines(image, *, disk=None, saturation=None, min_angle_deg=5.0, source
     image, valid, disk, n_saturated = _prepare(image, disk, saturation, warnings)
     rows, cols = image.shape
     flat, interior, noise = _flatten(image, valid, disk, 1.0)
-    cand = _hough_candidates(flat, interior, disk, noise)
-    lines = []
-    if len(cand):
-        # coarse screening: candidates alone, Gaussian positions, long segments
-        order = np.argsort(-cand[:, 3])
-        cand = cand[order]
-        first = _measure_lines(flat, interior, disk, noise, _chords(cand[:, 0], cand[:, 1], disk),
-                               cand[:, 2], 1.0 + cand[:, 2].max(), template=False,
-                               seg_len=16.0, min_z=8.0, screening=True)
-        lines = _merge([ln for ln in first.lines if ln is not None], disk)
+    lines, factor = _blind_candidates(flat, interior, disk, noise)
     if lines:  # the background window from the widest line seen
         flat, interior, noise = _flatten(image, valid, disk,
                                          float(np.max([ln.width_px for ln in lines])) / _FWHM)
@@ -763,8 +981,10 @@ def detect_lines(image, *, disk=None, saturation=None, min_angle_deg=5.0, source
         masks = (np.array([ln.offset_px for ln in lines]),
                  np.radians([ln.normal_angle_deg for ln in lines]), 2.5 * sig + 1.5,
                  np.arange(len(lines)) if rounds == 0 else None)
+        # the first round starts from positions good to a fraction of a block
+        search = 1.5 + 0.5 * (factor - 1) if rounds == 0 else 1.5
         again = _measure_lines(flat, interior, disk, noise, _line_polylines(lines, disk), sig,
-                               1.5, masks=masks, min_z=8.0, min_fraction=0.25)
+                               search, masks=masks, min_z=8.0, min_fraction=0.25)
         lines = _merge([ln for ln in again.lines if ln is not None], disk)
     _flag_lines(lines, image, valid, disk, warnings)
     lines.sort(key=lambda ln: -ln.snr)
@@ -833,8 +1053,15 @@ def detect_seeded(image, pattern, detector, *, disk=None, saturation=None, searc
     # not there (dynamically extinguished) must not hide a stronger one
     rank = np.argsort(np.argsort(-np.asarray(pattern.strength, float)))
     masks = (rho, ang, np.full(len(rho), 2.5 * sigma + 1.5), rank)
+    # the direction of g in px: a shared physical orientation across every line
+    directions = np.asarray(pattern.normal, float) @ np.asarray(detector.matrix).T
+    directions /= np.linalg.norm(directions, axis=1, keepdims=True)
+    # this pass finds the lines and starts the next one: its fits need not
+    # settle to the last thousandth of a pixel (its fine bins keep the
+    # faintest lines: 1 px bins lose some of 3 % contrast at 3000 counts)
     measured = _measure_lines(flat, interior, disk, noise, polylines, sigma, search_px,
-                              masks=masks, min_z=min_z, min_fraction=0.4)
+                              masks=masks, min_z=min_z, min_fraction=0.4,
+                              directions=directions, iterations=10)
     # once more from where the lines were found, with each line's own width and
     # only the lines actually seen left out of the others' profiles
     found = np.flatnonzero(measured.found)
@@ -845,7 +1072,8 @@ def detect_seeded(image, pattern, detector, *, disk=None, saturation=None, searc
         masks = (np.array([ln.offset_px for ln in seen]),
                  np.radians([ln.normal_angle_deg for ln in seen]), 2.5 * sig + 1.5, rank)
         again = _measure_lines(flat, interior, disk, noise, _line_polylines(seen, disk), sig,
-                               1.5, masks=masks, min_z=min_z, min_fraction=0.25)
+                               1.5, masks=masks, min_z=min_z, min_fraction=0.25,
+                               directions=directions[found])
         for k, i in enumerate(found):
             measured.lines[i] = again.lines[k] if again.found[k] else measured.lines[i]
     lines, missing = [], []

@@ -115,88 +115,130 @@ def sample_profiles(flat, valid, points, normals, half_width, segment, others=No
     rows, cols = flat.shape
     hw_m = np.broadcast_to(np.asarray(half_width, float), (m_count,))
     hw = float(np.max(hw_m)) if m_count else 1.0
-    patch = (2 * (int(math.ceil(math.hypot(hw, segment / 2.0))) + 1) + 1) ** 2
-    chunk = max(1, _MAX_SAMPLES // patch)
-    if m_count > chunk:  # memory bounded by a few million samples at a time
-        parts = []
-        for lo in range(0, m_count, chunk):  # chunks of segments, not single ones
-            sl = slice(lo, lo + chunk)
-            sub = None if others is None else tuple(a[sl] for a in others)
-            parts.append(_sample(flat, valid, points[sl], normals[sl], hw_m[sl], hw, segment,
-                                 sub, step))
-        return tuple(np.concatenate(k) for k in zip(*parts))
-    return _sample(flat, valid, points, normals, hw_m, hw, segment, others, step)
+    # each segment's pixels lie in a rotated rectangle; its bounding box is
+    # tight when segments of like orientation and width share one (four
+    # classes of the angle of the normal to the nearest image axis, widths in
+    # classes of a factor of two)
+    ax, ay = np.abs(normals[:, 0]), np.abs(normals[:, 1])
+    ex = hw_m * ax + 0.5 * segment * ay         # half extents of the rectangles, px
+    ey = hw_m * ay + 0.5 * segment * ax
+    kind = np.minimum((np.arctan2(ay, ax) / (np.pi / 8)).astype(int), 3) + \
+        4 * np.ceil(np.log2(np.maximum(hw_m, 1.0))).astype(int)
+    out = [np.empty((m_count, int(math.ceil(2 * hw / step)))) for _ in range(3)]
+    crowded = np.zeros(m_count, dtype=bool)
+    for k in np.unique(kind):
+        members = np.flatnonzero(kind == k)
+        box = (int(math.ceil(ex[members].max())) + 1, int(math.ceil(ey[members].max())) + 1)
+        chunk = max(1, _MAX_SAMPLES // ((2 * box[0] + 1) * (2 * box[1] + 1)))
+        for lo in range(0, len(members), chunk):  # memory bounded by a few million samples
+            sel = members[lo:lo + chunk]
+            sub = None if others is None else tuple(a[sel] for a in others)
+            parts = _sample(flat, valid, points[sel], normals[sel], hw_m[sel], hw, segment,
+                            sub, step, box)
+            for target, part in zip(out, parts[:3]):
+                target[sel] = part
+            crowded[sel] = parts[3]
+    return out[0], out[1], out[2], crowded
 
 
 _MAX_SAMPLES = 4_000_000
 
 
-def _sample(flat, valid, points, normals, hw_m, hw, segment, others, step):
-    """:func:`sample_profiles` for one chunk of segments (all sharing the bins of ``hw``)."""
+def _sample(flat, valid, points, normals, hw_m, hw, segment, others, step, box):
+    """:func:`sample_profiles` for one chunk of segments (all sharing the bins of ``hw``).
+
+    ``box`` (x, y): half size in px of the pixel patch around each segment centre.
+    """
     m_count = len(points)
     rows, cols = flat.shape
     n_bins = int(math.ceil(2 * hw / step))
     centres = -hw + step * (np.arange(n_bins) + 0.5)
-    reach_px = int(math.ceil(math.hypot(hw, segment / 2.0))) + 1
-    off = np.arange(-reach_px, reach_px + 1)
-    base = np.round(points).astype(int)
-    ix = base[:, 0, None, None] + off[None, None, :]
-    iy = base[:, 1, None, None] + off[None, :, None]
-    dx = ix - points[:, 0, None, None]
-    dy = iy - points[:, 1, None, None]
+    off_x, off_y = np.arange(-box[0], box[0] + 1), np.arange(-box[1], box[1] + 1)
+    base = np.round(points).astype(np.intp)
+    frac = points - base                                   # (M, 2) in [-0.5, 0.5]
     nx, ny = normals[:, 0, None, None], normals[:, 1, None, None]
-    d = dx * nx + dy * ny
-    v = -dx * ny + dy * nx
-    inframe = (ix >= 0) & (ix < cols) & (iy >= 0) & (iy < rows)
-    ixc, iyc = np.clip(ix, 0, cols - 1), np.clip(iy, 0, rows - 1)
-    ixc, iyc = np.broadcast_to(ixc, d.shape), np.broadcast_to(iyc, d.shape)
-    use = inframe & (np.abs(v) <= segment / 2.0) & (np.abs(d) < hw_m[:, None, None]) \
-        & valid[iyc, ixc]
+    # pixel offsets from the segment centre: d across the line, v along it
+    ox, oy = off_x[None, None, :].astype(float), off_y[None, :, None].astype(float)
+    d0 = (frac[:, 0] * normals[:, 0] + frac[:, 1] * normals[:, 1])[:, None, None]
+    v0 = (-frac[:, 0] * normals[:, 1] + frac[:, 1] * normals[:, 0])[:, None, None]
+    d = ox * nx + oy * ny - d0
+    v = oy * nx - ox * ny - v0
+    use = (np.abs(v) <= segment / 2.0) & (np.abs(d) < hw_m[:, None, None])
+    lin = (base[:, 1] * cols + base[:, 0])[:, None, None] + \
+        (off_y[:, None] * cols + off_x[None, :])[None]
+    lo, hi = base.min(axis=0) - np.array(box), base.max(axis=0) + np.array(box)
+    if lo[0] < 0 or lo[1] < 0 or hi[0] >= cols or hi[1] >= rows:  # patches at the frame's edge
+        ix = base[:, 0, None, None] + off_x[None, None, :]
+        iy = base[:, 1, None, None] + off_y[None, :, None]
+        use &= (ix >= 0) & (ix < cols) & (iy >= 0) & (iy < rows)
+        lin = np.where(use, lin, 0)
+    use &= valid.ravel()[lin]
     crowded = np.zeros(m_count, dtype=bool)
     if others is not None:
         dist, along_n, along_t, keep = others
-        # the other line's distance at (d, v) is dist + d along_n + v along_t;
         # only (segment, line) pairs whose line comes near the sampled patch
         reach = np.abs(dist) - hw * np.abs(along_n) - 0.5 * segment * np.abs(along_t)
         m_idx, j_idx = np.nonzero((reach < keep) & (keep > 0))
         crowded[m_idx] = True
-        if len(m_idx):
-            near = np.abs(dist[m_idx, j_idx][:, None, None]
-                          + d[m_idx] * along_n[m_idx, j_idx][:, None, None]
-                          + v[m_idx] * along_t[m_idx, j_idx][:, None, None]) \
-                < keep[m_idx, j_idx][:, None, None]
-            hits = np.zeros(d.shape, dtype=np.int32)
-            np.add.at(hits, m_idx, near.astype(np.int32))
-            use &= hits == 0
-    seg_id = np.broadcast_to(np.arange(m_count)[:, None, None], d.shape)[use]
-    bins = np.clip(((d[use] + hw) / step).astype(int), 0, n_bins - 1)
+        # the other line's distance at pixel offset (ox, oy) is dist + d along_n
+        # + v along_t, linear in the offsets: a + b ox + c oy
+        an, at = along_n[m_idx, j_idx], along_t[m_idx, j_idx]
+        nxp, nyp = normals[m_idx, 0], normals[m_idx, 1]
+        a = dist[m_idx, j_idx] - d0[m_idx, 0, 0] * an - v0[m_idx, 0, 0] * at
+        b, c = nxp * an - nyp * at, nyp * an + nxp * at
+        kp = keep[m_idx, j_idx]
+        # one pass per rank of a pair within its segment: no segment twice in a pass
+        first = np.searchsorted(m_idx, m_idx)
+        rank = np.arange(len(m_idx)) - first
+        for k in range(int(rank.max()) + 1 if len(rank) else 0):
+            sel = rank == k
+            near = np.abs(a[sel, None, None] + b[sel, None, None] * ox
+                          + c[sel, None, None] * oy) < kp[sel, None, None]
+            use[m_idx[sel]] &= ~near
+    seg_id = np.nonzero(use)[0]
+    d_use = d[use]
+    bins = np.clip(((d_use + hw) / step).astype(np.intp), 0, n_bins - 1)
     key = seg_id * n_bins + bins
     size = m_count * n_bins
     count = np.bincount(key, minlength=size).astype(float).reshape(m_count, n_bins)
-    total = np.bincount(key, flat[iyc[use], ixc[use]], minlength=size).reshape(m_count, n_bins)
-    dsum = np.bincount(key, d[use], minlength=size).reshape(m_count, n_bins)
+    total = np.bincount(key, flat.ravel()[lin[use]], minlength=size).reshape(m_count, n_bins)
+    dsum = np.bincount(key, d_use, minlength=size).reshape(m_count, n_bins)
     profile = np.divide(total, count, out=np.zeros_like(total), where=count > 0)
     dmean = np.where(count > 0, dsum / np.maximum(count, 1), centres[None, :])
     return dmean, profile, count, crowded
 
 
-def _model(p, d):
-    """Profile model and Jacobian; p (M, 7), d (n,) -> f (M, n), J (M, n, 7)."""
+def _model(p, d, cols=None):
+    """Profile model and Jacobian; p (M, 7), d (M, n) -> f (M, n), J (M, n, len(cols)).
+
+    ``cols`` lists the parameters whose derivatives are wanted (all by default).
+    """
     x0, depth, width, base, slope, a, c = (p[:, k:k + 1] for k in range(_N_PARAMS))
     u = (d - x0) / width
     u2 = u * u
     e = np.exp(-0.5 * u2)
-    g = e * (1.0 + c * u2 + a * u2 * u)
-    dg = e * (-u * (1.0 + c * u2 + a * u2 * u) + 2.0 * c * u + 3.0 * a * u2)
+    shape = 1.0 + c * u2 + a * u2 * u
+    g = e * shape
     f = base + slope * d - depth * g
-    jac = np.empty(f.shape + (_N_PARAMS,))
-    jac[..., 0] = depth * dg / width
-    jac[..., 1] = -g
-    jac[..., 2] = depth * dg * u / width
-    jac[..., 3] = 1.0
-    jac[..., 4] = d
-    jac[..., 5] = -depth * e * u2 * u
-    jac[..., 6] = -depth * e * u2
+    cols = range(_N_PARAMS) if cols is None else cols
+    jac = np.empty(f.shape + (len(cols),))
+    if 0 in cols or 2 in cols:
+        dg_w = depth * e * (-u * shape + 2.0 * c * u + 3.0 * a * u2) / width
+    for k, col in enumerate(cols):
+        if col == 0:
+            jac[..., k] = dg_w
+        elif col == 1:
+            jac[..., k] = -g
+        elif col == 2:
+            jac[..., k] = dg_w * u
+        elif col == 3:
+            jac[..., k] = 1.0
+        elif col == 4:
+            jac[..., k] = d
+        elif col == 5:
+            jac[..., k] = -depth * e * u2 * u
+        else:
+            jac[..., k] = -depth * e * u2
     return f, jac
 
 
@@ -221,6 +263,9 @@ def fit_profiles(d, profile, count, start_x0, start_width, noise, *, max_width=N
     shape_terms : bool
         Free the asymmetry and fringe terms after a plain Gaussian fit;
         False stops at the Gaussian (as a start for :func:`template_minima`).
+    iterations : int
+        Most Levenberg-Marquardt steps; each profile leaves the iteration
+        as soon as it has converged.
 
     Returns
     -------
@@ -243,22 +288,26 @@ def fit_profiles(d, profile, count, start_x0, start_width, noise, *, max_width=N
     p = np.stack([d[np.arange(m_count), at], np.maximum(dip0, noise), start_width, base0,
                   np.zeros(m_count), np.zeros(m_count), np.zeros(m_count)], 1)
     # first a plain Gaussian dip (shape terms held at zero), then everything
-    held = _PRIOR_SD.copy()
-    held[5:] = 1e-6
+    gaussian = (0, 1, 2, 3, 4)
+    p = _levenberg_marquardt(p, d, profile, w, gaussian, max_width, iterations)
+    free = tuple(range(_N_PARAMS)) if shape_terms else gaussian
     if shape_terms:
-        p = _levenberg_marquardt(p, d, profile, used, w, noise, held, max_width, iterations)
-    p, r, jac, a_mat = _levenberg_marquardt(p, d, profile, used, w, noise,
-                                            _PRIOR_SD if shape_terms else held, max_width,
-                                            iterations, final=True)
+        p = _levenberg_marquardt(p, d, profile, w, free, max_width, iterations)
+    f, jac = _model(p, d, free)
+    r = (f - profile) * w
+    jw = jac * w[..., None]
+    prior_diag = _prior_diag(free)
+    a_mat = np.matmul(jw.transpose(0, 2, 1), jw) + np.diag(prior_diag)[None]
     n_used = used.sum(axis=1)
-    dof = np.maximum(n_used - _N_PARAMS, 1)
+    dof = np.maximum(n_used - _N_PARAMS, 1)  # as for the full series, free or held
     s2 = np.sum(r * r, axis=1) / dof
     s2 = s2 * _correlation_factor(r, used)
     ok = n_used >= _N_PARAMS + 2
-    cov = np.full((m_count, _N_PARAMS, _N_PARAMS), np.nan)
+    cov = np.full((m_count, len(free), len(free)), np.nan)
     good_mat = ok & np.all(np.isfinite(a_mat), axis=(1, 2))
     if good_mat.any():
-        sign, _ = np.linalg.slogdet(a_mat[good_mat])
+        with np.errstate(divide="ignore", invalid="ignore"):  # singular: sign 0, left out
+            sign, _ = np.linalg.slogdet(a_mat[good_mat])
         idx = np.flatnonzero(good_mat)[sign > 0]
         cov[idx] = np.linalg.inv(a_mat[idx]) * s2[idx, None, None]
         ok &= np.isin(np.arange(m_count), idx)
@@ -270,57 +319,80 @@ def fit_profiles(d, profile, count, start_x0, start_width, noise, *, max_width=N
     return ProfileFit(minimum, var, depth, depth_sigma, width, a, c, ok, p)
 
 
-def _levenberg_marquardt(p, d, profile, used, w, noise, prior_sd, max_width, iterations,
-                         final=False):
-    m_count = len(p)
-    prior_w = 1.0 / prior_sd
-    finite_prior = np.isfinite(prior_sd)
+def _prior_diag(free):
+    """Inverse prior variances of the free parameters (0 where there is no prior)."""
+    sd = _PRIOR_SD[list(free)]
+    return np.where(np.isfinite(sd), 1.0 / sd ** 2, 0.0)
 
-    def cost_and_parts(p):
-        f, jac = _model(p, d)
+
+def _levenberg_marquardt(p, d, profile, w, free, max_width, iterations):
+    """Damped Gauss-Newton over the parameters ``free`` of every profile at once.
+
+    Each profile is iterated until its cost stops falling (relative change
+    below 1e-7) or its position and width stop moving on an accepted step,
+    or until rejected steps have driven the damping beyond 1e3; converged
+    profiles leave the batch, so the work follows the profiles still moving.
+    """
+    free = list(free)
+    prior_diag = _prior_diag(free)
+    prior_w = np.sqrt(prior_diag)
+    eye = np.eye(len(free))
+
+    def cost_and_parts(p, d, profile, w):
+        f, jac = _model(p, d, free)
         r = (f - profile) * w
-        prior = np.where(finite_prior, p * np.where(finite_prior, prior_w, 0.0), 0.0)
+        jac *= w[..., None]                         # weighted Jacobian
+        prior = p[:, free] * prior_w
         return np.sum(r * r, axis=1) + np.sum(prior * prior, axis=1), r, jac
 
-    lam = np.full(m_count, 1e-2)
-    cost, r, jac = cost_and_parts(p)
-    prior_diag = np.where(finite_prior, prior_w ** 2, 0.0)
+    p = p.copy()
+    lam = np.full(len(p), 1e-2)
+    cost, r, jac = cost_and_parts(p, d, profile, w)
+    active = np.arange(len(p))
     for _ in range(iterations):
-        jw = jac * w[..., None]
-        a_mat = np.matmul(jw.transpose(0, 2, 1), jw) + np.diag(prior_diag)[None]
-        grad = np.matmul(jw.transpose(0, 2, 1), r[..., None])[..., 0] + prior_diag[None] * p
+        if not len(active):
+            break
+        pa, da, wa = p[active], d[active], w[active]
+        jt = jac.transpose(0, 2, 1)
+        a_mat = np.matmul(jt, jac) + np.diag(prior_diag)[None]
+        grad = np.matmul(jt, r[..., None])[..., 0] + prior_diag[None] * pa[:, free]
         diag = np.einsum("mii->mi", a_mat)
-        damped = a_mat + (lam[:, None] * np.maximum(diag, 1e-12))[:, :, None] * np.eye(_N_PARAMS)
+        damped = a_mat + (lam[active][:, None] * np.maximum(diag, 1e-12))[:, :, None] * eye
         try:
             step = -np.linalg.solve(damped, grad[..., None])[..., 0]
         except np.linalg.LinAlgError:
             break
-        trial = p + step
+        trial = pa.copy()
+        trial[:, free] += step
         trial[:, 2] = np.clip(trial[:, 2], 0.3, max_width)
         trial[:, 5] = np.clip(trial[:, 5], -0.4, 0.4)
         trial[:, 6] = np.clip(trial[:, 6], -0.8, 0.45)
-        trial[:, 0] = np.clip(trial[:, 0], d[:, 0], d[:, -1])
-        new_cost, new_r, new_jac = cost_and_parts(trial)
-        better = new_cost < cost
-        p = np.where(better[:, None], trial, p)
-        cost = np.where(better, new_cost, cost)
-        r = np.where(better[:, None], new_r, r)
-        jac = np.where(better[:, None, None], new_jac, jac)
-        lam = np.where(better, lam / 3.0, lam * 4.0)
-        if np.all(lam > 1e6):
-            break
-    if not final:
-        return p
-    jw = jac * w[..., None]
-    a_mat = np.matmul(jw.transpose(0, 2, 1), jw) + np.diag(prior_diag)[None]
-    return p, r, jac, a_mat
+        trial[:, 0] = np.clip(trial[:, 0], da[:, 0], da[:, -1])
+        new_cost, new_r, new_jac = cost_and_parts(trial, da, profile[active], wa)
+        old = cost[active]
+        better = new_cost < old
+        p[active[better]] = trial[better]
+        cost[active[better]] = new_cost[better]
+        lam[active] = np.where(better, lam[active] / 3.0, lam[active] * 4.0)
+        # converged: the cost no longer falls, or the position and width no longer
+        # move (well below a thousandth of a pixel), or the damping has run away
+        settled = (np.abs(step[:, 0]) < 2e-4) & (np.abs(step[:, 2]) < 1e-3 * pa[:, 2])
+        done = (better & ((old - new_cost <= 1e-7 * old) | settled)) | (lam[active] > 1e3)
+        r[better], jac[better] = new_r[better], new_jac[better]
+        r, jac = r[~done], jac[~done]
+        active = active[~done]
+    return p
 
 
 def _masked_median(profile, used):
-    masked = np.where(used, profile, np.nan)
-    with np.errstate(all="ignore"):
-        out = np.nanmedian(masked, axis=1)
-    return np.nan_to_num(out)
+    """Median of each row over its used entries (0 for a row with none)."""
+    n_used = used.sum(axis=1)
+    ordered = np.sort(np.where(used, profile, np.inf), axis=1)
+    lo = np.clip((n_used - 1) // 2, 0, profile.shape[1] - 1)
+    hi = np.clip(n_used // 2, 0, profile.shape[1] - 1)
+    rows = np.arange(len(profile))
+    out = 0.5 * (ordered[rows, lo] + ordered[rows, hi])
+    return np.where(n_used > 0, out, 0.0)
 
 
 def _correlation_factor(r, used):
@@ -380,8 +452,59 @@ def fit_line_offsets(s, offset, var, weight_ok, span, *, curvature_sagitta_px=0.
     return coef, cov, chi2, dof
 
 
+def pool_offsets(offset, var, width, usable):
+    """Each line's template offset shrunk toward the mean over lines, with its variance.
+
+    A weak line's own template is noisy and its minimum wanders by a good
+    fraction of a pixel; the offsets of all lines (in units of each line's
+    width, as the offset of a given profile shape scales with it) are
+    combined in a random-effects model: the between-line variance tau^2 by
+    the moment estimator of DerSimonian and Laird (Controlled Clinical Trials
+    7, 177, 1986), then each line's offset is the precision-weighted mean of
+    its own and of the pooled one (the best linear unbiased predictor), so a
+    strong line keeps its own and a weak one leans on the others.
+
+    Parameters
+    ----------
+    offset, var : ndarray (L,)
+        Template offsets (px) and their variances (px^2).
+    width : ndarray (L,)
+        Line widths (px) setting the scale of each offset.
+    usable : ndarray of bool (L,)
+        Lines whose templates enter the pool.
+
+    Returns
+    -------
+    offset, var : ndarray (L,)
+    """
+    ok = usable & np.isfinite(offset) & np.isfinite(var) & (var > 0) & (width > 0)
+    if ok.sum() < 3:
+        return offset, var
+    scale = np.where(width > 0, width, 1.0)
+    x, v = offset / scale, np.where(ok, var, 1.0) / scale ** 2
+    w = 1.0 / v[ok]
+    mean = float(np.sum(w * x[ok]) / np.sum(w))
+    q = float(np.sum(w * (x[ok] - mean) ** 2))
+    tau2 = max(0.0, (q - (ok.sum() - 1)) / (np.sum(w) - np.sum(w * w) / np.sum(w)))
+    mean_var = 1.0 / np.sum(w)
+    if tau2 > 0:
+        post_var = 1.0 / (1.0 / v + 1.0 / tau2)
+        post = post_var * (x / v + mean / tau2)
+        # the pooled mean is itself uncertain: its share of each line's estimate
+        post_var = post_var + (post_var / tau2) ** 2 * mean_var
+    else:  # the lines agree within their noise: the common offset for all
+        post, post_var = np.full_like(x, mean), np.full_like(x, mean_var)
+    new_offset = np.where(ok, post, offset / scale) * scale
+    new_var = np.where(ok, post_var * scale ** 2, var)
+    # a line that does not enter the pool (too few profiles) takes the pooled offset
+    lonely = ~ok
+    new_offset[lonely] = mean * scale[lonely]
+    new_var[lonely] = (mean_var + tau2) * scale[lonely] ** 2
+    return new_offset, new_var
+
+
 def template_minima(d, profile, count, line_of, fit, noise, *, clean=None, step=0.2,
-                    passes=2, refit=True):
+                    passes=2, refit=True, orientation=None):
     """Minimum positions from a profile template taken from each line itself.
 
     The Gauss-Hermite series cannot follow every dynamical profile; a biased
@@ -405,6 +528,12 @@ def template_minima(d, profile, count, line_of, fit, noise, *, clean=None, step=
     clean : ndarray of bool (M,), optional
         Profiles free of other lines; only they build the templates of
         lines that have at least three of them.
+    orientation : ndarray (L,), optional
+        Sign of each line's profile axis relative to a physical direction
+        shared by all lines (for predicted lines, the direction in which the
+        excitation error grows).  When given (and without ``refit``), the
+        template offsets are pooled over lines (:func:`pool_offsets`): a weak
+        line's own template is too noisy to place its minimum.
     refit : bool
         Fit every profile with its template.  Without, the positions are
         the Gaussian centres of ``fit`` plus the offset from a Gaussian
@@ -514,6 +643,12 @@ def template_minima(d, profile, count, line_of, fit, noise, *, clean=None, step=
         vertex_var = np.where(curv > 0, vertex_var, lim ** 2)
         if not refit:
             var = fit.minimum_var.copy()
+            if orientation is not None:  # profiles of one physical orientation
+                sign = np.where(np.asarray(orientation) < 0, -1.0, 1.0)
+                pooled, vertex_var = pool_offsets(
+                    sign * offset, vertex_var, line_width,
+                    np.bincount(line_of, ok & builds, minlength=n_lines) >= 3)
+                offset = sign * pooled
             break
         # refit every profile with its line's template: shift, depth, b0, b1
         slope_t = np.gradient(template, step, axis=1)
