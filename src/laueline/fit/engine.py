@@ -210,8 +210,6 @@ class _Problem:
 
 def _solve(problem, x0, robust):
     """One least-squares fit of all patterns; returns (x, converged, message)."""
-    import scipy.optimize
-
     problem.prepare()
     p = len(problem.parameters.free)
     if p == 0:
@@ -224,22 +222,32 @@ def _solve(problem, x0, robust):
         _, J = problem.raw(x, with_jacobian=True)
         return problem.whiten(J)
 
-    if robust:
-        sizes = {o.group_size for o in problem._obs}
-        norms = np.concatenate(problem.group_norms(x0))
-        f_scale = max(np.median(norms) / _median_norm(max(sizes)), 1e-3)
-        res = scipy.optimize.least_squares(fun, x0, jac=jac, method="trf", loss="soft_l1",
-                                           f_scale=f_scale, x_scale=1.0,
-                                           max_nfev=100 * (p + 1))
-    else:
-        res = scipy.optimize.least_squares(fun, x0, jac=jac, method="lm", x_scale=1.0,
-                                           max_nfev=100 * (p + 1))
+    fun(x0)  # a start the model refuses is the caller's input error, raised here
+    try:
+        res = _least_squares(problem, fun, jac, x0, p, robust)
+    except InputError as exc:
+        # the start was checked; a state refused on the way is the fit running away
+        raise FitError(f"the least-squares fit diverged: {exc}") from None
     if not np.all(np.isfinite(res.x)):
         raise FitError("the least-squares fit diverged to non-finite parameters")
     converged = bool(res.status > 0)
     message = "" if converged else f"the least-squares fit stopped without converging " \
                                    f"({res.message})"
     return res.x, converged, message
+
+
+def _least_squares(problem, fun, jac, x0, p, robust):
+    import scipy.optimize
+
+    if robust:
+        sizes = {o.group_size for o in problem._obs}
+        norms = np.concatenate(problem.group_norms(x0))
+        f_scale = max(np.median(norms) / _median_norm(max(sizes)), 1e-3)
+        return scipy.optimize.least_squares(fun, x0, jac=jac, method="trf", loss="soft_l1",
+                                            f_scale=f_scale, x_scale=1.0,
+                                            max_nfev=100 * (p + 1))
+    return scipy.optimize.least_squares(fun, x0, jac=jac, method="lm", x_scale=1.0,
+                                        max_nfev=100 * (p + 1))
 
 
 def _median_norm(k):
