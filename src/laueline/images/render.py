@@ -88,7 +88,7 @@ class RenderSettings:
 
 def render_pattern(crystal, zone, kv=200.0, disk_mrad=6.0, settings=None, *, strain=None,
                    x_axis=None, gmax=4.0, inner_potential=False, thickness_nm=None,
-                   absorption_ratio=0.1):
+                   absorption_ratio=0.1, beam_set=None, workers=1):
     """Render a central disk and return (image, truth).
 
     Parameters
@@ -105,6 +105,14 @@ def render_pattern(crystal, zone, kv=200.0, disk_mrad=6.0, settings=None, *, str
         apply: width, depth and visibility follow from the physics).
     absorption_ratio : float
         With ``thickness_nm``: a in U'_g = a U_g.
+    beam_set : (zolz_gmax, holz_excitation), optional
+        With ``thickness_nm``: the beam-set limits (1/angstrom) of both the
+        image and the truth's minima.  By default the image takes the
+        smaller set of :func:`laueline.dynamical.disk_intensity` and the
+        minima that of :func:`laueline.dynamical.dynamical_lines` (with its
+        convergence check).  Given, both take it and the check is skipped.
+    workers : int
+        With ``thickness_nm``: processes the disk's cells are spread over.
 
     Returns
     -------
@@ -144,7 +152,8 @@ def render_pattern(crystal, zone, kv=200.0, disk_mrad=6.0, settings=None, *, str
     t_rad = det.to_mrad(np.stack([x[inside], y[inside]], axis=1)) * 1e-3
     if thickness_nm is not None:
         return _render_dynamical(pattern, det, settings, plateau, inside, t_rad, radius_px,
-                                 thickness_nm, absorption_ratio, kv, gmax, inner_potential)
+                                 thickness_nm, absorption_ratio, kv, gmax, inner_potential,
+                                 beam_set, workers)
     factor = np.ones(t_rad.shape[0])
     depth = np.minimum(settings.line_depth * pattern.strength, 0.95)
     sigma_mrad = settings.line_width_mrad / (2 * np.sqrt(2 * np.log(2)))
@@ -181,25 +190,37 @@ def _detector_response(disk, settings):
 
 
 def _render_dynamical(pattern, det, settings, plateau, inside, t_rad, radius_px,
-                      thickness_nm, absorption_ratio, kv, gmax, inner_potential):
+                      thickness_nm, absorption_ratio, kv, gmax, inner_potential, beam_set,
+                      workers):
     """The Bloch-wave bright-field disk through the same detector, with its truth."""
     from ..dynamical import disk_intensity, dynamical_lines
 
-    lines = dynamical_lines(pattern, thickness_nm, absorption_ratio=absorption_ratio)
+    limits = {}
+    if beam_set is not None:
+        zolz_gmax, holz_excitation = (float(v) for v in beam_set)
+        limits = {"zolz_gmax": zolz_gmax, "holz_excitation": holz_excitation}
+    lines = dynamical_lines(pattern, thickness_nm, absorption_ratio=absorption_ratio,
+                            check_convergence=beam_set is None, **limits)
     t_mrad = t_rad * 1e3
     r = np.hypot(t_mrad[:, 0], t_mrad[:, 1])
     # the soft edge reaches a few pixels beyond the rim: those take the rim's intensity
     t_mrad = t_mrad * np.minimum(1.0, pattern.disk_mrad / np.maximum(r, 1e-12))[:, None]
     intensity, n_beams = disk_intensity(pattern, t_mrad, thickness_nm,
-                                        absorption_ratio=absorption_ratio)
+                                        absorption_ratio=absorption_ratio, workers=workers,
+                                        **limits)
     disk = plateau.copy()
     disk[inside] *= intensity / np.median(intensity[r <= pattern.disk_mrad])
     image = _detector_response(disk, settings)
     drawn = np.ones(pattern.n_lines, dtype=bool)
     truth = _truth(pattern, det, settings, radius_px, kv, gmax, inner_potential, drawn,
                    lines.contrast, set())
-    truth["dynamical"] = dict(lines.summary(), n_beams_image=n_beams,
-                              image="bright-field intensity of the Bloch-wave engine")
+    from ..dynamical import IMAGE_HOLZ_EXCITATION, IMAGE_ZOLZ_GMAX
+
+    truth["dynamical"] = dict(
+        lines.summary(), n_beams_image=n_beams,
+        image_zero_layer_gmax_inv_A=limits.get("zolz_gmax", IMAGE_ZOLZ_GMAX),
+        image_holz_excitation_inv_A=limits.get("holz_excitation", IMAGE_HOLZ_EXCITATION),
+        image="bright-field intensity of the Bloch-wave engine")
     for entry, i in zip(truth["lines"], range(pattern.n_lines)):
         found = np.isfinite(lines.shift_mrad[i])
         minima = lines.minima_mrad[i][found]
