@@ -228,10 +228,30 @@ def _render_dynamical(pattern, det, settings, plateau, inside, t_rad, radius_px,
             "minima_mrad": minima.tolist(),
             "minima_px": det.to_pixels(minima).tolist() if len(minima) else [],
             "shift_mrad": lines.shift_mrad[i][found].tolist(),
-            "contrast": float(lines.contrast[i]), "width_mrad": float(lines.width_mrad[i])}
+            "contrast": float(lines.contrast[i]), "width_mrad": float(lines.width_mrad[i]),
+            "resolvable": _resolvable(pattern.points_mrad[i], lines.contrast[i],
+                                      pattern.disk_mrad, len(minima))}
+    truth["dynamical"]["resolvable"] = (
+        f"contrast of {RESOLVABLE_CONTRAST:g} or more, a chord of {RESOLVABLE_CHORD_MRAD:g} "
+        "mrad or more inside the disk and at least 3 minima")
     for key in ("line_width_mrad", "line_depth"):
         truth["settings"].pop(key, None)
     return image, truth
+
+
+#: A dynamical line a detector should find (recorded in the truth): this
+#: much depth relative to the local disk (weak lines are found down to about
+#: 2 % at realistic dose) over a chord this long inside the disk.
+RESOLVABLE_CONTRAST = 0.03
+RESOLVABLE_CHORD_MRAD = 1.5
+
+
+def _resolvable(points_mrad, contrast, disk_mrad, n_minima):
+    points = np.asarray(points_mrad, dtype=float).reshape(-1, 2)
+    points = points[np.hypot(points[:, 0], points[:, 1]) <= disk_mrad]
+    chord = np.linalg.norm(points[-1] - points[0]) if len(points) > 1 else 0.0
+    return bool(np.isfinite(contrast) and contrast >= RESOLVABLE_CONTRAST
+                and chord >= RESOLVABLE_CHORD_MRAD and n_minima >= 3)
 
 
 def _truth(pattern, det, settings, radius_px, kv, gmax, inner_potential, drawn, depth, omitted):
