@@ -218,7 +218,7 @@ def test_seeded_detection_finds_the_resolvable_dynamical_lines(seeded):
 @pytest.mark.xfail(strict=True, reason=(
     "the weak line -2 2 16 (and on the strained pattern -2 2 -16; 3-4 % deep, below the "
     "resolvable mark) is "
-    "reported 1.5-4 px from their minima (median 1.6-3.1 px) with segment sigmas of "
+    "reported 1.5-4 px from its minima (median 1.6-3.1 px) with segment sigmas of "
     "0.3-0.7 px"))
 def test_seeded_detection_reports_no_spurious_line(seeded):
     det, found, truth = seeded
@@ -258,7 +258,7 @@ def _well_determined(fit_strain, truth_voigt, covariance, sigma_limit):
 
 
 THICKNESS_GUESS_NM = "214"   # the foil is 200 nm: a thickness known to about 7 %
-REFINE = ["refine", "Si", "--zone", "2", "3", "0", "--x-axis", "0", "0", "4", "--kv", "200",
+REFINE = ["refine", "Si", "--zone", "2", "3", "0", "--x-axis", "0", "0", "4",
           "--disk-mrad", "6", "--no-mirror", "--dynamical", "--thickness-nm", THICKNESS_GUESS_NM]
 
 
@@ -268,7 +268,7 @@ def dynamical_fits(tmp_path_factory):
     folder = tmp_path_factory.mktemp("dynamical-fits")
     cal, fit = folder / "calibration.json", folder / "strained.json"
     status_cal = main(REFINE + ["--image", str(DATA / "si-230-reference.tif"), "--model", "fixed",
-                                "--free", "kv", "--json", str(cal)])
+                                "--free", "kv", "--kv", "200", "--json", str(cal)])
     status_fit = main(REFINE + ["--image", str(DATA / "si-230-strained.tif"),
                                 "--calibration", str(cal), "--json", str(fit)])
     return (status_cal, json.loads(cal.read_text()) if cal.exists() else None,

@@ -13,7 +13,9 @@ Bloch-wave engine (:func:`laueline.dynamical.disk_intensity`): lines sit at
 their dynamical positions with their physical depth and width, and the
 zero-layer contrast of the disk is there too; the soft edge, background
 gradient, blur and noise follow as before, and the truth records the
-dynamical minima of every line beside its kinematic locus.
+dynamical minima of every line beside its kinematic locus, and marks the
+lines a detector should resolve (``RESOLVABLE_CONTRAST`` deep or more over a
+chord of ``RESOLVABLE_CHORD_MRAD`` inside the disk).
 """
 
 from __future__ import annotations
