@@ -181,7 +181,8 @@ class _Engine:
 
         A beam whose excitation error changes sign between the points (its
         line runs between them) counts as excited, so the corners of a cell
-        of the disk define the group of every point inside it."""
+        of the disk define the group of every point inside it.  Beams
+        ``exclude`` are left out altogether (neither exact nor Bethe)."""
         signed = self.signed_excitation(self.holz, t_mrad)
         s = np.where((signed.min(axis=0) < 0) & (signed.max(axis=0) > 0), 0.0,
                      np.abs(signed).min(axis=0))
