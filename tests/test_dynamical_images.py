@@ -90,6 +90,23 @@ def test_disk_intensity_depends_on_the_point_alone(si230):
     assert np.all((whole > 0) & (whole < 1))
 
 
+def test_line_minima_shared_among_processes_match_one_process():
+    """The render's truth computed with its lines spread over two processes
+    equals the single-process dynamical_lines (same arithmetic per line)."""
+    from laueline.images.render import _lines_in_processes
+
+    pattern = predict(SI, (2, 3, 0), 200.0, 2.0, min_strength=0.5, gmax=2.5)
+    options = dict(absorption_ratio=0.1, check_convergence=False)
+    one = dynamical_lines(pattern, 150.0, **options)
+    two = _lines_in_processes(pattern, 150.0, 2, options)
+    assert pattern.n_lines >= 2
+    for name in ("minima_mrad", "shift_mrad", "contrast_points", "width_points_mrad"):
+        for a, b in zip(getattr(one, name), getattr(two, name)):
+            assert np.array_equal(a, b, equal_nan=True), name
+    assert np.array_equal(one.contrast, two.contrast, equal_nan=True)
+    assert one.n_beams == two.n_beams
+
+
 # ---------------------------------------------------------------------------
 # laueline render --dynamical
 # ---------------------------------------------------------------------------

@@ -114,7 +114,8 @@ def render_pattern(crystal, zone, kv=200.0, disk_mrad=6.0, settings=None, *, str
         minima that of :func:`laueline.dynamical.dynamical_lines` (with its
         convergence check).  Given, both take it and the check is skipped.
     workers : int
-        With ``thickness_nm``: processes the disk's cells are spread over.
+        With ``thickness_nm``: processes the disk's cells and the truth's
+        lines are spread over (the same numbers as one process, sooner).
 
     Returns
     -------
@@ -201,8 +202,12 @@ def _render_dynamical(pattern, det, settings, plateau, inside, t_rad, radius_px,
     if beam_set is not None:
         zolz_gmax, holz_excitation = (float(v) for v in beam_set)
         limits = {"zolz_gmax": zolz_gmax, "holz_excitation": holz_excitation}
-    lines = dynamical_lines(pattern, thickness_nm, absorption_ratio=absorption_ratio,
-                            check_convergence=beam_set is None, **limits)
+    options = dict(absorption_ratio=absorption_ratio, check_convergence=beam_set is None,
+                   **limits)
+    if int(workers) > 1 and pattern.n_lines > 1:
+        lines = _lines_in_processes(pattern, thickness_nm, int(workers), options)
+    else:
+        lines = dynamical_lines(pattern, thickness_nm, **options)
     t_mrad = t_rad * 1e3
     r = np.hypot(t_mrad[:, 0], t_mrad[:, 1])
     # the soft edge reaches a few pixels beyond the rim: those take the rim's intensity
@@ -239,6 +244,50 @@ def _render_dynamical(pattern, det, settings, plateau, inside, t_rad, radius_px,
     for key in ("line_width_mrad", "line_depth"):
         truth["settings"].pop(key, None)
     return image, truth
+
+
+_LINES_STATE = {}
+
+
+def _lines_start(pattern, thickness_nm, options):
+    _LINES_STATE["args"] = (pattern, thickness_nm, options)
+
+
+def _lines_part(indices):
+    from ..dynamical import dynamical_lines
+
+    pattern, thickness_nm, options = _LINES_STATE["args"]
+    return dynamical_lines(pattern, thickness_nm, lines=indices, **options)
+
+
+def _lines_in_processes(pattern, thickness_nm, workers, options):
+    """dynamical_lines of every line, the lines shared among ``workers`` processes."""
+    import multiprocessing
+    from concurrent.futures import ProcessPoolExecutor
+    from dataclasses import replace
+
+    parts = [list(range(k, pattern.n_lines, workers)) for k in range(workers)]
+    method = "fork" if "fork" in multiprocessing.get_all_start_methods() else None
+    with ProcessPoolExecutor(max_workers=workers,
+                             mp_context=multiprocessing.get_context(method),
+                             initializer=_lines_start,
+                             initargs=(pattern, thickness_nm, options)) as pool:
+        results = list(pool.map(_lines_part, [p for p in parts if p]))
+    merged = results[0]
+    per_line = ("minima_mrad", "shift_mrad", "locus_mrad", "normal_points", "contrast_points",
+                "width_points_mrad")
+    fields = {name: list(getattr(merged, name)) for name in per_line}
+    contrast, width = merged.contrast.copy(), merged.width_mrad.copy()
+    for indices, part in zip([p for p in parts if p], results):
+        for i in indices:
+            for name in per_line:
+                fields[name][i] = getattr(part, name)[i]
+            contrast[i], width[i] = part.contrast[i], part.width_mrad[i]
+    checks = [r.convergence_mrad for r in results if r.convergence_mrad is not None]
+    return replace(merged, **fields, contrast=contrast, width_mrad=width,
+                   n_beams=max(r.n_beams for r in results),
+                   convergence_mrad=max(checks) if checks else None,
+                   warnings=[w for r in results for w in r.warnings])
 
 
 #: A dynamical line a detector should find (recorded in the truth): this
