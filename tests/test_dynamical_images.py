@@ -202,7 +202,7 @@ def _resolvable(truth, margin_px=8.0):
     return out
 
 
-FIXTURES = ["si-230-reference", "si-230-strained"]
+FIXTURES = ["si-230-reference", "si-230-strained", "si-340-reference", "si-340-strained"]
 
 
 @pytest.fixture(scope="module", params=FIXTURES)
@@ -232,13 +232,20 @@ def test_seeded_detection_finds_the_resolvable_dynamical_lines(seeded):
     assert max(off.values()) < 1.5, off
 
 
-@pytest.mark.xfail(strict=True, reason=(
+#: Known shortfalls of the seeded detection on these patterns (measured; the
+#: detection, not the patterns, is at fault: see each reason).
+WEAK_LINES_OFF = (
     "the weak line -2 2 16 (and on the strained pattern -2 2 -16; 3-4 % deep, below the "
-    "resolvable mark) is "
-    "reported 1.5-4 px from its minima (median 1.6-3.1 px) with segment sigmas of "
-    "0.3-0.7 px"))
-def test_seeded_detection_reports_no_spurious_line(seeded):
+    "resolvable mark) is reported 1.5-4 px from its minima (median 1.6-3.1 px) with "
+    "segment sigmas of 0.3-0.7 px")
+KNOWN_SPURIOUS = {"si-230-reference": WEAK_LINES_OFF, "si-230-strained": WEAK_LINES_OFF}
+
+
+def test_seeded_detection_reports_no_spurious_line(seeded, request):
     det, found, truth = seeded
+    reason = KNOWN_SPURIOUS.get(Path(truth["image"]).stem)
+    if reason:
+        request.applymarker(pytest.mark.xfail(strict=True, reason=reason))
     # a line found is spurious when it traces no truth line at all: its median
     # distance from the minima of every truth line exceeds 1.5 px (the rule of
     # tests/test_detect_physical.py)
@@ -250,10 +257,11 @@ def test_seeded_detection_reports_no_spurious_line(seeded):
 
 
 @pytest.mark.xfail(strict=True, reason=(
-    "seeded detection places the resolvable dynamical lines 0.17 px (reference) and "
-    "0.36 px (strained; 4 -2 14 is 0.95 px off along its whole length) rms from the "
-    "minima of the Bloch-wave intensity; on a noiseless, unblurred render of the "
-    "reference 0.09 px, with the 0.9 px point-spread function 0.15 px"))
+    "seeded detection places the resolvable dynamical lines 0.17 and 0.36 px rms (Si "
+    "[2 3 0] reference and strained; 4 -2 14 is 0.95 px off along its whole length) and "
+    "0.43 and 0.46 px rms (Si [3 4 0]; up to 0.85 px on -10 8 -2) from the minima of the "
+    "Bloch-wave intensity; on a noiseless, unblurred render of the [2 3 0] reference "
+    "0.09 px, with the 0.9 px point-spread function 0.15 px"))
 def test_seeded_detection_positions_within_a_tenth_of_a_pixel(seeded):
     det, found, truth = seeded
     errors = {h: math.sqrt(np.mean(_line_distance(found[h], pts, det.disk.center_px) ** 2))
