@@ -13,12 +13,12 @@ from .bloch import (DEFAULT_ABSORPTION_RATIO, MAX_BEAMS, MAX_THICKNESS_NM, bloch
 from .correction import (KINEMATIC_BIAS_FLOOR, DynamicalFit, KinematicBias,
                          dynamical_fit_document, dynamical_fit_text, kinematic_bias,
                          refine_dynamical, thickness_from_document)
-from .minima import (IMAGE_ZOLZ_GMAX, DynamicalLines, disk_intensity, disk_intensity_grid,
+from .minima import (IMAGE_HOLZ_EXCITATION, IMAGE_ZOLZ_GMAX, DynamicalLines, disk_intensity, disk_intensity_grid,
                      dynamical_lines)
 
 __all__ = [
     "MAX_BEAMS", "MAX_THICKNESS_NM", "DEFAULT_ABSORPTION_RATIO", "DEFAULT_ZOLZ_GMAX",
-    "DEFAULT_HOLZ_EXCITATION", "IMAGE_ZOLZ_GMAX",
+    "DEFAULT_HOLZ_EXCITATION", "IMAGE_ZOLZ_GMAX", "IMAGE_HOLZ_EXCITATION",
     "check_thickness", "check_absorption_ratio", "potential_coefficients", "coupling_matrix",
     "excitation_matrices", "bloch_amplitudes", "bloch_intensities",
     "BeamSet", "select_beams", "DynamicalLines", "dynamical_lines", "disk_intensity",

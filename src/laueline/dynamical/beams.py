@@ -166,15 +166,26 @@ class _Engine:
 
     def excitation(self, idx, t_mrad):
         """|s_g| (1/angstrom) of beams idx at points (p, 2): shape (p, len(idx))."""
+        return np.abs(self.signed_excitation(idx, t_mrad))
+
+    def signed_excitation(self, idx, t_mrad):
+        """s_g (1/angstrom) of beams idx at points (p, 2): shape (p, len(idx))."""
         k = incident_wavevectors(np.asarray(t_mrad, dtype=float).reshape(-1, 2), self.frame,
                                  self.K)
-        return np.abs(excitation_matrices(self.g[idx], k)) / (2.0 * self.K)
+        return excitation_matrices(self.g[idx], k) / (2.0 * self.K)
 
     def group(self, t_mrad, include=(), exclude=()):
         """Group for points t_mrad: the zero layer, ``include`` and the HOLZ beams
         excited below the bound somewhere on the points exactly; the other HOLZ
-        candidates and the far zero layer through Bethe potentials."""
-        s = self.excitation(self.holz, t_mrad).min(axis=0)
+        candidates and the far zero layer through Bethe potentials.
+
+        A beam whose excitation error changes sign between the points (its
+        line runs between them) counts as excited, so the corners of a cell
+        of the disk define the group of every point inside it.  Beams
+        ``exclude`` are left out altogether (neither exact nor Bethe)."""
+        signed = self.signed_excitation(self.holz, t_mrad)
+        s = np.where((signed.min(axis=0) < 0) & (signed.max(axis=0) > 0), 0.0,
+                     np.abs(signed).min(axis=0))
         # exact: excited below the bound, or coupled so strongly to the direct beam
         # that the Bethe ratio |U_g| / (2 K s_g) exceeds 1 %
         strength = np.abs(self.coupling[self.holz, 0]) / (2.0 * self.K)
@@ -183,9 +194,10 @@ class _Engine:
         exact = np.concatenate([np.arange(self.n_zolz), np.asarray(include, dtype=int),
                                 strong])
         exact = exact[np.sort(np.unique(exact, return_index=True)[1])]
-        exact = exact[~np.isin(exact, np.asarray(exclude, dtype=int))]
+        exclude = np.asarray(exclude, dtype=int)
+        exact = exact[~np.isin(exact, exclude)]
         weak = np.concatenate([self.zolz_weak, weak])
-        return _Group(self, exact, weak[~np.isin(weak, exact)])
+        return _Group(self, exact, weak[~np.isin(weak, exact) & ~np.isin(weak, exclude)])
 
 
 class _Group:

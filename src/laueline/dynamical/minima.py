@@ -19,7 +19,7 @@ from .beams import (DEFAULT_HOLZ_EXCITATION, DEFAULT_ZOLZ_GMAX, _CONVERGENCE_HOL
 from .bloch import DEFAULT_ABSORPTION_RATIO, check_absorption_ratio, check_thickness
 
 __all__ = ["DynamicalLines", "dynamical_lines", "disk_intensity", "disk_intensity_grid",
-           "IMAGE_ZOLZ_GMAX"]
+           "IMAGE_ZOLZ_GMAX", "IMAGE_HOLZ_EXCITATION"]
 
 
 
@@ -313,22 +313,30 @@ def _half_depth_width(grid, relative, k0, depth):
 # the whole disk
 # ---------------------------------------------------------------------------
 
-#: Zero-layer beams taken exactly for disk images (a smaller set than for the
-#: line minima: an image needs the look of the lines, not 1e-3 mrad).
+#: Zero-layer beams taken exactly for disk images, and the excitation error
+#: below which HOLZ beams are: smaller sets than for the line minima (they
+#: leave the minima within about 1.2e-3 mrad of :func:`dynamical_lines`'
+#: on Si [2 3 0], 200 kV, 200 nm; tests/test_dynamical_images.py).
 IMAGE_ZOLZ_GMAX = 1.5
+IMAGE_HOLZ_EXCITATION = 0.002
 _IMAGE_CELL_MRAD = 0.5
+_CORNERS = np.array([[0, 0], [1, 0], [0, 1], [1, 1]], dtype=float)
 
 
 def disk_intensity(pattern, t_mrad, thickness_nm, *, absorption_ratio=DEFAULT_ABSORPTION_RATIO,
-                   zolz_gmax=IMAGE_ZOLZ_GMAX, holz_excitation=DEFAULT_HOLZ_EXCITATION):
+                   zolz_gmax=IMAGE_ZOLZ_GMAX, holz_excitation=IMAGE_HOLZ_EXCITATION,
+                   exclude=(), cell_mrad=_IMAGE_CELL_MRAD, workers=1):
     """Direct-beam (bright-field) intensity at points of the central disk.
 
-    Every point is solved with the zero-layer beams up to ``zolz_gmax`` and
-    the HOLZ beams whose excitation error there is below ``holz_excitation``
-    somewhere in its 0.5 mrad square cell of the disk taken exactly, the
-    others (up to 0.05 1/angstrom, and the zero layer up to 1.6
-    ``zolz_gmax``) through Bethe potentials.  The points of a cell are solved
-    together as one stack.
+    The disk is cut into square cells ``cell_mrad`` wide.  Every point of a
+    cell is solved with the zero-layer beams up to ``zolz_gmax`` and the
+    HOLZ beams whose excitation error comes below ``holz_excitation``
+    somewhere in the cell (or whose Bethe ratio |U_g| / (2 K s_g) exceeds
+    1 %) taken exactly, the others (up to 0.05 1/angstrom, and the zero
+    layer up to 1.6 ``zolz_gmax``) through second-order Bethe potentials.
+    The beam set of a point thus depends on its position alone, not on the
+    other points asked for.  The points of a cell are solved together as
+    one stack of matrices.
 
     Parameters
     ----------
@@ -336,40 +344,101 @@ def disk_intensity(pattern, t_mrad, thickness_nm, *, absorption_ratio=DEFAULT_AB
         Crystal, frame, wave number and disk.
     t_mrad : array_like, shape (..., 2)
         Disk points in mrad.
-    thickness_nm, absorption_ratio, zolz_gmax, holz_excitation :
+    thickness_nm, absorption_ratio :
         As for :func:`dynamical_lines`.
+    zolz_gmax, holz_excitation : float
+        Beam-set limits (1/angstrom); by default smaller than those of
+        :func:`dynamical_lines` (``IMAGE_ZOLZ_GMAX``, ``IMAGE_HOLZ_EXCITATION``).
+    exclude : array_like of int, shape (k, 3), optional
+        Reflections left out of the calculation altogether (neither exact
+        nor Bethe beams): with a line's own reflection, the local disk
+        intensity beneath that line.
+    cell_mrad : float
+        Side of the cells, mrad.
+    workers : int
+        Processes the cells are spread over (1: this process alone).
 
     Returns
     -------
     intensity : ndarray, shape (...)
         |phi_0|^2 for unit incident intensity.
     n_beams : int
-        Largest number of exact beams of any group of points.
+        Largest number of exact beams of any cell.
     """
     t = check_thickness(thickness_nm)
     a = check_absorption_ratio(absorption_ratio)
+    workers = int(workers)
+    if workers < 1:
+        raise InputError(f"workers must be at least 1, got {workers}")
+    cell_mrad = float(cell_mrad)
+    if not 0.0 < cell_mrad <= 2.0 * float(pattern.disk_mrad):
+        raise InputError(f"cell_mrad must lie in (0, the disk diameter], got {cell_mrad:g}")
     points = np.asarray(t_mrad, dtype=float)
+    if points.shape[-1:] != (2,) or not np.all(np.isfinite(points)):
+        raise InputError("t_mrad must be an array of finite (tx, ty) points in mrad")
     flat = points.reshape(-1, 2)
     crystal, frame = pattern.crystal, pattern.frame
     K, kv = pattern.beam.wave_number, pattern.beam.kv
     beams = select_beams(crystal, frame, K, pattern.disk_mrad, gmax=pattern.gmax,
                          zolz_gmax=zolz_gmax, holz_excitation=holz_excitation)
-    engine = _Engine(crystal, beams, frame, K, kv, a, t * 10.0)
-    cand = engine.holz
-    # points are solved in square cells of the disk; each cell takes exactly the
-    # HOLZ beams excited below the bound at any of its points
-    cell = np.floor(flat / _IMAGE_CELL_MRAD).astype(np.int64)
-    _, inverse = np.unique(cell, axis=0, return_inverse=True)
+    exclude = np.asarray(exclude, dtype=np.int64).reshape(-1, 3)
+    engine = _Engine(crystal, beams, frame, K, kv, a, t * 10.0, extra_hkl=exclude)
+    leave_out = engine.index(exclude) if len(exclude) else np.zeros(0, dtype=int)
+    cell = np.floor(flat / cell_mrad).astype(np.int64)
+    cells, inverse = np.unique(cell, axis=0, return_inverse=True)
     inverse = np.ravel(inverse)
     order = np.argsort(inverse, kind="stable")
     bounds = np.flatnonzero(np.diff(inverse[order])) + 1
+    tasks = [((cells[inverse[members[0]]] + _CORNERS) * cell_mrad, flat[members])
+             for members in np.split(order, bounds)] if len(flat) else []
     out = np.empty(len(flat))
+    if workers == 1 or len(tasks) < 2:
+        results = _solve_cells(engine, leave_out, tasks)
+    else:
+        results = _solve_cells_in_processes(engine, leave_out, tasks, workers)
     n_beams = len(beams.zolz_hkl)
-    for members in np.split(order, bounds):
-        group = engine.group(flat[members])
-        n_beams = max(n_beams, len(group))
-        out[members] = group.direct(flat[members])
+    for members, (values, n) in zip(np.split(order, bounds) if len(flat) else [], results):
+        out[members] = values
+        n_beams = max(n_beams, n)
     return out.reshape(points.shape[:-1]), int(n_beams)
+
+
+def _solve_cells(engine, leave_out, tasks):
+    """[(intensities, exact beams)] of every (corners, points) task."""
+    results = []
+    for corners, members in tasks:
+        group = engine.group(corners, exclude=leave_out)
+        results.append((group.direct(members), len(group)))
+    return results
+
+
+_WORKER_STATE = {}
+
+
+def _worker_start(engine, leave_out):
+    _WORKER_STATE["args"] = (engine, leave_out)
+
+
+def _worker_solve(tasks):
+    return _solve_cells(*_WORKER_STATE["args"], tasks)
+
+
+def _solve_cells_in_processes(engine, leave_out, tasks, workers):
+    """_solve_cells spread over ``workers`` processes, in batches of similar size."""
+    import multiprocessing
+    from concurrent.futures import ProcessPoolExecutor
+
+    # about four batches per process, cut by point count so that none lags far behind
+    size = np.cumsum([len(m) for _, m in tasks])
+    n_batches = min(len(tasks), 4 * workers)
+    cut = np.searchsorted(size, size[-1] * np.arange(1, n_batches) / n_batches)
+    batches = [b for b in np.split(np.arange(len(tasks)), np.unique(cut)) if len(b)]
+    method = "fork" if "fork" in multiprocessing.get_all_start_methods() else None
+    with ProcessPoolExecutor(max_workers=workers,
+                             mp_context=multiprocessing.get_context(method),
+                             initializer=_worker_start, initargs=(engine, leave_out)) as pool:
+        parts = pool.map(_worker_solve, [[tasks[i] for i in b] for b in batches])
+        return [r for part in parts for r in part]
 
 
 def disk_intensity_grid(pattern, thickness_nm, *, absorption_ratio=DEFAULT_ABSORPTION_RATIO,

@@ -13,7 +13,9 @@ Bloch-wave engine (:func:`laueline.dynamical.disk_intensity`): lines sit at
 their dynamical positions with their physical depth and width, and the
 zero-layer contrast of the disk is there too; the soft edge, background
 gradient, blur and noise follow as before, and the truth records the
-dynamical minima of every line beside its kinematic locus.
+dynamical minima of every line beside its kinematic locus, and marks the
+lines a detector should resolve (``RESOLVABLE_CONTRAST`` deep or more over a
+chord of ``RESOLVABLE_CHORD_MRAD`` inside the disk).
 """
 
 from __future__ import annotations
@@ -88,7 +90,7 @@ class RenderSettings:
 
 def render_pattern(crystal, zone, kv=200.0, disk_mrad=6.0, settings=None, *, strain=None,
                    x_axis=None, gmax=4.0, inner_potential=False, thickness_nm=None,
-                   absorption_ratio=0.1):
+                   absorption_ratio=0.1, beam_set=None, workers=1):
     """Render a central disk and return (image, truth).
 
     Parameters
@@ -105,6 +107,15 @@ def render_pattern(crystal, zone, kv=200.0, disk_mrad=6.0, settings=None, *, str
         apply: width, depth and visibility follow from the physics).
     absorption_ratio : float
         With ``thickness_nm``: a in U'_g = a U_g.
+    beam_set : (zolz_gmax, holz_excitation), optional
+        With ``thickness_nm``: the beam-set limits (1/angstrom) of both the
+        image and the truth's minima.  By default the image takes the
+        smaller set of :func:`laueline.dynamical.disk_intensity` and the
+        minima that of :func:`laueline.dynamical.dynamical_lines` (with its
+        convergence check).  Given, both take it and the check is skipped.
+    workers : int
+        With ``thickness_nm``: processes the disk's cells and the truth's
+        lines are spread over (the same numbers as one process, sooner).
 
     Returns
     -------
@@ -144,7 +155,8 @@ def render_pattern(crystal, zone, kv=200.0, disk_mrad=6.0, settings=None, *, str
     t_rad = det.to_mrad(np.stack([x[inside], y[inside]], axis=1)) * 1e-3
     if thickness_nm is not None:
         return _render_dynamical(pattern, det, settings, plateau, inside, t_rad, radius_px,
-                                 thickness_nm, absorption_ratio, kv, gmax, inner_potential)
+                                 thickness_nm, absorption_ratio, kv, gmax, inner_potential,
+                                 beam_set, workers)
     factor = np.ones(t_rad.shape[0])
     depth = np.minimum(settings.line_depth * pattern.strength, 0.95)
     sigma_mrad = settings.line_width_mrad / (2 * np.sqrt(2 * np.log(2)))
@@ -181,25 +193,41 @@ def _detector_response(disk, settings):
 
 
 def _render_dynamical(pattern, det, settings, plateau, inside, t_rad, radius_px,
-                      thickness_nm, absorption_ratio, kv, gmax, inner_potential):
+                      thickness_nm, absorption_ratio, kv, gmax, inner_potential, beam_set,
+                      workers):
     """The Bloch-wave bright-field disk through the same detector, with its truth."""
     from ..dynamical import disk_intensity, dynamical_lines
 
-    lines = dynamical_lines(pattern, thickness_nm, absorption_ratio=absorption_ratio)
+    limits = {}
+    if beam_set is not None:
+        zolz_gmax, holz_excitation = (float(v) for v in beam_set)
+        limits = {"zolz_gmax": zolz_gmax, "holz_excitation": holz_excitation}
+    options = dict(absorption_ratio=absorption_ratio, check_convergence=beam_set is None,
+                   **limits)
+    if int(workers) > 1 and pattern.n_lines > 1:
+        lines = _lines_in_processes(pattern, thickness_nm, int(workers), options)
+    else:
+        lines = dynamical_lines(pattern, thickness_nm, **options)
     t_mrad = t_rad * 1e3
     r = np.hypot(t_mrad[:, 0], t_mrad[:, 1])
     # the soft edge reaches a few pixels beyond the rim: those take the rim's intensity
     t_mrad = t_mrad * np.minimum(1.0, pattern.disk_mrad / np.maximum(r, 1e-12))[:, None]
     intensity, n_beams = disk_intensity(pattern, t_mrad, thickness_nm,
-                                        absorption_ratio=absorption_ratio)
+                                        absorption_ratio=absorption_ratio, workers=workers,
+                                        **limits)
     disk = plateau.copy()
     disk[inside] *= intensity / np.median(intensity[r <= pattern.disk_mrad])
     image = _detector_response(disk, settings)
     drawn = np.ones(pattern.n_lines, dtype=bool)
     truth = _truth(pattern, det, settings, radius_px, kv, gmax, inner_potential, drawn,
                    lines.contrast, set())
-    truth["dynamical"] = dict(lines.summary(), n_beams_image=n_beams,
-                              image="bright-field intensity of the Bloch-wave engine")
+    from ..dynamical import IMAGE_HOLZ_EXCITATION, IMAGE_ZOLZ_GMAX
+
+    truth["dynamical"] = dict(
+        lines.summary(), n_beams_image=n_beams,
+        image_zero_layer_gmax_inv_A=limits.get("zolz_gmax", IMAGE_ZOLZ_GMAX),
+        image_holz_excitation_inv_A=limits.get("holz_excitation", IMAGE_HOLZ_EXCITATION),
+        image="bright-field intensity of the Bloch-wave engine")
     for entry, i in zip(truth["lines"], range(pattern.n_lines)):
         found = np.isfinite(lines.shift_mrad[i])
         minima = lines.minima_mrad[i][found]
@@ -207,10 +235,74 @@ def _render_dynamical(pattern, det, settings, plateau, inside, t_rad, radius_px,
             "minima_mrad": minima.tolist(),
             "minima_px": det.to_pixels(minima).tolist() if len(minima) else [],
             "shift_mrad": lines.shift_mrad[i][found].tolist(),
-            "contrast": float(lines.contrast[i]), "width_mrad": float(lines.width_mrad[i])}
+            "contrast": float(lines.contrast[i]), "width_mrad": float(lines.width_mrad[i]),
+            "resolvable": _resolvable(pattern.points_mrad[i], lines.contrast[i],
+                                      pattern.disk_mrad, len(minima))}
+    truth["dynamical"]["resolvable"] = (
+        f"contrast of {RESOLVABLE_CONTRAST:g} or more, a chord of {RESOLVABLE_CHORD_MRAD:g} "
+        "mrad or more inside the disk and at least 3 minima")
     for key in ("line_width_mrad", "line_depth"):
         truth["settings"].pop(key, None)
     return image, truth
+
+
+_LINES_STATE = {}
+
+
+def _lines_start(pattern, thickness_nm, options):
+    _LINES_STATE["args"] = (pattern, thickness_nm, options)
+
+
+def _lines_part(indices):
+    from ..dynamical import dynamical_lines
+
+    pattern, thickness_nm, options = _LINES_STATE["args"]
+    return dynamical_lines(pattern, thickness_nm, lines=indices, **options)
+
+
+def _lines_in_processes(pattern, thickness_nm, workers, options):
+    """dynamical_lines of every line, the lines shared among ``workers`` processes."""
+    import multiprocessing
+    from concurrent.futures import ProcessPoolExecutor
+    from dataclasses import replace
+
+    parts = [list(range(k, pattern.n_lines, workers)) for k in range(workers)]
+    method = "fork" if "fork" in multiprocessing.get_all_start_methods() else None
+    with ProcessPoolExecutor(max_workers=workers,
+                             mp_context=multiprocessing.get_context(method),
+                             initializer=_lines_start,
+                             initargs=(pattern, thickness_nm, options)) as pool:
+        results = list(pool.map(_lines_part, [p for p in parts if p]))
+    merged = results[0]
+    per_line = ("minima_mrad", "shift_mrad", "locus_mrad", "normal_points", "contrast_points",
+                "width_points_mrad")
+    fields = {name: list(getattr(merged, name)) for name in per_line}
+    contrast, width = merged.contrast.copy(), merged.width_mrad.copy()
+    for indices, part in zip([p for p in parts if p], results):
+        for i in indices:
+            for name in per_line:
+                fields[name][i] = getattr(part, name)[i]
+            contrast[i], width[i] = part.contrast[i], part.width_mrad[i]
+    checks = [r.convergence_mrad for r in results if r.convergence_mrad is not None]
+    return replace(merged, **fields, contrast=contrast, width_mrad=width,
+                   n_beams=max(r.n_beams for r in results),
+                   convergence_mrad=max(checks) if checks else None,
+                   warnings=[w for r in results for w in r.warnings])
+
+
+#: A dynamical line a detector should find (recorded in the truth): this
+#: much depth relative to the local disk (weak lines are found down to about
+#: 2 % at realistic dose) over a chord this long inside the disk.
+RESOLVABLE_CONTRAST = 0.03
+RESOLVABLE_CHORD_MRAD = 1.5
+
+
+def _resolvable(points_mrad, contrast, disk_mrad, n_minima):
+    points = np.asarray(points_mrad, dtype=float).reshape(-1, 2)
+    points = points[np.hypot(points[:, 0], points[:, 1]) <= disk_mrad]
+    chord = np.linalg.norm(points[-1] - points[0]) if len(points) > 1 else 0.0
+    return bool(np.isfinite(contrast) and contrast >= RESOLVABLE_CONTRAST
+                and chord >= RESOLVABLE_CHORD_MRAD and n_minima >= 3)
 
 
 def _truth(pattern, det, settings, radius_px, kv, gmax, inner_potential, drawn, depth, omitted):
