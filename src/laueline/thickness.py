@@ -511,6 +511,15 @@ def _find_disks(y, jump, noise, noise_jump, reach):
                          "it runs through both disks along +g, direct disk first")
     background = float(np.median(outside)) if len(outside) >= 10 else \
         float(np.percentile(beyond, 5))
+    if len(outside) >= 10:
+        # the background may slope across the pattern: a straight line through the
+        # level before the direct disk and the lowest level just after it (the gap
+        # between the disks, or the diffracted disk's dark outer fringes)
+        near = smooth[start:start + max(width // 2, 1)]
+        k_low = start + int(np.argmin(near))
+        x_out = 0.5 * (len(outside) - 1)
+        slope = (smooth[k_low] - background) / (k_low - x_out)
+        background = background + slope * (np.arange(start, n) - x_out)
     signal = np.flatnonzero(beyond > background + 5 * noise / math.sqrt(size))
     if len(signal) == 0:
         raise InputError("no diffracted disk stands out from the background after the "
@@ -937,6 +946,10 @@ class _ProfileModel:
         self.edges, self.two_theta = edges, two_theta_mrad
         self.weights = np.ones_like(y)
         self._cache = (None, None)
+        # background: a constant and a linear trend across the profile (the
+        # diffuse and inelastic background of a pattern is rarely flat)
+        middle, half = 0.5 * (x[0] + x[-1]), 0.5 * (x[-1] - x[0])
+        self.background = np.stack([np.ones_like(x), (x - middle) / half], axis=1)
 
     def _rows(self, thickness):
         if self._cache[0] != thickness:
@@ -954,8 +967,9 @@ class _ProfileModel:
         d1 = _coverage(self.x, self.step, *(self.edges + scale * self.two_theta))
         i0 = np.interp(u0, self.grid, rows[:, 0])
         ig = np.interp(u1, self.grid, rows[:, 1])
-        cols = np.stack([np.ones_like(self.x), d0 + d1, d0 * i0 + d1 * ig], axis=1)
-        return gaussian_filter1d(cols, blur / self.step, axis=0, mode="nearest")
+        blurred = gaussian_filter1d(np.stack([d0 + d1, d0 * i0 + d1 * ig], axis=1),
+                                    blur / self.step, axis=0, mode="nearest")
+        return np.concatenate([self.background, blurred], axis=1)
 
     def solve(self, params):
         cols = self.basis(params)
@@ -1151,7 +1165,7 @@ def fit_profile(position, intensity, crystal, hkl, *, kv=200.0, n_beams=DEFAULT_
     best = _local_fit(model, best.x, lower, upper, x_scale)
     fitted, coef = model.solve(best.x)
     resid = model.residuals(best.x)
-    dof = max(len(y) - len(best.x) - 3, 1)
+    dof = max(len(y) - len(best.x) - 4, 1)
     gain = float(np.sum(resid ** 2) / dof)         # variance per unit intensity, fitted
     noise_gain = _noise_gain(y, np.maximum(fitted, floor))
     red_chi2 = gain / noise_gain
@@ -1215,7 +1229,7 @@ def fit_profile(position, intensity, crystal, hkl, *, kv=200.0, n_beams=DEFAULT_
         model_variants=variants, scale_px_per_mrad=float(best.x[1]),
         scale_sigma_px_per_mrad=float(sig[1]), bragg_position=float(best.x[2]),
         bragg_position_sigma=float(sig[2]), blur_px=float(best.x[3]),
-        background=float(coef[0]), diffuse=float(coef[1]), amplitude=float(coef[2]),
+        background=float(coef[0]), diffuse=float(coef[2]), amplitude=float(coef[3]),
         reduced_chi2=red_chi2, n_samples=len(y), n_beams=int(n_beams), absorption_ratio=a,
         absorption_fitted=bool(fit_absorption),
         hkl=hkl, kv=float(kv), separation=float(best.x[1] * two_theta), position=x,
