@@ -44,7 +44,10 @@ __all__ = ["DynamicalFit", "refine_dynamical", "KinematicBias", "kinematic_bias"
 
 #: Fractional thickness uncertainty assumed when none is given.
 DEFAULT_THICKNESS_FRACTION = 0.1
-_MAX_ROUNDS = 10
+_MAX_ROUNDS = 6
+#: A round whose change is not below this fraction of the previous one ends the
+#: iteration (from the third round on): the correction has reached its noise.
+_CONTRACTION = 0.7
 _SETTLED = 0.1  # strain change below this fraction of its sigma ends the iteration
 _STRAIN_FLOOR = 1e-6
 #: A crossing the shifts would move further than this (mrad) is left out of a
@@ -200,13 +203,23 @@ def _fitted_pattern(result, crystal, hkl_needed):
 
 
 def _line_shift_model(pattern, hkl_needed, thickness_nm, absorption_ratio, check,
-                      zolz_gmax=DEFAULT_ZOLZ_GMAX, n_points=None):
-    """Per needed line: (along-line coordinates, shifts) for interpolation, and the run."""
+                      zolz_gmax=DEFAULT_ZOLZ_GMAX, n_points=None, fractions=None):
+    """Per needed line: (along-line coordinates, shifts, normal, along, smooth curve),
+    and the run.
+
+    ``fractions`` (from :func:`_points_used` of an earlier run) keeps the points
+    of that run, so that the shifts at a slightly changed state, or for a
+    variation of the model, are computed at the same places along the lines.
+    """
     index = {tuple(h): i for i, h in enumerate(pattern.hkl.tolist())}
     wanted = sorted({index[tuple(h)] for h in hkl_needed})
+    given = None
+    if fractions is not None:
+        given = {index[h]: f for h, f in fractions.items() if h in index and len(f)}
     run = dynamical_lines(pattern, thickness_nm, absorption_ratio=absorption_ratio,
                           lines=wanted, check_convergence=check, zolz_gmax=zolz_gmax,
-                          n_points=_SHIFT_POINTS if n_points is None else n_points)
+                          n_points=_SHIFT_POINTS if n_points is None else n_points,
+                          fractions=given)
     model = {}
     for i in wanted:
         normal = pattern.normal[i]
@@ -217,6 +230,11 @@ def _line_shift_model(pattern, hkl_needed, thickness_nm, absorption_ratio, check
         q, shift = q[order], run.shift_mrad[i][ok][order]
         model[tuple(pattern.hkl[i])] = (q, shift, normal, along, _smooth_shift(q, shift))
     return model, run
+
+
+def _points_used(run):
+    """'h k l' -> chord fractions of the points of a run (lines computed only)."""
+    return {tuple(int(v) for v in h): f for h, f in zip(run.hkl, run.fractions) if len(f)}
 
 
 #: Points per line where the shifts are computed: a cubic through nine points
@@ -234,14 +252,14 @@ def _smooth_shift(q, shift):
     of its neighbours; near a crossing the two lines' minima bend toward each
     other, and a crossing is where the smooth continuations of both lines
     meet.  A least-squares polynomial in the along-line coordinate (degree 3
-    from nine points, a straight line from fewer) describes that continuation; piecewise
+    from seven points or more, a straight line from fewer) describes that continuation; piecewise
     linear interpolation would follow the last sampled bend instead.
     """
     if len(q) == 0:
         return np.zeros(1)
-    # fewer points than the usual nine (an estimate, or lines crossed by many
-    # others) give a straight trend: a cubic through five points follows bends
-    degree = _SHIFT_DEGREE if len(q) >= _SHIFT_POINTS else min(1, len(q) - 1)
+    # fewer than seven points (an estimate, or lines crossed by many others) give
+    # a straight trend: a cubic through five points follows every bend
+    degree = _SHIFT_DEGREE if len(q) >= _SHIFT_POINTS - 2 else min(1, len(q) - 1)
     return np.polyfit(q, shift, degree) if len(q) > 1 else np.array([shift[0]])
 
 
@@ -427,20 +445,39 @@ def refine_dynamical(crystal, zone, observations, *, thickness_nm, thickness_sig
     current, settled, rounds, n_beams = kinematic, False, 0, 0
     changes = []
     model = None
+    states = []
+    points_used = None      # chosen at the kinematic state, then kept
     for rounds in range(1, _MAX_ROUNDS + 1):
         pattern = _fitted_pattern(current, crystal, hkl_needed)
         model, run = _line_shift_model(pattern, hkl_needed, t, a, check=False,
-                                       zolz_gmax=zolz_gmax)
+                                       zolz_gmax=zolz_gmax, fractions=points_used)
+        points_used = _points_used(run) if points_used is None else points_used
         n_beams = max(n_beams, run.n_beams)
         new = fit(correct(current, model))
         change = _settled(new, current)
         changes.append(change)
         current = new
+        states.append(current)
         if change < _SETTLED:
+            settled = True
+            break
+        if rounds >= 3 and change >= _CONTRACTION * changes[-2]:
+            # the rounds no longer contract: what is left is the numerical noise of
+            # the shifts (minima found to about 1e-4 mrad, points that move along
+            # the lines), which directions the data barely fix amplify
             settled = True
             break
     if not settled:
         warnings.append(f"the dynamical correction did not settle in {_MAX_ROUNDS} rounds")
+    cov_rounds = np.zeros((6, 6))
+    if len(states) >= 3 and changes[-1] >= _SETTLED and current.model != "fixed":
+        # the scatter of the strain over the rounds after the first is part of the
+        # correction's uncertainty
+        spread = np.array([_voigt(r) for r in states[1:]])
+        cov_rounds = np.cov(spread.T)
+        warnings.append(f"the dynamical correction settled to its numerical noise after "
+                        f"{rounds} rounds (changes up to {max(changes[1:]):.2g} sigma); the "
+                        "scatter over the rounds is part of the systematic uncertainty")
 
     # systematic part: one correction step per variation of the model
     pattern = _fitted_pattern(current, crystal, hkl_needed)
@@ -452,14 +489,14 @@ def refine_dynamical(crystal, zone, observations, *, thickness_nm, thickness_sig
     moved, params, results = {}, {}, {}
     for name, (tv, av) in variants.items():
         vmodel, _ = _line_shift_model(pattern, hkl_needed, tv, av, check=False,
-                                      zolz_gmax=zolz_gmax)
+                                      zolz_gmax=zolz_gmax, fractions=points_used)
         res = fit(correct(current, vmodel), None if held is None else held[name])
         moved[name] = _voigt(res) - _voigt(current)
         params[name] = res.values - current.values
         results[name] = res
     d_t = 0.5 * (moved["thickness+"] - moved["thickness-"])
     d_a = 0.5 * (moved["absorption*2"] - moved["absorption/2"])
-    cov_sys = np.outer(d_t, d_t) + np.outer(d_a, d_a)
+    cov_sys = np.outer(d_t, d_t) + np.outer(d_a, d_a) + cov_rounds
     p_t = 0.5 * (params["thickness+"] - params["thickness-"])
     p_a = 0.5 * (params["absorption*2"] - params["absorption/2"])
     p_sig = np.sqrt(p_t ** 2 + p_a ** 2)
