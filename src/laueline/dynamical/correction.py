@@ -48,6 +48,8 @@ _MAX_ROUNDS = 6
 #: A round whose change is not below this fraction of the previous one ends the
 #: iteration (from the third round on): the correction has reached its noise.
 _CONTRACTION = 0.7
+#: ... provided the change is below this many sigma (larger changes are not noise).
+_NOISE_FLOOR = 1.0
 _SETTLED = 0.1  # strain change below this fraction of its sigma ends the iteration
 _STRAIN_FLOOR = 1e-6
 #: A crossing the shifts would move further than this (mrad) is left out of a
@@ -151,6 +153,7 @@ class DynamicalFit:
             "thickness_nm": self.thickness_nm, "thickness_sigma_nm": self.thickness_sigma_nm,
             "absorption_ratio": self.absorption_ratio, "n_beams": self.n_beams,
             "rounds": self.rounds, "settled": self.settled,
+            "round_changes_sigma": list(self.round_changes),
             "strain_voigt": self.strain_voigt, "strain_voigt_kinematic":
                 self.strain_voigt_kinematic,
             "covariance_voigt": self.covariance_voigt,
@@ -268,7 +271,10 @@ def _shift_at(model, hkl, points_mrad):
     q, shift, normal, along, coef = model[tuple(hkl)]
     if not len(q):
         return np.zeros(len(points_mrad)), normal
-    return np.polyval(coef, np.asarray(points_mrad) @ along), normal
+    # beyond the first and last point the curve is held at its end values: a
+    # cubic extrapolated past its points can run off by tenths of a mrad
+    inside = np.clip(np.asarray(points_mrad) @ along, q[0], q[-1])
+    return np.polyval(coef, inside), normal
 
 
 def _crossing_corrections_px(state, model, ha, hb):
@@ -461,7 +467,7 @@ def refine_dynamical(crystal, zone, observations, *, thickness_nm, thickness_sig
         if change < _SETTLED:
             settled = True
             break
-        if rounds >= 3 and change >= _CONTRACTION * changes[-2]:
+        if rounds >= 3 and change < _NOISE_FLOOR and change >= _CONTRACTION * changes[-2]:
             # the rounds no longer contract: what is left is the numerical noise of
             # the shifts (minima found to about 1e-4 mrad, points that move along
             # the lines), which directions the data barely fix amplify
