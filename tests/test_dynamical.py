@@ -14,6 +14,7 @@ from laueline.dynamical import (MAX_BEAMS, bloch_amplitudes, bloch_intensities,
                                 potential_coefficients)
 from laueline.errors import InputError
 from laueline.frame import incident_wavevectors, zone_frame
+from laueline.lines import line_parameters, locus_samples
 from laueline.optics import relativistic_factor, wave_number
 from laueline.thickness import kinematic_extinction_distance_nm
 
@@ -144,6 +145,45 @@ def test_many_beams_against_integrated_coupled_equations(si):
         # 1e-6: the integrator's tolerance is 1e-11 per step over ~1e3 steps
         np.testing.assert_allclose(intensity[row], ref, atol=1e-6, rtol=0)
         assert ref[1:].sum() > 0.01  # several beams carry intensity
+
+
+def test_disk_solver_against_matrix_exponential(si, si230):
+    # Independent numerical route for the solver of the disk calculation: the same
+    # structure matrix (exact beams, Bethe potentials of the weak ones) propagated
+    # by scipy.linalg.expm (Pade approximation with scaling and squaring, Al-Mohy and
+    # Higham 2009) instead of the eigen-decomposition.  The points lie on the locus
+    # of a strong HOLZ line, where a HOLZ branch meets the zero-layer branches and the
+    # eigenvalues come closest (the hardest case for eigenvectors).
+    from scipy.linalg import expm
+
+    from laueline.dynamical import select_beams
+    from laueline.dynamical.beams import _Engine
+
+    pattern = si230
+    thickness_nm = 230.0
+    beams = select_beams(si, pattern.frame, pattern.beam.wave_number, pattern.disk_mrad,
+                         gmax=pattern.gmax, zolz_gmax=1.5)
+    engine = _Engine(si, beams, pattern.frame, pattern.beam.wave_number, pattern.beam.kv, 0.1,
+                     thickness_nm * 10.0, extra_hkl=pattern.hkl)
+    line = int(np.argmax(np.where(pattern.laue_zone >= 1, pattern.strength, 0.0)))
+    lp = line_parameters(si.g_vectors(pattern.hkl[line:line + 1]), pattern.frame,
+                         pattern.beam.wave_number)
+    points = locus_samples(lp, pattern.disk_mrad * 1e-3, [-0.6, -0.1, 0.3, 0.8])[0][0] * 1e3
+    group = engine.group(points, include=engine.index(pattern.hkl[line]))
+    assert len(group.weak) > 0 and len(group) > 20  # Bethe terms and many beams in play
+    direct = group.direct(points)
+    k = incident_wavevectors(points, pattern.frame, pattern.beam.wave_number)
+    kn = -k @ pattern.frame.beam_direction
+    g = engine.g
+    for row in range(len(points)):
+        diag = -(2.0 * g[group.exact] @ k[row] + np.sum(g[group.exact] ** 2, axis=1))
+        weak_s = -(2.0 * g[group.weak] @ k[row] + np.sum(g[group.weak] ** 2, axis=1))
+        matrix = (group.coupling - (group.to_weak / weak_s) @ group.from_weak
+                  + np.diag(diag))
+        phi = expm((2j * math.pi * thickness_nm * 10.0 / (2.0 * kn[row])) * matrix)[:, 0]
+        # 1e-9 of the incident intensity: both routes are exact up to rounding in a
+        # matrix whose norm times the thickness is a few hundred
+        assert abs(direct[row] - abs(phi[0]) ** 2) < 1e-9
 
 
 def test_no_absorption_conserves_intensity(si):

@@ -402,11 +402,17 @@ def _cmd_refine(args):
             single = {k: v for k, v in defaults.items() if v is not None}
             if spec.detection is None:
                 single["pixel_frame"] = frame
+            # a calibration made with --dynamical carries how its voltage and scale
+            # move with the thickness and absorption: the same foil's variations
+            changes = None
+            if args.calibration:
+                changes = (report.read_json(args.calibration, "laueline.fit").get("dynamical")
+                           or {}).get("calibration_changes")
             dynamical = refine_dynamical(crystal, tuple(args.zone), observations,
                                          thickness_nm=args.thickness_nm,
                                          thickness_sigma_nm=args.thickness_sigma_nm,
                                          absorption_ratio=args.absorption_ratio,
-                                         **single, **options)
+                                         calibration_changes=changes, **single, **options)
             result = dynamical.result
         else:
             if distortion_mode == "test":

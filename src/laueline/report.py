@@ -678,6 +678,8 @@ def thickness_fit_document(result, structure=None):
             "blur_sigma": result.blur_px,
             "background": result.background, "diffuse": result.diffuse,
             "amplitude": result.amplitude,
+            "potential_scale": result.potential_scale,
+            "potential_scale_sigma": result.potential_scale_sigma,
             "reduced_chi2": result.reduced_chi2, "n_samples": result.n_samples,
         },
         "profile": None if det is None else {

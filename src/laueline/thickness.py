@@ -511,6 +511,15 @@ def _find_disks(y, jump, noise, noise_jump, reach):
                          "it runs through both disks along +g, direct disk first")
     background = float(np.median(outside)) if len(outside) >= 10 else \
         float(np.percentile(beyond, 5))
+    if len(outside) >= 10:
+        # the background may slope across the pattern: a straight line through the
+        # level before the direct disk and the lowest level just after it (the gap
+        # between the disks, or the diffracted disk's dark outer fringes)
+        near = smooth[start:start + max(width // 2, 1)]
+        k_low = start + int(np.argmin(near))
+        x_out = 0.5 * (len(outside) - 1)
+        slope = (smooth[k_low] - background) / (k_low - x_out)
+        background = background + slope * (np.arange(start, n) - x_out)
     signal = np.flatnonzero(beyond > background + 5 * noise / math.sqrt(size))
     if len(signal) == 0:
         raise InputError("no diffracted disk stands out from the background after the "
@@ -735,6 +744,11 @@ def detect_profile(position, intensity):
 # ---------------------------------------------------------------------------
 
 DEFAULT_ROW_BEAMS = 9
+#: The profile fit scales the row's potential coefficients within 1 +- this.
+_POTENTIAL_RANGE = 0.1
+#: Parameters moved while the thickness and absorption are searched: all but the
+#: potential scale (every new scale needs new Bloch states), freed at the end.
+_SEARCH_FREE = np.arange(4)
 
 
 def systematic_row(hkl, n_beams=DEFAULT_ROW_BEAMS):
@@ -829,12 +843,13 @@ class _RowStates:
     propagation through the thickness is repeated here.
     """
 
-    def __init__(self, crystal, hkl, tilt_mrad, kv, n_beams, absorption_ratio):
+    def __init__(self, crystal, hkl, tilt_mrad, kv, n_beams, absorption_ratio,
+                 potential_scale=1.0):
         from .dynamical import coupling_matrix, excitation_matrices
 
         beams = systematic_row(hkl, n_beams)
         k, normal = row_wavevectors(crystal, hkl, tilt_mrad, kv)
-        coupling = coupling_matrix(crystal, beams, kv, absorption_ratio)
+        coupling = potential_scale * coupling_matrix(crystal, beams, kv, absorption_ratio)
         diagonal = excitation_matrices(crystal.g_vectors(beams), k)
         mats = np.broadcast_to(coupling, (len(k),) + coupling.shape).copy()
         idx = np.arange(len(beams))
@@ -904,6 +919,8 @@ class ProfileFitResult(ResultMixin):
     warnings: list = field(default_factory=list)
     success: bool = True
     failure: str | None = None
+    potential_scale: float = 1.0
+    potential_scale_sigma: float = 0.0
 
     def _summary(self):
         return (f"t = {self.thickness_nm:.1f} +- {self.thickness_sigma_nm:.2g} nm (many-beam fit"
@@ -931,31 +948,43 @@ def _coverage(position, step, lo, hi):
 class _ProfileModel:
     """Model of a two-disk profile for given thickness, scale, Bragg position and blur."""
 
-    def __init__(self, states, grid_mrad, x, y, step, edges, two_theta_mrad):
-        self.states, self.grid = states, grid_mrad
+    def __init__(self, make_states, grid_mrad, x, y, step, edges, two_theta_mrad):
+        self.make_states, self.grid = make_states, grid_mrad
+        self._states = {}
         self.x, self.y, self.step = x, y, step
         self.edges, self.two_theta = edges, two_theta_mrad
         self.weights = np.ones_like(y)
         self._cache = (None, None)
+        # background: a constant and a linear trend across the profile (the
+        # diffuse and inelastic background of a pattern is rarely flat)
+        middle, half = 0.5 * (x[0] + x[-1]), 0.5 * (x[-1] - x[0])
+        self.background = np.stack([np.ones_like(x), (x - middle) / half], axis=1)
 
-    def _rows(self, thickness):
-        if self._cache[0] != thickness:
-            self._cache = (thickness, self.states.intensities(thickness))
+    def _rows(self, thickness, potential_scale):
+        key = (thickness, potential_scale)
+        if self._cache[0] != key:
+            states = self._states.get(potential_scale)
+            if states is None:
+                if len(self._states) > 16:
+                    self._states.clear()
+                states = self._states[potential_scale] = self.make_states(potential_scale)
+            self._cache = (key, states.intensities(thickness))
         return self._cache[1]
 
     def basis(self, params):
         from scipy.ndimage import gaussian_filter1d
 
-        thickness, scale, bragg, blur = params
-        rows = self._rows(thickness)
+        thickness, scale, bragg, blur, potential_scale = params
+        rows = self._rows(thickness, potential_scale)
         u0 = (self.x - bragg) / scale
         u1 = u0 - self.two_theta
         d0 = _coverage(self.x, self.step, *self.edges)
         d1 = _coverage(self.x, self.step, *(self.edges + scale * self.two_theta))
         i0 = np.interp(u0, self.grid, rows[:, 0])
         ig = np.interp(u1, self.grid, rows[:, 1])
-        cols = np.stack([np.ones_like(self.x), d0 + d1, d0 * i0 + d1 * ig], axis=1)
-        return gaussian_filter1d(cols, blur / self.step, axis=0, mode="nearest")
+        blurred = gaussian_filter1d(np.stack([d0 + d1, d0 * i0 + d1 * ig], axis=1),
+                                    blur / self.step, axis=0, mode="nearest")
+        return np.concatenate([self.background, blurred], axis=1)
 
     def solve(self, params):
         cols = self.basis(params)
@@ -981,12 +1010,30 @@ def _noise_gain(y, expected):
     return float(np.median(d2 * d2 / (6.0 * expected[1:-1])) / 0.4549)
 
 
-def _local_fit(model, start, lower, upper, x_scale):
+def _local_fit(model, start, lower, upper, x_scale, free=None):
+    """Least squares from ``start``; only the parameters ``free`` (indices) move.
+
+    The result's ``x`` holds every parameter (the others at their start values).
+    """
     from scipy.optimize import least_squares
 
-    return least_squares(model.residuals, np.clip(start, lower, upper), bounds=(lower, upper),
-                         x_scale=x_scale, method="trf", xtol=1e-9, ftol=1e-10, gtol=1e-10,
-                         diff_step=1e-6, max_nfev=400)
+    start = np.clip(np.asarray(start, dtype=float), lower, upper)
+    if free is None:
+        free = np.arange(len(start))
+    free = np.asarray(free)
+
+    def residuals(sub):
+        full = start.copy()
+        full[free] = sub
+        return model.residuals(full)
+
+    res = least_squares(residuals, start[free], bounds=(lower[free], upper[free]),
+                        x_scale=x_scale[free], method="trf", xtol=1e-9, ftol=1e-10,
+                        gtol=1e-10, diff_step=1e-6, max_nfev=400)
+    full = start.copy()
+    full[free] = res.x
+    res.x = full
+    return res
 
 
 def fit_profile(position, intensity, crystal, hkl, *, kv=200.0, n_beams=DEFAULT_ROW_BEAMS,
@@ -1078,13 +1125,19 @@ def fit_profile(position, intensity, crystal, hkl, *, kv=200.0, n_beams=DEFAULT_
     grid = np.arange(-reach, reach + grid_step, grid_step)
 
     def build(n, ratio):
-        return _ProfileModel(_RowStates(crystal, hkl, grid, kv, n, ratio), grid, x, y, step,
-                             edges, two_theta)
+        return _ProfileModel(lambda p: _RowStates(crystal, hkl, grid, kv, n, ratio, p), grid,
+                             x, y, step, edges, two_theta)
 
     blur0 = 1.0 * step
-    lower = np.array([1.0, 0.85 * scale0, bragg0 - 0.1 * det.separation, 0.05 * step])
-    upper = np.array([2000.0, 1.15 * scale0, bragg0 + 0.1 * det.separation, 20.0 * step])
-    x_scale = np.array([1.0, 0.001 * scale0, step, step])
+    # the last parameter scales every potential coefficient of the row: scattering
+    # factors and Debye-Waller factors from other sources differ by a few per cent,
+    # and an extinction distance held wrong by 3 % moves the thickness by 1.5 %; the
+    # fringes fix both (as the Kelly-Allen line fixes t and xi_g)
+    lower = np.array([1.0, 0.85 * scale0, bragg0 - 0.1 * det.separation, 0.05 * step,
+                      1.0 - _POTENTIAL_RANGE])
+    upper = np.array([2000.0, 1.15 * scale0, bragg0 + 0.1 * det.separation, 20.0 * step,
+                      1.0 + _POTENTIAL_RANGE])
+    x_scale = np.array([1.0, 0.001 * scale0, step, step, 0.001])
     trial = np.geomspace(lo_t, hi_t, int(math.log(hi_t / lo_t) / 0.03) + 2)
     from scipy.signal import argrelmin
 
@@ -1093,7 +1146,7 @@ def fit_profile(position, intensity, crystal, hkl, *, kv=200.0, n_beams=DEFAULT_
 
         ``near`` (a previous solution) narrows the scan to 15 % around it.
         """
-        geometry = (scale0, bragg0, blur0) if near is None else tuple(near[1:])
+        geometry = (scale0, bragg0, blur0, 1.0) if near is None else tuple(near[1:])
         ts = trial if near is None else near[0] * np.linspace(0.85, 1.15, 31)
         cost = np.array([np.sum(model.residuals((t, *geometry)) ** 2) for t in ts])
         minima = argrelmin(np.concatenate([[np.inf], cost, [np.inf]]))[0] - 1
@@ -1102,7 +1155,8 @@ def fit_profile(position, intensity, crystal, hkl, *, kv=200.0, n_beams=DEFAULT_
             starts.append(kelly_allen.thickness_nm)
         found = None
         for t in starts:
-            res = _local_fit(model, np.array([t, *geometry]), lower, upper, x_scale)
+            res = _local_fit(model, np.array([t, *geometry]), lower, upper, x_scale,
+                             free=_SEARCH_FREE)
             if found is None or res.cost < found.cost:
                 found = res
         return found
@@ -1136,7 +1190,8 @@ def fit_profile(position, intensity, crystal, hkl, *, kv=200.0, n_beams=DEFAULT_
             if c[0] > 0:
                 refined = float(np.exp(np.clip(-c[1] / (2 * c[0]), la[0], la[2])))
                 m = build(n_beams, refined)
-                res = _local_fit(m, tried[a][0].x, lower, upper, x_scale)
+                res = _local_fit(m, tried[a][0].x, lower, upper, x_scale,
+                                 free=_SEARCH_FREE)
                 if res.cost < tried[a][0].cost:
                     tried[refined] = (res, m)
                     a = refined
@@ -1151,7 +1206,7 @@ def fit_profile(position, intensity, crystal, hkl, *, kv=200.0, n_beams=DEFAULT_
     best = _local_fit(model, best.x, lower, upper, x_scale)
     fitted, coef = model.solve(best.x)
     resid = model.residuals(best.x)
-    dof = max(len(y) - len(best.x) - 3, 1)
+    dof = max(len(y) - len(best.x) - 4, 1)
     gain = float(np.sum(resid ** 2) / dof)         # variance per unit intensity, fitted
     noise_gain = _noise_gain(y, np.maximum(fitted, floor))
     red_chi2 = gain / noise_gain
@@ -1160,7 +1215,7 @@ def fit_profile(position, intensity, crystal, hkl, *, kv=200.0, n_beams=DEFAULT_
         cov = np.linalg.inv(jac.T @ jac) * gain
         sig = np.sqrt(np.clip(np.diag(cov), 0, None))
     except np.linalg.LinAlgError:
-        sig = np.full(4, np.nan)
+        sig = np.full(5, np.nan)
         warnings.append("the fit's covariance is singular: no statistical uncertainty")
     variants = []
     for label, n, ratio in [("absorption ratio halved", n_beams, 0.5 * a),
@@ -1177,7 +1232,7 @@ def fit_profile(position, intensity, crystal, hkl, *, kv=200.0, n_beams=DEFAULT_
         lo_v, hi_v = lower.copy(), upper.copy()
         lo_v[0], hi_v[0] = near[0], near[-1]
         start = np.array([near[int(np.argmin(cost))], *best.x[1:]])
-        r = _local_fit(alt, start, lo_v, hi_v, x_scale)
+        r = _local_fit(alt, start, lo_v, hi_v, x_scale, free=_SEARCH_FREE)
         variants.append({"variant": label, "n_beams": n, "absorption_ratio": ratio,
                          "thickness_nm": float(r.x[0]),
                          "reduced_chi2": float(np.sum(r.fun ** 2) / dof) / noise_gain})
@@ -1195,7 +1250,8 @@ def fit_profile(position, intensity, crystal, hkl, *, kv=200.0, n_beams=DEFAULT_
         failure = (f"the model matches the profile poorly (reduced chi-square "
                    f"{red_chi2:.1f}): check the reflection, the voltage and that the profile "
                    "runs along +g through both disks")
-    for i, name in enumerate(["thickness", "scale", "Bragg position", "blur"]):
+    for i, name in enumerate(["thickness", "scale", "Bragg position", "blur",
+                              "potential scale"]):
         if np.isclose(best.x[i], lower[i]) or np.isclose(best.x[i], upper[i]):
             if i < 3 and failure is None:
                 failure = f"the fitted {name} sits at the bound of its search range"
@@ -1215,9 +1271,10 @@ def fit_profile(position, intensity, crystal, hkl, *, kv=200.0, n_beams=DEFAULT_
         model_variants=variants, scale_px_per_mrad=float(best.x[1]),
         scale_sigma_px_per_mrad=float(sig[1]), bragg_position=float(best.x[2]),
         bragg_position_sigma=float(sig[2]), blur_px=float(best.x[3]),
-        background=float(coef[0]), diffuse=float(coef[1]), amplitude=float(coef[2]),
+        background=float(coef[0]), diffuse=float(coef[2]), amplitude=float(coef[3]),
         reduced_chi2=red_chi2, n_samples=len(y), n_beams=int(n_beams), absorption_ratio=a,
         absorption_fitted=bool(fit_absorption),
         hkl=hkl, kv=float(kv), separation=float(best.x[1] * two_theta), position=x,
         intensity=y, fitted=fitted, kelly_allen=kelly_allen, detection=det,
-        warnings=warnings, success=failure is None, failure=failure)
+        warnings=warnings, success=failure is None, failure=failure,
+        potential_scale=float(best.x[4]), potential_scale_sigma=float(sig[4]))

@@ -44,7 +44,12 @@ __all__ = ["DynamicalFit", "refine_dynamical", "KinematicBias", "kinematic_bias"
 
 #: Fractional thickness uncertainty assumed when none is given.
 DEFAULT_THICKNESS_FRACTION = 0.1
-_MAX_ROUNDS = 10
+_MAX_ROUNDS = 6
+#: A round whose change is not below this fraction of the previous one ends the
+#: iteration (from the third round on): the correction has reached its noise.
+_CONTRACTION = 0.7
+#: ... provided the change is below this many sigma (larger changes are not noise).
+_NOISE_FLOOR = 1.0
 _SETTLED = 0.1  # strain change below this fraction of its sigma ends the iteration
 _STRAIN_FLOOR = 1e-6
 #: A crossing the shifts would move further than this (mrad) is left out of a
@@ -81,6 +86,8 @@ class DynamicalFit:
         final state.
     rounds : int
         Correction rounds until the strain settled.
+    round_changes : list of float
+        Largest change of the result in each round, in units of its sigma.
     settled : bool
     thickness_nm, thickness_sigma_nm, absorption_ratio : float
     n_beams : int
@@ -102,6 +109,30 @@ class DynamicalFit:
     absorption_ratio: float
     n_beams: int
     warnings: list = field(default_factory=list)
+    variant_results: dict = field(default_factory=dict, repr=False)
+    calibration_changes_held: dict | None = None
+    round_changes: list = field(default_factory=list)
+
+    def calibration_changes(self):
+        """How each variation of the dynamical model moves the voltage and scale.
+
+        For a calibration made with the correction: ``{variant: {"kv": dkv,
+        "scale_px_per_mrad": ds, "rotation_deg": dr}}``, the change of the
+        calibration when the thickness or the absorption is varied.  A later
+        fit of the same foil holding this calibration takes these changes in
+        the same variations (:func:`refine_dynamical`, ``calibration_changes``),
+        so the systematic part counts the thickness error once, in the
+        reference and the strained region alike.
+        """
+        base = self.result
+        out = {}
+        for name, res in self.variant_results.items():
+            out[name] = {"kv": float(res.kv - base.kv),
+                         "scale_px_per_mrad": float(res.detector.scale_px_per_mrad
+                                                    - base.detector.scale_px_per_mrad),
+                         "rotation_deg": float(res.detector.rotation_deg
+                                               - base.detector.rotation_deg)}
+        return out
 
     @property
     def strain_voigt(self):
@@ -122,6 +153,7 @@ class DynamicalFit:
             "thickness_nm": self.thickness_nm, "thickness_sigma_nm": self.thickness_sigma_nm,
             "absorption_ratio": self.absorption_ratio, "n_beams": self.n_beams,
             "rounds": self.rounds, "settled": self.settled,
+            "round_changes_sigma": list(self.round_changes),
             "strain_voigt": self.strain_voigt, "strain_voigt_kinematic":
                 self.strain_voigt_kinematic,
             "covariance_voigt": self.covariance_voigt,
@@ -130,6 +162,8 @@ class DynamicalFit:
             "systematic_shifts": self.systematic_shifts,
             "parameter_systematic_sigma": self.parameter_systematic_sigma,
             "line_shifts_mrad": self.line_shifts_mrad,
+            "calibration_changes": self.calibration_changes(),
+            "calibration_changes_held": self.calibration_changes_held,
             "voigt_order": "xx yy zz yz xz xy (Green-Lagrange)",
         }
 
@@ -172,12 +206,23 @@ def _fitted_pattern(result, crystal, hkl_needed):
 
 
 def _line_shift_model(pattern, hkl_needed, thickness_nm, absorption_ratio, check,
-                      zolz_gmax=DEFAULT_ZOLZ_GMAX):
-    """Per needed line: (along-line coordinates, shifts) for interpolation, and the run."""
+                      zolz_gmax=DEFAULT_ZOLZ_GMAX, n_points=None, fractions=None):
+    """Per needed line: (along-line coordinates, shifts, normal, along, smooth curve),
+    and the run.
+
+    ``fractions`` (from :func:`_points_used` of an earlier run) keeps the points
+    of that run, so that the shifts at a slightly changed state, or for a
+    variation of the model, are computed at the same places along the lines.
+    """
     index = {tuple(h): i for i, h in enumerate(pattern.hkl.tolist())}
     wanted = sorted({index[tuple(h)] for h in hkl_needed})
+    given = None
+    if fractions is not None:
+        given = {index[h]: f for h, f in fractions.items() if h in index and len(f)}
     run = dynamical_lines(pattern, thickness_nm, absorption_ratio=absorption_ratio,
-                          lines=wanted, check_convergence=check, zolz_gmax=zolz_gmax)
+                          lines=wanted, check_convergence=check, zolz_gmax=zolz_gmax,
+                          n_points=_SHIFT_POINTS if n_points is None else n_points,
+                          fractions=given)
     model = {}
     for i in wanted:
         normal = pattern.normal[i]
@@ -185,16 +230,51 @@ def _line_shift_model(pattern, hkl_needed, thickness_nm, absorption_ratio, check
         ok = np.isfinite(run.shift_mrad[i])
         q = run.locus_mrad[i][ok] @ along
         order = np.argsort(q)
-        model[tuple(pattern.hkl[i])] = (q[order], run.shift_mrad[i][ok][order], normal, along)
+        q, shift = q[order], run.shift_mrad[i][ok][order]
+        model[tuple(pattern.hkl[i])] = (q, shift, normal, along, _smooth_shift(q, shift))
     return model, run
+
+
+def _points_used(run):
+    """'h k l' -> chord fractions of the points of a run (lines computed only)."""
+    return {tuple(int(v) for v in h): f for h, f in zip(run.hkl, run.fractions) if len(f)}
+
+
+#: Points per line where the shifts are computed: a cubic through nine points
+#: puts a crossing within a few 1e-3 mrad of one through fifteen (Si [2 3 0],
+#: 200 kV, 200 nm); through five or seven it moves by up to 0.05 mrad.
+_SHIFT_POINTS = 9
+#: Largest degree of the polynomial through a line's shifts.
+_SHIFT_DEGREE = 3
+
+
+def _smooth_shift(q, shift):
+    """Polynomial coefficients of a smooth curve through a line's shifts along it.
+
+    The minima are sought away from the other lines, where each line is free
+    of its neighbours; near a crossing the two lines' minima bend toward each
+    other, and a crossing is where the smooth continuations of both lines
+    meet.  A least-squares polynomial in the along-line coordinate (degree 3
+    from seven points or more, a straight line from fewer) describes that continuation; piecewise
+    linear interpolation would follow the last sampled bend instead.
+    """
+    if len(q) == 0:
+        return np.zeros(1)
+    # fewer than seven points (an estimate, or lines crossed by many others) give
+    # a straight trend: a cubic through five points follows every bend
+    degree = _SHIFT_DEGREE if len(q) >= _SHIFT_POINTS - 2 else min(1, len(q) - 1)
+    return np.polyfit(q, shift, degree) if len(q) > 1 else np.array([shift[0]])
 
 
 def _shift_at(model, hkl, points_mrad):
     """Shift (mrad) of line hkl at points (k, 2), and the line normal."""
-    q, shift, normal, along = model[tuple(hkl)]
+    q, shift, normal, along, coef = model[tuple(hkl)]
     if not len(q):
         return np.zeros(len(points_mrad)), normal
-    return np.interp(np.asarray(points_mrad) @ along, q, shift), normal
+    # beyond the first and last point the curve is held at its end values: a
+    # cubic extrapolated past its points can run off by tenths of a mrad
+    inside = np.clip(np.asarray(points_mrad) @ along, q[0], q[-1])
+    return np.polyval(coef, inside), normal
 
 
 def _crossing_corrections_px(state, model, ha, hb):
@@ -292,7 +372,7 @@ def _settled(new, old):
 
 def refine_dynamical(crystal, zone, observations, *, thickness_nm, thickness_sigma_nm=None,
                      absorption_ratio=DEFAULT_ABSORPTION_RATIO, zolz_gmax=DEFAULT_ZOLZ_GMAX,
-                     **fit_options):
+                     calibration_changes=None, **fit_options):
     """Fit crossings or detected lines with the dynamical shifts corrected.
 
     Parameters
@@ -311,6 +391,14 @@ def refine_dynamical(crystal, zone, observations, *, thickness_nm, thickness_sig
         a in U'_g = a U_g, [0, 1).
     zolz_gmax : float
         Zero-layer beams taken exactly (1/angstrom), see :func:`dynamical_lines`.
+    calibration_changes : dict, optional
+        With a calibration held that was itself made with the correction on
+        the same foil: its :meth:`DynamicalFit.calibration_changes` (or the
+        ``dynamical.calibration_changes`` of its document).  Each variation
+        of the model then holds the calibration moved by the same variation,
+        so a thickness error that shifts the calibrated voltage and the
+        strained region's lines together is counted once, with its sign.
+        Without it the calibration is held unchanged in every variation.
     **fit_options
         Passed to the fit (kv, model, calibration, disk_mrad, ...).
 
@@ -347,9 +435,11 @@ def refine_dynamical(crystal, zone, observations, *, thickness_nm, thickness_sig
     if line_sigma is not None and line_sigma.source in ("estimated", "default"):
         options.setdefault("line_sigma_px", line_sigma.value)
 
-    def fit(data):
-        return refine_image(crystal, zone, data, **options) if image else \
-            refine(crystal, zone, data, **options)
+    def fit(data, changes=None):
+        opts = options if changes is None else dict(
+            options, calibration=_moved_calibration(options["calibration"], changes))
+        return refine_image(crystal, zone, data, **opts) if image else \
+            refine(crystal, zone, data, **opts)
 
     def correct(state, model):
         if image:
@@ -359,35 +449,60 @@ def refine_dynamical(crystal, zone, observations, *, thickness_nm, thickness_sig
     hkl_needed = _hkl_used(kinematic)
     warnings = []
     current, settled, rounds, n_beams = kinematic, False, 0, 0
+    changes = []
     model = None
+    states = []
+    points_used = None      # chosen at the kinematic state, then kept
     for rounds in range(1, _MAX_ROUNDS + 1):
         pattern = _fitted_pattern(current, crystal, hkl_needed)
         model, run = _line_shift_model(pattern, hkl_needed, t, a, check=False,
-                                       zolz_gmax=zolz_gmax)
+                                       zolz_gmax=zolz_gmax, fractions=points_used)
+        points_used = _points_used(run) if points_used is None else points_used
         n_beams = max(n_beams, run.n_beams)
         new = fit(correct(current, model))
         change = _settled(new, current)
+        changes.append(change)
         current = new
+        states.append(current)
         if change < _SETTLED:
+            settled = True
+            break
+        if rounds >= 3 and change < _NOISE_FLOOR and change >= _CONTRACTION * changes[-2]:
+            # the rounds no longer contract: what is left is the numerical noise of
+            # the shifts (minima found to about 1e-4 mrad, points that move along
+            # the lines), which directions the data barely fix amplify
             settled = True
             break
     if not settled:
         warnings.append(f"the dynamical correction did not settle in {_MAX_ROUNDS} rounds")
+    cov_rounds = np.zeros((6, 6))
+    if len(states) >= 3 and changes[-1] >= _SETTLED and current.model != "fixed":
+        # the scatter of the strain over the rounds after the first is part of the
+        # correction's uncertainty
+        spread = np.array([_voigt(r) for r in states[1:]])
+        cov_rounds = np.cov(spread.T)
+        warnings.append(f"the dynamical correction settled to its numerical noise after "
+                        f"{rounds} rounds (changes up to {max(changes[1:]):.2g} sigma); the "
+                        "scatter over the rounds is part of the systematic uncertainty")
 
     # systematic part: one correction step per variation of the model
     pattern = _fitted_pattern(current, crystal, hkl_needed)
     variants = {"thickness+": (t + t_sigma, a), "thickness-": (max(t - t_sigma, 1e-3), a),
                 "absorption/2": (t, a / 2), "absorption*2": (t, min(2 * a, 0.99))}
-    moved, params = {}, {}
+    held = None
+    if calibration_changes and fit_options.get("calibration") is not None:
+        held = {name: dict(calibration_changes.get(name) or {}) for name in variants}
+    moved, params, results = {}, {}, {}
     for name, (tv, av) in variants.items():
         vmodel, _ = _line_shift_model(pattern, hkl_needed, tv, av, check=False,
-                                      zolz_gmax=zolz_gmax)
-        res = fit(correct(current, vmodel))
+                                      zolz_gmax=zolz_gmax, fractions=points_used)
+        res = fit(correct(current, vmodel), None if held is None else held[name])
         moved[name] = _voigt(res) - _voigt(current)
         params[name] = res.values - current.values
+        results[name] = res
     d_t = 0.5 * (moved["thickness+"] - moved["thickness-"])
     d_a = 0.5 * (moved["absorption*2"] - moved["absorption/2"])
-    cov_sys = np.outer(d_t, d_t) + np.outer(d_a, d_a)
+    cov_sys = np.outer(d_t, d_t) + np.outer(d_a, d_a) + cov_rounds
     p_t = 0.5 * (params["thickness+"] - params["thickness-"])
     p_a = 0.5 * (params["absorption*2"] - params["absorption/2"])
     p_sig = np.sqrt(p_t ** 2 + p_a ** 2)
@@ -399,7 +514,23 @@ def refine_dynamical(crystal, zone, observations, *, thickness_nm, thickness_sig
         parameter_systematic_sigma=dict(zip(current.parameters, p_sig.tolist())),
         line_shifts_mrad=_line_shift_table(model), rounds=rounds, settled=settled,
         thickness_nm=t, thickness_sigma_nm=t_sigma, absorption_ratio=a, n_beams=n_beams,
-        warnings=warnings)
+        warnings=warnings, variant_results=results, calibration_changes_held=held,
+        round_changes=changes)
+
+
+def _moved_calibration(calibration, changes):
+    """A held calibration (Calibration or (kv, Detector)) moved by ``changes``."""
+    if isinstance(calibration, tuple):
+        kv, det = calibration
+    else:
+        kv, det = calibration.kv, calibration.detector
+    det = dataclasses.replace(
+        det, scale_px_per_mrad=det.scale_px_per_mrad + changes.get("scale_px_per_mrad", 0.0),
+        rotation_deg=det.rotation_deg + changes.get("rotation_deg", 0.0))
+    kv = kv + changes.get("kv", 0.0)
+    if isinstance(calibration, tuple):
+        return kv, det
+    return dataclasses.replace(calibration, kv=kv, detector=det)
 
 
 # ---------------------------------------------------------------------------
@@ -495,13 +626,14 @@ def kinematic_bias(result, crystal, points=None, *, thickness_nm=200.0,
     hkl_needed = _hkl_used(result)
     pattern = _fitted_pattern(result, crystal, hkl_needed)
     start = time.perf_counter()
-    _line_shift_model(pattern, hkl_needed[:1], t, a, check=False, zolz_gmax=IMAGE_ZOLZ_GMAX)
+    _line_shift_model(pattern, hkl_needed[:1], t, a, check=False, zolz_gmax=IMAGE_ZOLZ_GMAX,
+                      n_points=5)
     spent = time.perf_counter() - start
     if spent * len(hkl_needed) > max_seconds:
         return from_floor(f"the engine would take about {spent * len(hkl_needed):.0f} s for "
                           f"{len(hkl_needed)} lines")
     model, _ = _line_shift_model(pattern, hkl_needed, t, a, check=False,
-                                 zolz_gmax=IMAGE_ZOLZ_GMAX)
+                                 zolz_gmax=IMAGE_ZOLZ_GMAX, n_points=5)
     det = result.detector
     options = dict(kv=result.kv, model=result.model, x_axis=result.x_axis,
                    rotation_deg=det.rotation_deg, mirror=det.mirror, center_px=det.center_px,

@@ -56,6 +56,9 @@ class DynamicalLines:
         Largest beam count of any group of directions.
     n_zolz : int
         Zero-layer beams in every group.
+    fractions : list of ndarray (k_i,)
+        Positions of the points along each chord, as fractions of its
+        half-length (0 nearest the disk centre).
     convergence_mrad : float or None
         Largest change of a minimum when the beam set grows (both limits
         enlarged); None when not checked.
@@ -80,6 +83,7 @@ class DynamicalLines:
     zolz_gmax: float
     holz_excitation: float
     warnings: list = field(default_factory=list)
+    fractions: list = field(default_factory=list)
 
     @property
     def mean_shift_mrad(self):
@@ -99,13 +103,20 @@ class DynamicalLines:
                           "eigenvectors)"}
 
 
-def _sample_points(pattern, index, n_points):
-    """Locus points (rad) and normals of line ``index`` away from the other lines."""
+def _sample_points(pattern, index, n_points, fractions=None):
+    """Locus points (rad) and normals of line ``index`` away from the other lines.
+
+    With ``fractions`` (positions along the chord, as fractions of its
+    half-length) those points are taken as they are.  Returns the points,
+    normals, distances to the nearest other line (mrad), the chord length
+    (mrad) and the fractions used.
+    """
     lp = line_parameters(pattern.crystal.g_vectors(pattern.hkl), pattern.frame,
                          pattern.beam.wave_number)
     one = LineParameters(lp.g_perp[index:index + 1], lp.g_perp_norm[index:index + 1],
                          lp.gz[index:index + 1], lp.c[index:index + 1])
-    points, normals, half = locus_samples(one, pattern.disk_mrad * 1e-3, _SAMPLE_FRACTIONS)
+    candidates = _SAMPLE_FRACTIONS if fractions is None else np.asarray(fractions, dtype=float)
+    points, normals, half = locus_samples(one, pattern.disk_mrad * 1e-3, candidates)
     points, normals = points[0], normals[0]
     others = np.delete(np.arange(pattern.n_lines), index)
     if len(others):
@@ -116,10 +127,25 @@ def _sample_points(pattern, index, n_points):
         nearest = dist.min(axis=0)
     else:
         nearest = np.full(len(points), np.inf)
+    if fractions is not None:
+        keep = np.arange(len(candidates))
+        return (points[keep], normals[keep], np.maximum(nearest[keep], 1e-3),
+                float(2 * half[0]), candidates[keep])
     keep = np.flatnonzero(nearest >= _MIN_SEPARATION_MRAD)
     if len(keep) > n_points:
-        keep = keep[np.unique(np.round(np.linspace(0, len(keep) - 1, n_points)).astype(int))]
-    return points[keep], normals[keep], nearest[keep], float(2 * half[0])
+        # the kept candidate nearest each of n_points evenly spread fractions: when
+        # the pattern changes a little, one point at most moves (a fit that
+        # recomputes the shifts at every state would otherwise see every point
+        # jump whenever one candidate comes within 0.2 mrad of another line)
+        target = np.linspace(_SAMPLE_FRACTIONS[0], _SAMPLE_FRACTIONS[-1], n_points)
+        gap = np.abs(_SAMPLE_FRACTIONS[keep][None, :] - target[:, None])
+        chosen = []
+        for row in gap:                       # n_points targets, each its own point
+            row[chosen] = np.inf
+            chosen.append(int(np.argmin(row)))
+        keep = keep[np.sort(chosen)]
+    return (points[keep], normals[keep], nearest[keep], float(2 * half[0]),
+            candidates[keep])
 
 
 def _window_mrad(pattern, index, thickness_A, nearest_mrad):
@@ -158,7 +184,7 @@ def _refine_minimum(ratio, u_best, step, n_stage=(7, 5), divide=3.0):
 
 def dynamical_lines(pattern, thickness_nm, *, absorption_ratio=DEFAULT_ABSORPTION_RATIO,
                     zolz_gmax=DEFAULT_ZOLZ_GMAX, holz_excitation=DEFAULT_HOLZ_EXCITATION,
-                    n_points=5, check_convergence=True, lines=None):
+                    n_points=5, check_convergence=True, lines=None, fractions=None):
     """Dynamical deficit minima, contrast and width of the lines of a pattern.
 
     For each line, points on its exact kinematic locus (at most ``n_points``,
@@ -195,6 +221,11 @@ def dynamical_lines(pattern, thickness_nm, *, absorption_ratio=DEFAULT_ABSORPTIO
     lines : sequence of int, optional
         Indices of the pattern's lines to compute (all by default); the
         others get empty entries.
+    fractions : dict, optional
+        Line index -> positions along its chord (fractions of the
+        half-length, as in ``DynamicalLines.fractions``) to take as they are,
+        instead of choosing points away from the other lines: a fit that
+        recomputes the minima at a slightly changed state keeps its points.
 
     Returns
     -------
@@ -221,10 +252,12 @@ def dynamical_lines(pattern, thickness_nm, *, absorption_ratio=DEFAULT_ABSORPTIO
     L = pattern.n_lines
     empty2, empty1 = np.zeros((0, 2)), np.zeros(0)
     out = {k: [empty2] * L for k in ("minima", "locus", "normal")}
-    out.update({k: [empty1] * L for k in ("shift", "contrast", "width")})
+    out.update({k: [empty1] * L for k in ("shift", "contrast", "width", "fractions")})
     n_beams, change, warnings = len(beams.zolz_hkl), [], []
     for i in wanted:
-        base, normal, nearest, length = _sample_points(pattern, i, n_points)
+        given = None if fractions is None else fractions.get(i)
+        base, normal, nearest, length, used = _sample_points(pattern, i, n_points, given)
+        out["fractions"][i] = used
         if length > 1.0 and len(base) < 5:
             warnings.append(f"line {' '.join(map(str, pattern.hkl[i]))}: only {len(base)} "
                             "points lie 0.2 mrad or more from other lines")
@@ -282,7 +315,8 @@ def dynamical_lines(pattern, thickness_nm, *, absorption_ratio=DEFAULT_ABSORPTIO
         n_zolz=len(beams.zolz_hkl),
         convergence_mrad=(float(max(change)) if change else None) if check_convergence
         else None,
-        zolz_gmax=beams.zolz_gmax, holz_excitation=beams.holz_excitation, warnings=warnings)
+        zolz_gmax=beams.zolz_gmax, holz_excitation=beams.holz_excitation, warnings=warnings,
+        fractions=out["fractions"])
 
 
 def _half_depth_width(grid, relative, k0, depth):
