@@ -258,14 +258,14 @@ def test_seeded_detection_reports_no_spurious_line(seeded, request):
 
 
 @pytest.mark.xfail(strict=True, reason=(
-    "seeded detection places the resolvable dynamical lines 0.14 and 0.25 px rms (Si "
-    "[2 3 0] reference and strained) and 0.40 and 0.39 px rms (Si [3 4 0]) from the minima "
-    "of the Bloch-wave intensity.  The worst lines are not off by a constant: on [3 4 0] "
-    "the strong 7 -5 -1 (47 % deep) and -10 8 -2 (0.9-1.0 px rms) have minima that wander "
-    "by 1-3 px along the line between the crossings (the image's own minima, where the "
-    "truth has none), which a conic through all segments follows; on [2 3 0] strained "
-    "-1 1 11 (0.66 px) loses half its chord where -1 1 -11 crosses it at 14 degrees and "
-    "is left out of its profiles, and one surviving end segment tilts it"))
+    "seeded detection places the resolvable dynamical lines 0.14 and 0.15 px rms (Si "
+    "[2 3 0] reference and strained; the 5 % deep 4 -2 14 and 4 -2 -14 0.26 px) and 0.41 "
+    "and 0.38 px rms (Si [3 4 0]) from the minima of the Bloch-wave intensity; a noiseless "
+    "render of the [2 3 0] reference gives 0.12 px, 0.09 px with the 0.9 px point-spread "
+    "function.  On [3 4 0] the strong 7 -5 -1 (47 % deep) and -10 8 -2 are 0.9-1.0 px rms "
+    "off: between the crossings, where the truth has no minima, the image's own minima "
+    "wander by 1-3 px from the line through the truth's, and the conic through all "
+    "segments follows them"))
 def test_seeded_detection_positions_within_a_tenth_of_a_pixel(seeded):
     det, found, truth = seeded
     errors = {h: math.sqrt(np.mean(_line_distance(found[h], pts, det.disk.center_px) ** 2))
