@@ -34,7 +34,10 @@ Steps:
    the offset from that centre to the deficit minimum, so asymmetric and
    fringed profiles are located at their minimum (with a prediction, these
    offsets are pooled over the lines, each along its g direction, so that
-   weak lines lean on strong ones).  A gently curved line
+   weak lines lean on strong ones; in the final pass of a seeded search a
+   line measured well enough takes instead the minima of the Gauss-Hermite
+   series fitted to each of its profiles, as dynamical lines do not share
+   one profile shape).  A gently curved line
    d = n.(p - c) - rho - kappa s^2 (s along the line from the foot of the
    normal from the disk centre c) is fitted through the segment minima,
    first with no segment weighing more than a typical one, then with
@@ -528,7 +531,7 @@ class _Measured:
 def _measure_lines(flat, interior, disk, noise, polylines, width_px, search_px, *,
                    masks=None, seg_len=None, template=True, min_z=6.0, min_fraction=0.5,
                    screening=False, rim_margin_px=5.0, directions=None, iterations=None,
-                   step=None):
+                   step=None, shape_terms=False):
     """Measure deficit minima along starting loci and fit each line through them.
 
     Parameters
@@ -543,6 +546,12 @@ def _measure_lines(flat, interior, disk, noise, polylines, width_px, search_px, 
         Straight lines whose neighbourhoods are left out of other lines' profiles.
     template : bool
         Locate minima with each line's own template (else the Gaussian centre).
+    shape_terms : bool
+        Also fit the full Gauss-Hermite series to every profile
+        (:func:`laueline.images.lineprofile.fit_profiles`, whose x0 is the
+        deficit minimum itself, at most six steps from the Gaussian); each
+        line then takes the minima of the route (template or series) whose
+        mean position has the smaller variance.
     min_z : float
         Combined significance sqrt(sum z^2) of the segment depths a line needs.
     min_fraction : float
@@ -586,8 +595,11 @@ def _measure_lines(flat, interior, disk, noise, polylines, width_px, search_px, 
     d, profile, count, crowded = sample_profiles(flat, interior, points, normals, half[owner],
                                         seg_len, others, step=step or (1.0 if screening else 0.5))
     fit = fit_profiles(d, profile, count, 0.0, width_px[owner], noise, search=search_px,
-                       max_width=max(3.0 * sigma_max, 4.0), shape_terms=False,
-                       iterations=iterations or (8 if screening else 20))
+                       max_width=max(3.0 * sigma_max, 4.0), shape_terms=shape_terms,
+                       iterations=iterations or (8 if screening else 20),
+                       shape_iterations=6 if shape_terms else None)
+    series = fit if shape_terms else None
+    fit = fit.gaussian if shape_terms else fit
     z_seg = np.where(fit.ok, fit.depth / np.maximum(fit.depth_sigma, 1e-12), 0.0)
     if template:
         orientation = None
@@ -601,6 +613,24 @@ def _measure_lines(flat, interior, disk, noise, polylines, width_px, search_px, 
         minimum, var, ok_t = fit.minimum, fit.minimum_var, fit.ok
         template_var = np.zeros(n_lines)
     ok = ok_t & fit.ok & (z_seg > 2.0) & (np.abs(minimum) <= search_px + 1.0)
+    if series is not None:
+        # each line takes the route whose mean position is the less uncertain:
+        # the Gaussian centres plus the template's offset (which carries the
+        # template's own variance, and for weak lines leans on the others), or
+        # the minima of the Gauss-Hermite series fitted to each profile
+        ok_s = series.ok & (z_seg > 2.0) & (np.abs(series.minimum) <= search_px + 1.0)
+        inv_t = np.bincount(owner, np.where(ok, 1.0 / np.where(ok, var, 1.0), 0.0),
+                            minlength=n_lines)
+        inv_s = np.bincount(owner, np.where(ok_s, 1.0 / np.where(ok_s, series.minimum_var, 1.0),
+                                            0.0), minlength=n_lines)
+        var_t = np.where(inv_t > 0, 1.0 / np.maximum(inv_t, 1e-300), np.inf) + \
+            np.where(np.isfinite(template_var), template_var, np.inf)
+        var_s = np.where(inv_s > 0, 1.0 / np.maximum(inv_s, 1e-300), np.inf)
+        own = (var_s < var_t)[owner]
+        minimum = np.where(own, series.minimum, minimum)
+        var = np.where(own, series.minimum_var, var)
+        ok = np.where(own, ok_s, ok)
+        template_var = np.where(var_s < var_t, 0.0, template_var)
     z_line = np.sqrt(np.bincount(owner, np.where(ok, z_seg, 0.0) ** 2, minlength=n_lines))
     centre = np.asarray(disk.center_px)
     rho0, ang0 = _straight(polylines, centre)
@@ -1071,9 +1101,17 @@ def detect_seeded(image, pattern, detector, *, disk=None, saturation=None, searc
         rank = np.argsort(np.argsort([-ln.snr for ln in seen]))  # weak lines hide no strong one
         masks = (np.array([ln.offset_px for ln in seen]),
                  np.radians([ln.normal_angle_deg for ln in seen]), 2.5 * sig + 1.5, rank)
+        # here a line measured well enough takes each profile's minimum from
+        # its own Gauss-Hermite fit: the template offsets pooled in the first
+        # pass assume one profile shape (in units of the width) for all lines,
+        # which dynamical lines, each with its own asymmetry and fringes, do
+        # not share.  The profiles start from positions found to a fraction of
+        # a pixel: ten Gaussian steps suffice, and six with the shape terms
+        # free (more let a profile cut short by a line crossing at a small
+        # angle, its core left out, drift with its shape terms)
         again = _measure_lines(flat, interior, disk, noise, _line_polylines(seen, disk), sig,
                                1.5, masks=masks, min_z=min_z, min_fraction=0.25,
-                               directions=directions[found])
+                               directions=directions[found], shape_terms=True, iterations=10)
         for k, i in enumerate(found):
             measured.lines[i] = again.lines[k] if again.found[k] else measured.lines[i]
     lines, missing = [], []

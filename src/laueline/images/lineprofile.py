@@ -53,6 +53,8 @@ class ProfileFit:
     asymmetry, fringe : a and c of the Gauss-Hermite series
     ok : usable fits
     params : (M, 7) all parameters
+    gaussian : ProfileFit or None
+        With the shape terms free, the plain Gaussian fit they started from.
     """
 
     minimum: np.ndarray
@@ -64,6 +66,7 @@ class ProfileFit:
     fringe: np.ndarray
     ok: np.ndarray
     params: np.ndarray
+    gaussian: "ProfileFit | None" = None
 
 
 def sample_profiles(flat, valid, points, normals, half_width, segment, others=None,
@@ -243,7 +246,7 @@ def _model(p, d, cols=None):
 
 
 def fit_profiles(d, profile, count, start_x0, start_width, noise, *, max_width=None,
-                 search=2.0, shape_terms=True, iterations=20):
+                 search=2.0, shape_terms=True, iterations=20, shape_iterations=None):
     """Fit the Gauss-Hermite deficit model to every profile at once.
 
     Parameters
@@ -266,10 +269,13 @@ def fit_profiles(d, profile, count, start_x0, start_width, noise, *, max_width=N
     iterations : int
         Most Levenberg-Marquardt steps; each profile leaves the iteration
         as soon as it has converged.
+    shape_iterations : int, optional
+        Most steps once the shape terms are free (by default ``iterations``).
 
     Returns
     -------
     ProfileFit
+        With ``shape_terms``, its ``gaussian`` holds the plain Gaussian fit.
     """
     m_count = profile.shape[0]
     start_x0 = np.broadcast_to(np.asarray(start_x0, float), (m_count,))
@@ -290,9 +296,20 @@ def fit_profiles(d, profile, count, start_x0, start_width, noise, *, max_width=N
     # first a plain Gaussian dip (shape terms held at zero), then everything
     gaussian = (0, 1, 2, 3, 4)
     p = _levenberg_marquardt(p, d, profile, w, gaussian, max_width, iterations)
-    free = tuple(range(_N_PARAMS)) if shape_terms else gaussian
-    if shape_terms:
-        p = _levenberg_marquardt(p, d, profile, w, free, max_width, iterations)
+    if not shape_terms:
+        return _finished_fit(p, d, profile, w, gaussian, max_width)
+    free = tuple(range(_N_PARAMS))
+    full = _finished_fit(_levenberg_marquardt(p, d, profile, w, free, max_width,
+                                              shape_iterations or iterations),
+                         d, profile, w, free, max_width)
+    full.gaussian = _finished_fit(p, d, profile, w, gaussian, max_width)
+    return full
+
+
+def _finished_fit(p, d, profile, w, free, max_width):
+    """ProfileFit of parameters ``p`` fitted over ``free``: covariances and checks."""
+    m_count = profile.shape[0]
+    used = w > 0
     f, jac = _model(p, d, free)
     r = (f - profile) * w
     jw = jac * w[..., None]
